@@ -1,0 +1,1 @@
+"""swathmill science steps, pipeline and command line."""
