@@ -1,0 +1,209 @@
+"""Executors: a plain in-process loop (the reference) and Dask distributed.
+
+Both run the same picklable task functions. The Dask executor keeps a bounded number of tasks in
+flight, releases futures as they finish, retries failed tasks, and merges fit accumulators in a tree
+on the workers. No pixel array passes through the scheduler: tasks read and write the stores.
+"""
+from __future__ import annotations
+
+import os
+import traceback
+from typing import Any, Callable, Iterable, Protocol
+
+__all__ = ["Executor", "LocalExecutor", "DaskExecutor", "make_executor", "TaskFailed"]
+
+
+class TaskFailed(RuntimeError):
+    pass
+
+
+class Executor(Protocol):
+    name: str
+    dashboard: str | None
+
+    def map(self, fn: Callable, items: Iterable, on_done: Callable[[Any, Any], None],
+            on_error: Callable[[Any, BaseException, str], None]) -> None: ...
+
+    def reduce(self, fn: Callable, items: Iterable, merge: Callable[[Any, Any], Any]) -> Any: ...
+
+    def close(self) -> None: ...
+
+
+def _tree(values: list, merge: Callable) -> Any:
+    while len(values) > 1:
+        nxt = [merge(values[k], values[k + 1]) for k in range(0, len(values) - 1, 2)]
+        if len(values) % 2:
+            nxt.append(values[-1])
+        values = nxt
+    return values[0] if values else None
+
+
+class LocalExecutor:
+    """The reference: tasks run one after another in this process."""
+
+    name = "local"
+    dashboard = None
+
+    def __init__(self, retries: int = 0):
+        self.retries = retries
+
+    def map(self, fn, items, on_done, on_error) -> None:
+        for item in items:
+            for attempt in range(self.retries + 1):
+                try:
+                    res = fn(item)
+                except Exception as exc:  # noqa: BLE001 - reported per tile
+                    if attempt == self.retries:
+                        on_error(item, exc, traceback.format_exc())
+                    continue
+                on_done(item, res)
+                break
+
+    def reduce(self, fn, items, merge):
+        return _tree([fn(it) for it in items], merge)
+
+    def close(self) -> None:
+        pass
+
+
+class DaskExecutor:
+    """Run tasks on a Dask distributed cluster.
+
+    Give ``client`` or ``address`` (an existing scheduler), ``cluster`` (any dask cluster object, e.g.
+    from dask-jobqueue), or nothing: a LocalCluster sized to the machine is started, with worker
+    processes started by spawn and the dashboard bound to 127.0.0.1.
+    """
+
+    name = "dask"
+
+    def __init__(self, *, client=None, address: str | None = None, cluster=None, n_workers: int | None = None,
+                 threads_per_worker: int = 1, memory_limit: str | float | None = "auto",
+                 dashboard_address: str | None = "127.0.0.1:0", retries: int = 2, max_in_flight: int | None = None,
+                 processes: bool = True):
+        import dask
+        from distributed import Client, LocalCluster
+
+        dask.config.set({"distributed.worker.multiprocessing-method": "spawn",
+                         "distributed.scheduler.allowed-failures": max(retries, 1)})
+        self._own_cluster = None
+        if client is not None:
+            self.client = client
+        elif address:
+            self.client = Client(address, timeout="30s")
+        else:
+            if cluster is None:
+                n = n_workers or max(1, (os.cpu_count() or 1) // threads_per_worker)
+                cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
+                                       memory_limit=memory_limit, host="127.0.0.1",
+                                       dashboard_address=dashboard_address)
+                self._own_cluster = cluster
+            self.client = Client(cluster)
+        self.retries = retries
+        self._max_in_flight = max_in_flight
+        try:
+            self.dashboard = self.client.dashboard_link
+        except Exception:  # noqa: BLE001
+            self.dashboard = None
+
+    @property
+    def max_in_flight(self) -> int:
+        if self._max_in_flight:
+            return self._max_in_flight
+        threads = sum(self.client.nthreads().values()) or 1
+        return 2 * threads
+
+    def map(self, fn, items, on_done, on_error) -> None:
+        from distributed import as_completed
+
+        it = iter(items)
+        pending: dict = {}
+        ac = as_completed()
+
+        def submit_next() -> bool:
+            try:
+                item = next(it)
+            except StopIteration:
+                return False
+            fut = self.client.submit(fn, item, pure=False, retries=self.retries,
+                                     key=f"{getattr(item, 'label', 'task')}-{os.urandom(4).hex()}")
+            pending[fut.key] = item
+            ac.add(fut)
+            return True
+
+        for _ in range(self.max_in_flight):
+            if not submit_next():
+                break
+        for fut in ac:
+            item = pending.pop(fut.key)
+            try:
+                res = fut.result()
+            except Exception as exc:  # noqa: BLE001 - reported per tile
+                on_error(item, exc, "".join(traceback.format_exception(exc)))
+            else:
+                on_done(item, res)
+            fut.release()
+            submit_next()
+
+    def reduce(self, fn, items, merge):
+        from distributed import as_completed
+
+        it = iter(items)
+        ac = as_completed()
+        n_sub = 0
+        for _ in range(self.max_in_flight):
+            try:
+                ac.add(self.client.submit(fn, next(it), pure=False, retries=self.retries))
+                n_sub += 1
+            except StopIteration:
+                break
+        ready: list = []
+        last = None
+        for fut in ac:
+            if fut.status == "error":
+                fut.result()  # raises
+            ready.append(fut)
+            try:
+                ac.add(self.client.submit(fn, next(it), pure=False, retries=self.retries))
+            except StopIteration:
+                pass
+            while len(ready) >= 2:
+                a, b = ready.pop(0), ready.pop(0)
+                ac.add(self.client.submit(merge, a, b, pure=False, retries=self.retries))
+            last = fut
+        if ready:
+            return ready[0].result()
+        return last.result() if last is not None else None
+
+    def close(self) -> None:
+        try:
+            self.client.close()
+        finally:
+            if self._own_cluster is not None:
+                self._own_cluster.close()
+
+
+def make_executor(kind: str = "local", **opts) -> Executor:
+    """``local`` (in-process loop), ``dask`` (LocalCluster or ``address=``), or ``jobqueue``
+    (``system=`` slurm, pbs, sge, lsf, htcondor; other options go to the dask-jobqueue cluster)."""
+    if kind == "local":
+        return LocalExecutor(retries=opts.get("retries", 0))
+    if kind == "dask":
+        return DaskExecutor(**opts)
+    if kind == "jobqueue":
+        try:
+            import dask_jobqueue
+        except ImportError as exc:
+            raise RuntimeError("batch clusters need the optional extra: pip install 'swathmill[batch]'") from exc
+        opts = dict(opts)
+        system = opts.pop("system", "slurm").lower()
+        jobs = opts.pop("jobs", 1)
+        retries = opts.pop("retries", 2)
+        classes = {"slurm": "SLURMCluster", "pbs": "PBSCluster", "sge": "SGECluster", "lsf": "LSFCluster",
+                   "htcondor": "HTCondorCluster"}
+        if system not in classes:
+            raise ValueError(f"execution.jobqueue.system must be one of {sorted(classes)}. Got {system!r}")
+        opts.setdefault("scheduler_options", {"dashboard_address": "127.0.0.1:0"})
+        cluster = getattr(dask_jobqueue, classes[system])(**opts)
+        cluster.scale(jobs=jobs)
+        return DaskExecutor(cluster=cluster, retries=retries)
+    raise ValueError(f"executor must be 'local', 'dask' or 'jobqueue'. Got {kind!r}")

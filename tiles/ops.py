@@ -1,0 +1,127 @@
+"""Generic steps that know nothing of the data's meaning: per-pixel band transforms and k x k filters.
+
+They prove the engine (halo handling, tiled equals untiled) and are reused by science steps: the modal
+filter cleans class maps, the band transform selects or rescales bands.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+
+from .step import Block, InputMeta, OutputSpec, Step, StepError
+
+__all__ = ["band_transform_step", "mean_filter_step", "modal_filter_step", "modal_filter", "mean_filter"]
+
+
+# band transform ------------------------------------------------------------------------------------
+def _band_transform_kernel(block: Block, model) -> dict:
+    x = block.data["input"]
+    idx = block.static.get("bands")
+    if idx is not None:
+        x = x[np.asarray(idx)]
+    return {"output": x * np.float32(block.params["scale"]) + np.float32(block.params["offset"])}
+
+
+def _band_transform_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, OutputSpec]:
+    spec = meta["input"].spec
+    bands = list(spec.bands)
+    sel = params.get("bands")
+    if sel is not None:
+        missing = [b for b in sel if b not in bands]
+        if missing:
+            raise StepError(f"band_transform: bands {missing} are not in the input (it has {bands[:5]}...)")
+        idx = [bands.index(b) for b in sel]
+    else:
+        idx = list(range(len(bands)))
+    coords = {k: tuple(v[i] for i in idx) for k, v in spec.coords.items()}
+    return {"output": OutputSpec(bands=tuple(bands[i] for i in idx), dtype=params.get("dtype", "float32"),
+                                 nodata=params.get("nodata", np.nan) if params.get("dtype", "float32").startswith("float")
+                                 else params.get("nodata", 0), coords=coords)}
+
+
+def band_transform_step(name: str, input_ref: str, *, scale: float = 1.0, offset: float = 0.0,
+                        bands: list[str] | None = None, band_index: list[int] | None = None,
+                        dtype: str = "float32") -> Step:
+    """out = in[bands] * scale + offset, per pixel. ``band_index`` must match ``bands`` in the input."""
+    return Step(name=name, kernel=_band_transform_kernel, outputs=_band_transform_outputs,
+                inputs={"input": input_ref},
+                params={"scale": scale, "offset": offset, "bands": bands, "dtype": dtype},
+                static={"bands": band_index} if band_index is not None else {})
+
+
+# k x k filters -------------------------------------------------------------------------------------
+def mean_filter(x: np.ndarray, valid: np.ndarray, size: int) -> np.ndarray:
+    """k x k mean over valid pixels of each band (nodata neither counted nor propagated)."""
+    w = valid.astype(np.float64)
+    num = np.stack([ndimage.uniform_filter(np.where(valid, b, 0.0).astype(np.float64), size, mode="constant")
+                    for b in x])
+    den = ndimage.uniform_filter(w, size, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = num / den
+    out[:, den <= 0] = np.nan
+    return out.astype(np.float32)
+
+
+def _mean_kernel(block: Block, model) -> dict:
+    return {"output": mean_filter(block.data["input"], block.valid, block.params["size"])}
+
+
+def modal_filter(classes: np.ndarray, size: int, n_classes: int, ignore: int = 0) -> np.ndarray:
+    """k x k majority filter of an integer class map; ``ignore`` never votes.
+
+    Ties go to the pixel's own class when it is among the tied, else to the smallest class value.
+    """
+    counts = np.stack([ndimage.uniform_filter((classes == c).astype(np.float32), size, mode="constant")
+                       for c in range(n_classes + 1)])
+    counts = np.rint(counts * size * size).astype(np.int32)
+    counts[ignore] = -1
+    best = counts.max(axis=0)
+    own = np.take_along_axis(counts, np.clip(classes, 0, n_classes)[None].astype(np.intp), 0)[0]
+    out = np.argmax(counts, axis=0).astype(classes.dtype)
+    keep = (own == best) & (classes != ignore)
+    out[keep] = classes[keep]
+    out[classes == ignore] = ignore
+    return out
+
+
+def _modal_kernel(block: Block, model) -> dict:
+    x = block.data["input"]
+    c = np.where(np.isfinite(x[0]) & block.valid, x[0], 0).astype(np.int32) if x.dtype.kind == "f" \
+        else np.where(block.valid, x[0], 0).astype(np.int32)
+    return {"output": modal_filter(c, block.params["size"], block.params["n_classes"])[None]}
+
+
+def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, OutputSpec]:
+    spec = meta["input"].spec
+    if spec.kind != "categorical":
+        raise StepError(f"modal filter needs a class map; input {meta['input'].ref!r} is {spec.kind}")
+    return {"output": OutputSpec(bands=spec.bands[:1], dtype=spec.dtype, nodata=spec.nodata, kind="categorical",
+                                 class_names=spec.class_names, colors=spec.colors)}
+
+
+def _check_size(size: int) -> None:
+    if size < 1 or size % 2 == 0:
+        raise StepError(f"filter size must be an odd number of pixels >= 1. Got {size}")
+
+
+def mean_filter_step(name: str, input_ref: str, size: int = 3) -> Step:
+    _check_size(size)
+    return Step(name=name, kernel=_mean_kernel, outputs=_MeanOutputs(), inputs={"input": input_ref},
+                params={"size": size}, halo=size // 2)
+
+
+class _MeanOutputs:
+    """Picklable outputs callable of the mean filter."""
+
+    def __call__(self, meta, model, params):
+        s = meta["input"].spec
+        return {"output": OutputSpec(bands=s.bands, dtype="float32", nodata=float("nan"), coords=s.coords)}
+
+
+def modal_filter_step(name: str, input_ref: str, size: int = 3, n_classes: int | None = None) -> Step:
+    """Majority filter of a class map, with a halo of size // 2 so tile borders leave no seam."""
+    _check_size(size)
+    if n_classes is None:
+        raise StepError("modal_filter_step needs n_classes (the largest class value)")
+    return Step(name=name, kernel=_modal_kernel, outputs=_modal_outputs, inputs={"input": input_ref},
+                params={"size": size, "n_classes": int(n_classes)}, halo=size // 2, decode=False)

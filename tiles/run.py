@@ -1,0 +1,414 @@
+"""A run: one directory, a list of steps, an executor. Plans, fits, computes tiles, resumes, exports.
+
+Layout of a run directory::
+
+    config.yaml     the frozen configuration of the latest invocation (written by the caller)
+    run.lock        held while a process works on the run
+    ledger.sqlite   finished tiles per step key, products, timings, history
+    models/         fitted models: <step>-<fitkey>.json + .npz
+    stores/         one Zarr v3 store per step
+    products/       Cloud-Optimized GeoTIFFs and their STAC items
+    logs/           one log per invocation
+"""
+from __future__ import annotations
+
+import hashlib
+import logging
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping, Protocol, Sequence
+
+from .executors import Executor, LocalExecutor
+from .grid import Grid, Tiling
+from .ledger import Ledger
+from .lock import RunLock
+from .step import InputMeta, OutputSpec, Step, StepError, canonical_json
+from .store import StoreLayout, TileStore, create_store
+from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
+
+__all__ = ["Run", "RunOptions", "RunResult", "StepReport", "Progress", "PlanError", "ENGINE_VERSION", "plan_check"]
+
+ENGINE_VERSION = "0.1.0"
+log = logging.getLogger("swathmill")
+
+
+class PlanError(ValueError):
+    """The plan cannot run as asked (misaligned tiles, halo too large, unknown input...)."""
+
+
+class Progress(Protocol):
+    def start(self, step: str, total: int, done: int, phase: str = "tiles") -> None: ...
+    def advance(self, step: str, n: int = 1) -> None: ...
+    def end(self, step: str) -> None: ...
+    def message(self, text: str) -> None: ...
+
+
+class _Quiet:
+    def start(self, step, total, done, phase="tiles"): pass
+    def advance(self, step, n=1): pass
+    def end(self, step): pass
+    def message(self, text): log.info(text)
+
+
+@dataclass(frozen=True)
+class RunOptions:
+    """Engine options of a run.
+
+    tile: tile size in pixels (= the shard size of every store unless ``shard`` is given).
+    chunk: inner chunk size in pixels (divides the shard); default tile/2 for tiles of 256+ px.
+    """
+
+    tile: int = 512
+    chunk: int | None = None
+    shard: int | None = None
+    sharding: bool = True
+    zstd_level: int = 1
+    export: bool = True
+    software: str = "swathmill"
+    software_version: str = ENGINE_VERSION
+    config_hash: str = ""
+    warn_tasks: int = 50_000
+
+    def layout(self) -> StoreLayout:
+        shard = self.shard or self.tile
+        chunk = self.chunk or (shard // 2 if shard >= 256 and shard % 2 == 0 else shard)
+        return StoreLayout(shard=shard, chunk=chunk, zstd_level=self.zstd_level, sharding=self.sharding)
+
+
+@dataclass
+class StepReport:
+    name: str
+    key: str
+    total: int = 0
+    done_before: int = 0
+    computed: int = 0
+    failed: dict = field(default_factory=dict)
+    invalidated: str | None = None
+    fit: str | None = None  # "fitted", "loaded" or None
+    seconds: float = 0.0
+    products: list[str] = field(default_factory=list)
+
+    @property
+    def complete(self) -> bool:
+        return not self.failed and self.done_before + self.computed == self.total
+
+
+@dataclass
+class RunResult:
+    steps: list[StepReport] = field(default_factory=list)
+    messages: list[str] = field(default_factory=list)
+    stopped_at: str | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.stopped_at is None and all(s.complete for s in self.steps)
+
+
+def plan_check(tiling: Tiling, layout: StoreLayout, step: str = "?") -> None:
+    """Refuse a plan in which two tiles would touch one shard (lost writes; PITFALLS.md)."""
+    unit = layout.shard if layout.sharding else layout.chunk
+    if tiling.size % unit:
+        raise PlanError(
+            f"step {step!r}: tiles of {tiling.size} px would share shards of {unit} px, and two tasks "
+            f"writing one shard lose data; use a tile size that is a multiple of {unit} px")
+
+
+def _sha(*parts: Any) -> str:
+    return hashlib.sha256(canonical_json(parts).encode()).hexdigest()[:16]
+
+
+class Run:
+    """One run directory. Use as a context manager (it holds the run's lock)."""
+
+    def __init__(self, run_dir: Path, options: RunOptions | None = None, progress: Progress | None = None):
+        self.dir = Path(run_dir).resolve()
+        self.options = options or RunOptions()
+        self.progress = progress or _Quiet()
+        self.lock = RunLock(self.dir / "run.lock")
+        self.ledger: Ledger | None = None
+        self.invocation = time.strftime("%Y%m%dT%H%M%S") + f"-{time.time_ns() % 10**6:06d}"
+
+    # paths -----------------------------------------------------------------------------------------
+    def store_path(self, name: str) -> Path:
+        return self.dir / "stores" / f"{name}.zarr"
+
+    @property
+    def products_dir(self) -> Path:
+        return self.dir / "products"
+
+    def __enter__(self) -> "Run":
+        self.dir.mkdir(parents=True, exist_ok=True)
+        self.lock.acquire()
+        try:
+            for sub in ("models", "stores", "products", "logs"):
+                (self.dir / sub).mkdir(exist_ok=True)
+            self.ledger = Ledger(self.dir / "ledger.sqlite", invocation=self.invocation)
+            self._handler = logging.FileHandler(self.dir / "logs" / f"{self.invocation}.log")
+            self._handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+            log.addHandler(self._handler)
+            log.setLevel(logging.INFO)
+        except BaseException:
+            self.lock.release()
+            raise
+        return self
+
+    def __exit__(self, *exc) -> None:
+        try:
+            if self.ledger:
+                self.ledger.close()
+            log.removeHandler(self._handler)
+            self._handler.close()
+        finally:
+            self.lock.release()
+
+    def _say(self, result: RunResult, text: str) -> None:
+        result.messages.append(text)
+        log.info(text)
+        self.progress.message(text)
+
+    # the main loop ---------------------------------------------------------------------------------
+    def execute(self, steps: Sequence[Step], executor: Executor | None = None,
+                sources: Mapping[str, Path] | None = None) -> RunResult:
+        """Run ``steps`` in order (each may read earlier steps' outputs and ``sources`` stores)."""
+        if self.ledger is None:
+            raise RuntimeError("use the Run as a context manager: `with Run(dir) as run: run.execute(...)`")
+        executor = executor or LocalExecutor()
+        layout = self.options.layout()
+        result = RunResult()
+        known: dict[str, tuple[Path, str, TileStore]] = {}  # step name -> (store path, key, store)
+        for name, path in (sources or {}).items():
+            store = TileStore(Path(path))
+            known[name] = (Path(path), _sha("source", (Path(path) / "zarr.json").read_text()), store)
+        names = [s.name for s in steps]
+        dup = {n for n in names if names.count(n) > 1}
+        if dup:
+            raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
+        for step in steps:
+            report = self._run_step(step, executor, layout, known, result)
+            result.steps.append(report)
+            if not report.complete:
+                result.stopped_at = step.name
+                later = names[names.index(step.name) + 1:]
+                if later:
+                    self._say(result, f"step {step.name!r} did not finish; not started: {', '.join(later)}")
+                break
+        return result
+
+    def _inputs(self, step: Step, known) -> tuple[dict[str, tuple[str, str]], dict[str, InputMeta], Grid, dict]:
+        inputs, meta, keys, grid = {}, {}, {}, None
+        for alias, ref in step.inputs.items():
+            src, output = ref.split("/")
+            if src not in known:
+                raise PlanError(f"step {step.name!r}: input {alias!r} refers to {ref!r}, but no earlier step "
+                                f"or source is called {src!r} (known: {sorted(known)})")
+            path, key, store = known[src]
+            if output not in store.specs:
+                raise PlanError(f"step {step.name!r}: input {alias!r} refers to {ref!r}, but step {src!r} has "
+                                f"outputs {sorted(store.specs)}")
+            if grid is not None and store.grid != grid:
+                raise PlanError(f"step {step.name!r}: inputs lie on different grids ({ref!r} differs)")
+            grid = store.grid
+            inputs[alias] = (str(path), output)
+            meta[alias] = InputMeta(ref, store.grid, store.specs[output])
+            keys[alias] = key
+        if step.reader is not None:
+            grid = step.grid
+        return inputs, meta, grid, keys
+
+    def _run_step(self, step: Step, executor: Executor, layout: StoreLayout, known, result: RunResult) -> StepReport:
+        t_step = time.perf_counter()
+        inputs, meta, grid, in_keys = self._inputs(step, known)
+        try:
+            tiling = Tiling(grid, self.options.tile, step.halo)
+            if step.fit:
+                Tiling(grid, self.options.tile, step.fit.halo)
+        except ValueError as exc:
+            raise PlanError(f"step {step.name!r}: {exc}") from exc
+        plan_check(tiling, layout, step.name)
+        if len(tiling) > self.options.warn_tasks:
+            self._say(result, f"step {step.name!r}: {len(tiling)} tiles is past {self.options.warn_tasks} tasks, "
+                              "where the scheduler struggles; consider a larger tile size")
+        version = f"{self.options.software_version}+{step.version}"
+        ident = step.describe()
+        base = (ident, in_keys, version, self.options.tile, layout.__dict__)
+
+        # fit ------------------------------------------------------------------------------------
+        model, model_path, model_hash, fit_state = None, None, None, None
+        if step.fit is not None:
+            fit_key = _sha("fit", *base)
+            mbase = self.dir / "models" / f"{step.name}-{fit_key}"
+            if mbase.with_suffix(".json").is_file() and mbase.with_suffix(".npz").is_file():
+                fit_state = "loaded"
+                model_hash = hashlib.sha256(mbase.with_suffix(".json").read_bytes()
+                                            + mbase.with_suffix(".npz").read_bytes()).hexdigest()[:16]
+                self._say(result, f"step {step.name!r}: fitted model loaded from {mbase.name}")
+            else:
+                t0 = time.perf_counter()
+                ftiling = Tiling(grid, self.options.tile, step.fit.halo)
+                tiles = list(ftiling)
+                if step.fit.select is not None:
+                    tiles = list(step.fit.select(tiles, step.params))
+                tasks = [TileTask(step, t.index, grid, self.options.tile, step.fit.halo, inputs) for t in tiles]
+                self.progress.start(step.name, len(tasks), 0, phase="fit")
+                acc = executor.reduce(run_accumulate, tasks, step.fit.merge)
+                self.progress.end(step.name)
+                model = step.fit.finalize(acc, step.params, meta)
+                model_hash = save_model(model, mbase)
+                fit_state = "fitted"
+                self.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
+                self._say(result, f"step {step.name!r}: fitted on {len(tasks)} tiles, model {mbase.name}")
+            model_path = str(mbase)
+            model = load_model(model_path)
+        outputs = step.resolve_outputs(meta, model)
+        key = _sha("step", *base, model_hash, {k: v.to_dict() for k, v in outputs.items()})
+        report = StepReport(step.name, key, total=len(tiling), fit=fit_state)
+
+        # invalidation and store -----------------------------------------------------------------
+        spath = self.store_path(step.name)
+        prev = self.ledger.step_key(step.name)
+        if prev is not None and prev != key:
+            report.invalidated = f"{prev} -> {key}"
+            self._say(result, f"step {step.name!r}: parameters, inputs or code changed since the last run; "
+                              "its tiles and products are recomputed (and so are the steps that read it)")
+            self.ledger.forget_step(step.name)
+            for p in self.products_dir.glob(f"{step.name}__*"):
+                p.unlink()
+        fresh = prev != key or not (spath / "zarr.json").is_file()
+        if fresh:
+            if prev == key:
+                self._say(result, f"step {step.name!r}: store missing, recomputing")
+                self.ledger.forget_step(step.name)
+            store = create_store(spath, grid, outputs, layout, attrs={"step": step.name, "key": key})
+        else:
+            store = TileStore(spath)
+            for p in store.remove_partials():
+                log.info("removed stale partial write %s", p)
+        self.ledger.set_step(step.name, key, len(tiling), {
+            "params": dict(step.params), "inputs": dict(step.inputs), "in_keys": in_keys, "model": model_hash,
+            "outputs": {k: v.to_dict() for k, v in outputs.items()}, "sources": dict(step.sources),
+            "grid": grid.to_dict(), "tile": self.options.tile, "version": version})
+
+        done = self.ledger.done(step.name, key)
+        report.done_before = len(done)
+        pending = [t for t in tiling if t.index not in done]
+        if not fresh and pending:
+            first = next(iter(outputs))
+            for t in pending:
+                if not store.check_readable(first, t.core):
+                    self._say(result, f"step {step.name!r}, {t.name}: unreadable shard (a write was cut off); "
+                                      "it is rewritten whole")
+        if done:
+            self._say(result, f"step {step.name!r}: resuming, {len(done)} of {len(tiling)} tiles already finished")
+
+        # tiles -----------------------------------------------------------------------------------
+        tasks = [TileTask(step, t.index, grid, self.options.tile, step.halo, inputs, str(spath), outputs, model_path)
+                 for t in pending]
+        self.progress.start(step.name, len(tiling), len(done))
+        t0 = time.perf_counter()
+
+        def on_done(task: TileTask, res: dict) -> None:
+            self.ledger.mark(step.name, key, task.index, "done", res.get("seconds", 0.0))
+            report.computed += 1
+            self.progress.advance(step.name)
+
+        def on_error(task: TileTask, exc: BaseException, tb: str) -> None:
+            msg = str(exc) or type(exc).__name__
+            self.ledger.mark(step.name, key, task.index, "failed", error=msg)
+            report.failed[task.index] = msg
+            log.error("%s\n%s", msg, tb)
+
+        executor.map(run_tile, tasks, on_done, on_error)
+        self.progress.end(step.name)
+        self.ledger.add_timing(step.name, "tiles", time.perf_counter() - t0)
+        known[step.name] = (spath, key, store)
+
+        # products --------------------------------------------------------------------------------
+        if report.complete and self.options.export:
+            t0 = time.perf_counter()
+            report.products = self._export(step, key, store, outputs, in_keys, model_hash, executor, result)
+            self.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
+        report.seconds = time.perf_counter() - t_step
+        return report
+
+    def provenance(self, step: Step, key: str, in_keys: dict, model_hash: str | None) -> dict:
+        return {
+            "software": self.options.software,
+            "software_version": self.options.software_version,
+            "config_hash": self.options.config_hash,
+            "step": step.name,
+            "step_key": key,
+            "parameters": canonical_json(dict(step.params)),
+            "inputs": canonical_json({a: {"ref": step.inputs[a], "key": k} for a, k in in_keys.items()}),
+            "input_fingerprints": canonical_json({**in_keys, **dict(step.sources)}),
+            "model_hash": model_hash or "",
+            "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        }
+
+    def _export(self, step: Step, key: str, store: TileStore, outputs: dict[str, OutputSpec], in_keys: dict,
+                model_hash: str | None, executor: Executor, result: RunResult) -> list[str]:
+        todo, made = [], []
+        prov = self.provenance(step, key, in_keys, model_hash)
+        for name, spec in outputs.items():
+            if not spec.product:
+                continue
+            path = self.products_dir / f"{step.name}__{name}.tif"
+            rec = self.ledger.product(step.name, name)
+            if rec and rec[0] == key and path.is_file() and Path(str(path) + ".json").is_file():
+                made.append(str(path))
+                continue
+            todo.append(ExportTask(str(store.path), name, str(path), prov, f"{step.name}-{name}"))
+        errors: list[str] = []
+
+        def on_done(task: "ExportTask", _res) -> None:
+            self.ledger.set_product(step.name, key, task.output, task.path)
+            made.append(task.path)
+
+        def on_error(task: "ExportTask", exc, tb) -> None:
+            errors.append(f"product {Path(task.path).name}: {exc}")
+            log.error("%s\n%s", exc, tb)
+
+        executor.map(export_product, todo, on_done, on_error)
+        for e in errors:
+            self._say(result, e)
+        if errors:
+            raise RuntimeError("; ".join(errors))
+        return made
+
+
+@dataclass(frozen=True)
+class ExportTask:
+    store: str
+    output: str
+    path: str
+    provenance: dict
+    label: str
+
+
+def export_product(task: ExportTask) -> str:
+    """Write one output of a store as a COG with its STAC item (runs on a worker)."""
+    from .export import stac_item, write_cog
+
+    store = TileStore(Path(task.store))
+    spec = store.specs[task.output]
+    tags = {k: str(v) for k, v in task.provenance.items()}
+    path = write_cog(Path(task.path), lambda win: store.read(task.output, win), store.grid, spec, tags)
+    stac_item(path, store.grid, spec, task.provenance, item_id=Path(task.path).stem)
+    return str(path)
+
+
+def run_status(run_dir: Path) -> list[dict]:
+    """Per step: key, tiles total, done, failed (with errors), pending. Reads the ledger only."""
+    ledger = Ledger(Path(run_dir) / "ledger.sqlite")
+    try:
+        out = []
+        for s in ledger.steps():
+            done = ledger.done(s["name"], s["key"])
+            failed = ledger.failed(s["name"], s["key"])
+            total = s["total"] or 0
+            out.append({"step": s["name"], "key": s["key"], "total": total, "done": len(done),
+                        "failed": len(failed), "pending": total - len(done),
+                        "errors": {f"{i},{j}": e for (i, j), e in failed.items()}})
+        return out
+    finally:
+        ledger.close()

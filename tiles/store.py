@@ -1,0 +1,252 @@
+"""Tile stores: one Zarr v3 group per step, one sharded array per output, a valid-pixel mask.
+
+Layout of ``<name>.zarr``::
+
+    <output>      (bands, y, x)   chunks (bands, C, C), shards (bands, S, S), fill = nodata
+    valid         (y, x) uint8    1 where the pixel holds data, same shards
+    x, y          pixel-centre coordinates in the grid's CRS
+    <band dim>    band names, and per-band coordinates (e.g. wavelength) as 1-D arrays
+    spatial_ref   CF grid mapping (crs_wkt, GeoTransform) so rioxarray finds the CRS
+
+The arrays carry ``dimension_names`` and CF attributes, so ``xarray.open_zarr`` reads the group as a
+Dataset. A tile of the engine is always a whole number of shards, so no two tasks write one shard.
+"""
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+import zarr
+from zarr.codecs import BytesCodec, ZstdCodec
+
+from .grid import Grid, Window
+from .step import OutputSpec
+
+__all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode"]
+
+zarr.config.set({"async.concurrency": 8})
+
+
+class StoreError(ValueError):
+    """A store is missing, malformed, or does not match what the plan expects."""
+
+
+@dataclass(frozen=True)
+class StoreLayout:
+    """Chunking of a store: shards of ``shard`` px (= the tile size), inner chunks of ``chunk`` px."""
+
+    shard: int
+    chunk: int
+    zstd_level: int = 1
+    sharding: bool = True
+
+    def __post_init__(self) -> None:
+        if self.chunk <= 0 or self.shard <= 0:
+            raise StoreError(f"chunk and shard sizes must be positive. Got chunk={self.chunk}, shard={self.shard}")
+        if self.sharding and self.shard % self.chunk:
+            raise StoreError(
+                f"tile size {self.shard} px is not a multiple of the chunk size {self.chunk} px: "
+                f"choose a tile of a multiple of {self.chunk} px, or a chunk that divides {self.shard}")
+
+
+def band_dim(output: str, first: bool) -> str:
+    return "band" if first else f"band_{output}"
+
+
+def _encoding(layout: StoreLayout, nbands: int | None) -> dict:
+    lead = () if nbands is None else (nbands,)
+    enc = {"chunks": lead + (layout.chunk, layout.chunk), "compressors": [ZstdCodec(level=layout.zstd_level)]}
+    if layout.sharding:
+        enc["shards"] = lead + (layout.shard, layout.shard)
+    else:
+        enc["chunks"] = lead + (layout.shard, layout.shard)
+    return enc
+
+
+def create_store(path: Path, grid: Grid, outputs: Mapping[str, OutputSpec], layout: StoreLayout,
+                 attrs: Mapping | None = None) -> "TileStore":
+    """Create an empty store for ``outputs`` on ``grid``. An existing store at ``path`` is replaced."""
+    from pyproj import CRS
+
+    path = Path(path)
+    if path.exists():
+        import shutil
+        shutil.rmtree(path)
+    root = zarr.open_group(str(path), mode="w", zarr_format=3)
+    crs = CRS.from_user_input(grid.crs)
+    t = grid.transform
+    sr = root.create_array("spatial_ref", shape=(), dtype="int32", fill_value=0, dimension_names=())
+    sr.attrs.update({"crs_wkt": crs.to_wkt(), "spatial_ref": crs.to_wkt(),
+                     "GeoTransform": " ".join(str(v) for v in (t.c, t.a, t.b, t.f, t.d, t.e)),
+                     **{k: v for k, v in crs.to_cf().items() if isinstance(v, (str, int, float))}})
+    sr[()] = 0
+    xa = root.create_array("x", shape=(grid.cols,), dtype="float64", dimension_names=("x",), chunks=(grid.cols,))
+    xa[:] = np.asarray(grid.x_coords())
+    xa.attrs.update({"standard_name": "projection_x_coordinate", "axis": "X"})
+    ya = root.create_array("y", shape=(grid.rows,), dtype="float64", dimension_names=("y",), chunks=(grid.rows,))
+    ya[:] = np.asarray(grid.y_coords())
+    ya.attrs.update({"standard_name": "projection_y_coordinate", "axis": "Y"})
+    for n, (name, spec) in enumerate(outputs.items()):
+        if name in ("valid", "x", "y", "spatial_ref") or name.startswith("band"):
+            raise StoreError(f"output name {name!r} is reserved: pick another name")
+        dim = band_dim(name, n == 0)
+        nb = len(spec.bands)
+        arr = root.create_array(name, shape=(nb, grid.rows, grid.cols), dtype=spec.dtype,
+                                fill_value=spec.nodata, dimension_names=(dim, "y", "x"), **_encoding(layout, nb))
+        coord_names = [f"{c}" if n == 0 else f"{c}_{name}" for c in spec.coords]
+        arr.attrs.update({"grid_mapping": "spatial_ref", "coordinates": " ".join(["spatial_ref", *coord_names]),
+                          **{k: v for k, v in spec.to_dict()["attrs"].items()}})
+        b = root.create_array(dim, shape=(nb,), dtype=str, dimension_names=(dim,), chunks=(nb,))
+        b[:] = np.asarray(spec.bands, dtype=str)
+        for cname, values in spec.coords.items():
+            c = root.create_array(f"{cname}" if n == 0 else f"{cname}_{name}", shape=(nb,), dtype="float64",
+                                  dimension_names=(dim,), chunks=(nb,))
+            c[:] = np.asarray(values, dtype="float64")
+    v = root.create_array("valid", shape=(grid.rows, grid.cols), dtype="uint8", fill_value=0,
+                          dimension_names=("y", "x"), **_encoding(layout, None))
+    v.attrs.update({"grid_mapping": "spatial_ref", "coordinates": "spatial_ref", "flag_values": [0, 1], "flag_meanings": "nodata valid"})
+    root.attrs.update({"swathmill": {"grid": grid.to_dict(), "outputs": {k: s.to_dict() for k, s in outputs.items()},
+                                     "layout": {"shard": layout.shard, "chunk": layout.chunk,
+                                                "sharding": layout.sharding, "zstd_level": layout.zstd_level},
+                                     **(dict(attrs) if attrs else {})}})
+    return TileStore(path)
+
+
+def open_store(path: Path) -> "TileStore":
+    return TileStore(Path(path))
+
+
+def decode(raw: np.ndarray, spec: OutputSpec) -> np.ndarray:
+    """Stored values to float32 physical values (CF scale_factor/add_offset), NaN at nodata."""
+    out = raw.astype(np.float32)
+    if spec.nodata is not None and not (isinstance(spec.nodata, float) and np.isnan(spec.nodata)):
+        out[raw == np.asarray(spec.nodata, dtype=raw.dtype)] = np.nan
+    scale = spec.attrs.get("scale_factor")
+    offset = spec.attrs.get("add_offset")
+    if scale is not None:
+        out *= np.float32(scale)
+    if offset:
+        out += np.float32(offset)
+    return out
+
+
+def encode(values: np.ndarray, spec: OutputSpec, valid: np.ndarray) -> np.ndarray:
+    """Physical values to the stored dtype; nodata wherever ``valid`` is False or the value is not finite."""
+    dt = np.dtype(spec.dtype)
+    v = np.asarray(values)
+    scale = spec.attrs.get("scale_factor")
+    offset = spec.attrs.get("add_offset")
+    if scale is not None or offset:
+        v = v.astype(np.float64)
+        if offset:
+            v = v - offset
+        if scale is not None:
+            v = v / scale
+    bad = ~np.broadcast_to(valid, v.shape)
+    if np.issubdtype(dt, np.floating):
+        out = v.astype(dt)
+        bad = bad | ~np.isfinite(out)
+    else:
+        fin = np.isfinite(v) if np.issubdtype(v.dtype, np.floating) else np.ones(v.shape, bool)
+        bad = bad | ~fin
+        if np.issubdtype(v.dtype, np.floating):
+            info = np.iinfo(dt)
+            v = np.clip(np.rint(np.where(fin, v, 0)), info.min, info.max)
+        out = v.astype(dt)
+    out[bad] = np.asarray(spec.nodata).astype(dt)
+    return out
+
+
+class TileStore:
+    """An opened store: grid, output specs, and window reads and writes."""
+
+    def __init__(self, path: Path):
+        self.path = Path(path)
+        if not (self.path / "zarr.json").is_file():
+            raise StoreError(f"no store at {self.path} (zarr.json missing)")
+        self.root = zarr.open_group(str(self.path), mode="r+", zarr_format=3)
+        meta = self.root.attrs.get("swathmill")
+        if not meta:
+            raise StoreError(f"{self.path} is a Zarr group but not a swathmill store (no 'swathmill' attribute)")
+        self.meta = meta
+        self.grid = Grid.from_dict(meta["grid"])
+        self.specs = {k: OutputSpec.from_dict(v) for k, v in meta["outputs"].items()}
+        lay = meta["layout"]
+        self.layout = StoreLayout(lay["shard"], lay["chunk"], lay.get("zstd_level", 1), lay.get("sharding", True))
+        self._arrays: dict[str, zarr.Array] = {}
+
+    def array(self, name: str) -> zarr.Array:
+        if name not in self._arrays:
+            if name not in self.specs and name != "valid":
+                raise StoreError(f"store {self.path.name} has no output {name!r}; it has {sorted(self.specs)}")
+            self._arrays[name] = self.root[name]
+        return self._arrays[name]
+
+    def read(self, output: str, win: Window) -> np.ndarray:
+        rs, cs = win.slices
+        return self.array(output)[:, rs, cs]
+
+    def read_valid(self, win: Window) -> np.ndarray:
+        rs, cs = win.slices
+        return self.array("valid")[rs, cs].astype(bool)
+
+    def write(self, output: str, win: Window, data: np.ndarray) -> None:
+        rs, cs = win.slices
+        self.array(output)[:, rs, cs] = data
+
+    def write_valid(self, win: Window, valid: np.ndarray) -> None:
+        rs, cs = win.slices
+        self.array("valid")[rs, cs] = valid.astype(np.uint8)
+
+    def check_readable(self, output: str, win: Window) -> bool:
+        """Whether the shards under ``win`` decode (a torn shard after a kill fails here)."""
+        try:
+            self.read(output, win)
+            if output != "valid":
+                self.read_valid(win)
+            return True
+        except Exception:
+            return False
+
+    def shard_keys(self, win: Window) -> list[tuple[zarr.Array, str]]:
+        """The (array, key) of every stored object under ``win`` (a whole number of shards)."""
+        keys = []
+        for name in [*self.specs, "valid"]:
+            arr = self.array(name)
+            lead = (0,) if arr.ndim == 3 else ()
+            unit = self.layout.shard if self.layout.sharding else self.layout.chunk
+            for i in range(win.row // unit, -(-(win.row + win.rows) // unit)):
+                for j in range(win.col // unit, -(-(win.col + win.cols) // unit)):
+                    keys.append((arr, arr.metadata.encode_chunk_key(lead + (i, j))))
+        return keys
+
+    def clear(self, win: Window) -> None:
+        """Delete every stored object under ``win`` so that the next write starts from nothing.
+
+        A torn shard (a kill in the middle of its write) fails its checksum on every later partial
+        write; deleting it first makes the rewrite whole.
+        """
+        from zarr.core.sync import sync
+
+        for arr, key in self.shard_keys(win):
+            sync(arr.store_path.store.delete(f"{arr.path}/{key}"))
+
+    def remove_partials(self) -> list[Path]:
+        """Delete stale ``*.partial`` files that a killed zarr write leaves behind."""
+        found = []
+        for dirpath, _dirs, files in os.walk(self.path):
+            for f in files:
+                if f.endswith(".partial") or ".partial" in f:
+                    p = Path(dirpath) / f
+                    p.unlink(missing_ok=True)
+                    found.append(p)
+        return found
+
+
+def store_summary(path: Path) -> str:
+    s = open_store(path)
+    return json.dumps({"grid": s.grid.to_dict(), "outputs": list(s.specs)})
