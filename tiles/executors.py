@@ -202,6 +202,11 @@ def make_executor(kind: str = "local", **opts) -> Executor:
                    "htcondor": "HTCondorCluster"}
         if system not in classes:
             raise ValueError(f"execution.jobqueue.system must be one of {sorted(classes)}. Got {system!r}")
+        lifetime = opts.pop("worker_lifetime", None)
+        stagger = opts.pop("worker_lifetime_stagger", None)
+        if lifetime:  # below the wall time, or workers die with KilledWorker when the job ends
+            opts["worker_extra_args"] = [*opts.get("worker_extra_args", []), "--lifetime", lifetime,
+                                         *(["--lifetime-stagger", stagger] if stagger else []), "--lifetime-restart"]
         opts.setdefault("scheduler_options", {"dashboard_address": "127.0.0.1:0"})
         cluster = getattr(dask_jobqueue, classes[system])(**opts)
         cluster.scale(jobs=jobs)

@@ -45,8 +45,15 @@ class RunConfig(Strict):
 
 
 def load_run_config(path: Path) -> tuple[RunConfig, dict]:
-    data = load_yaml(Path(path))
-    return validate(RunConfig, data, Path(path)), data
+    """Load and validate a run configuration. ``execution`` may name a profile file (see configs/)."""
+    path = Path(path)
+    data = load_yaml(path)
+    ex = data.get("execution")
+    if isinstance(ex, str):
+        prof = resolve(path.resolve().parent, ex)
+        pdata = load_yaml(prof)
+        data = {**data, "execution": validate(ExecutionConfig, pdata.get("execution", pdata), prof).model_dump()}
+    return validate(RunConfig, data, path), data
 
 
 def run_dir_of(cfg: RunConfig, config_path: Path) -> Path:
