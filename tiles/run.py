@@ -335,13 +335,13 @@ class Run:
         return {
             "software": self.options.software,
             "software_version": self.options.software_version,
-            "config_hash": self.options.config_hash,
+            "config_hash": self.options.config_hash or "unset",  # GDAL drops empty tags
             "step": step.name,
             "step_key": key,
             "parameters": canonical_json(dict(step.params)),
             "inputs": canonical_json({a: {"ref": step.inputs[a], "key": k} for a, k in in_keys.items()}),
             "input_fingerprints": canonical_json({**in_keys, **dict(step.sources)}),
-            "model_hash": model_hash or "",
+            "model_hash": model_hash or "none",
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         }
 
