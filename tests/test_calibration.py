@@ -1,0 +1,184 @@
+"""Calibration against scikit-learn: OLS, PLS, cross-validated predictions, and the tiled step."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import sklearn.metrics as skm
+from sklearn.cross_decomposition import PLSRegression
+from sklearn.linear_model import LinearRegression
+from sklearn.model_selection import GroupKFold, KFold, cross_val_predict
+
+from tiles.step import OutputSpec
+from workflows.calibration import (
+    CalibrationConfig,
+    CalibrationError,
+    CalibrationSamples,
+    build_steps,
+    fit_calibration,
+    predict_calibration,
+)
+
+
+def _linear_data(rng, n=60, p=2, noise=0.1):
+    X = rng.uniform(0.0, 1.0, (n, p))
+    y = 5.0 + X @ np.array([3.0, -2.0, 1.0][:p]) + rng.normal(0, noise, n)
+    return X, y
+
+
+def _spectral_data(rng, n=80, bands=40, noise=0.01):
+    """Spectra mixing three smooth shapes; the quantity is the weight of the first."""
+    wl = np.linspace(0, 1, bands)
+    shapes = np.stack([np.exp(-((wl - c) ** 2) / 0.02) for c in (0.3, 0.5, 0.8)])
+    w = rng.uniform(0, 1, (n, 3))
+    X = 0.2 + w @ shapes * 0.1 + rng.normal(0, noise, (n, bands))
+    return X, 10 * w[:, 0] + rng.normal(0, 0.05, n)
+
+
+def test_linear_matches_sklearn(rng):
+    X, y = _linear_data(rng)
+    m = fit_calibration(X, y, method="linear", predictor_names=["a", "b"], folds=5, seed=3)
+    ref = LinearRegression().fit(X, y)  # sklearn.linear_model.LinearRegression
+    np.testing.assert_allclose(m["coef"], ref.coef_, rtol=1e-10)
+    assert float(m["intercept"]) == pytest.approx(ref.intercept_, rel=1e-10)
+    # sklearn.model_selection.cross_val_predict with the same shuffled KFold
+    cv = cross_val_predict(LinearRegression(), X, y, cv=KFold(5, shuffle=True, random_state=3))
+    np.testing.assert_allclose(m["cv_predicted"], cv, rtol=1e-10)
+    # sklearn.metrics on the cross-validated predictions
+    assert m["cv"]["r2"] == pytest.approx(skm.r2_score(y, cv), rel=1e-10)
+    assert m["cv"]["rmse"] == pytest.approx(np.sqrt(skm.mean_squared_error(y, cv)), rel=1e-10)
+    assert m["cv"]["bias"] == pytest.approx(np.mean(cv - y), abs=1e-12)
+    Xn = rng.uniform(0.1, 0.9, (30, 2))
+    value, sigma, outside = predict_calibration(m, Xn)
+    np.testing.assert_allclose(value, ref.predict(Xn), rtol=1e-10)
+    assert not outside.any() and np.all(sigma > 0)
+
+
+def test_pls_matches_sklearn(rng):
+    X, y = _spectral_data(rng)
+    m = fit_calibration(X, y, method="pls", predictor_names=[f"b{i}" for i in range(X.shape[1])],
+                        n_components=3, folds=4, seed=1)
+    ref = PLSRegression(n_components=3).fit(X, y)  # sklearn.cross_decomposition.PLSRegression
+    Xn, _ = _spectral_data(rng, n=25)
+    value, _, _ = predict_calibration(m, Xn)
+    np.testing.assert_allclose(value, ref.predict(Xn).ravel(), rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(Xn @ m["score_map"] + m["score_offset"], ref.transform(Xn), rtol=1e-9, atol=1e-9)
+    cv = cross_val_predict(PLSRegression(n_components=3), X, y, cv=KFold(4, shuffle=True, random_state=1)).ravel()
+    np.testing.assert_allclose(m["cv_predicted"], cv, rtol=1e-9, atol=1e-9)
+    assert m["cv"]["r2"] == pytest.approx(skm.r2_score(y, cv), rel=1e-9)
+    assert m["cv"]["r2"] > 0.9  # the quantity is built into the spectra
+
+
+def test_pls_chooses_components_by_cv(rng):
+    X, y = _spectral_data(rng)
+    m = fit_calibration(X, y, method="pls", predictor_names=[f"b{i}" for i in range(X.shape[1])],
+                        n_components=None, max_components=6, folds=5, seed=0)
+    kf = KFold(5, shuffle=True, random_state=0)
+    rmse = [np.sqrt(skm.mean_squared_error(y, cross_val_predict(PLSRegression(k), X, y, cv=kf).ravel()))
+            for k in range(1, 7)]  # sklearn as the oracle of the CV curve
+    np.testing.assert_allclose(m["cv_rmse_by_components"], rmse, rtol=1e-9)
+    assert m["n_components"] == int(np.argmin(rmse)) + 1
+
+
+def test_grouped_cross_validation(rng):
+    X, y = _linear_data(rng, n=48)
+    groups = np.repeat(np.arange(8), 6)
+    m = fit_calibration(X, y, method="linear", predictor_names=["a", "b"], groups=groups, folds=4)
+    cv = cross_val_predict(LinearRegression(), X, y, cv=GroupKFold(4), groups=groups)  # sklearn GroupKFold
+    np.testing.assert_allclose(m["cv_predicted"], cv, rtol=1e-10)
+    assert m["cv"]["grouped"] is True
+    with pytest.raises(CalibrationError, match="5 folds need at least 5 sample groups. Got 2"):
+        fit_calibration(X, y, method="linear", predictor_names=["a", "b"], groups=groups % 2, folds=5)
+
+
+def test_uncertainty_follows_cv_residuals(rng):
+    n = 200
+    x = rng.uniform(0, 1, (n, 1))
+    y = 10 * x[:, 0] + rng.normal(0, 0.05 + 1.0 * x[:, 0])  # error grows with the value
+    m = fit_calibration(x, y, method="linear", predictor_names=["a"], folds=5)
+    resid = m["cv_predicted"] - y
+    # the bins hold the RMS of CV residuals (definition in the module docstring)
+    order = np.argsort(m["cv_predicted"], kind="stable")
+    np.testing.assert_allclose(m["sigma"], [np.sqrt(np.mean(resid[p] ** 2)) for p in np.array_split(order, 5)])
+    _, sigma, _ = predict_calibration(m, np.array([[0.05], [0.95]]))
+    assert sigma[1] > 3 * sigma[0]
+    # few samples: a single value, the CV RMSE
+    m_small = fit_calibration(x[:15], y[:15], method="linear", predictor_names=["a"], folds=5)
+    _, s, _ = predict_calibration(m_small, np.array([[0.1], [0.9]]))
+    np.testing.assert_allclose(s, m_small["cv"]["rmse"])
+
+
+def test_out_of_range(rng):
+    X, y = _linear_data(rng)
+    m = fit_calibration(X, y, method="linear", predictor_names=["a", "b"], range_margin=0.1)
+    lo, hi = X.min(0), X.max(0)
+    pts = np.array([[lo[0], hi[1]], [hi[0] + 0.05 * (hi[0] - lo[0]), lo[1]],
+                    [hi[0] + 0.15 * (hi[0] - lo[0]), lo[1]], [np.nan, 0.5]])
+    value, sigma, outside = predict_calibration(m, pts)
+    np.testing.assert_array_equal(outside, [False, False, True, False])
+    assert np.isnan(value[3]) and np.isnan(sigma[3])
+    Xs, ys = _spectral_data(rng)
+    mp = fit_calibration(Xs, ys, method="pls", predictor_names=[str(i) for i in range(Xs.shape[1])], n_components=2)
+    _, _, out = predict_calibration(mp, np.vstack([Xs[:5], Xs[:1] * 3.0]))
+    np.testing.assert_array_equal(out, [False] * 5 + [True])
+
+
+def test_config_errors():
+    with pytest.raises(ValueError, match="needs 'bands'"):
+        CalibrationConfig(name="c", quantity="clay", method="linear", input="features/features")
+    with pytest.raises(ValueError, match="either 'bands' or 'wavelength_ranges'"):
+        CalibrationConfig(name="c", quantity="clay", method="pls", input="m/r", bands=["a"],
+                          wavelength_ranges=[(2000, 2400)])
+    with pytest.raises(CalibrationError, match="needs at least 5 samples"):
+        fit_calibration(np.ones((4, 1)), np.arange(4.0), method="linear", predictor_names=["a"])
+
+
+def _predictor_map(rng, rows=48, cols=40):
+    f = np.stack([rng.uniform(0, 1, (rows, cols)), rng.uniform(0, 1, (rows, cols)),
+                  rng.uniform(0, 1, (rows, cols))]).astype(np.float32)
+    spec = OutputSpec(bands=("depth", "area", "unused"), dtype="float32", nodata=float("nan"))
+    return f, spec
+
+
+@pytest.mark.parametrize("tile", [16, 48])
+def test_step_tiled_equals_whole(tmp_path, rng, tile):
+    from tiles.tasks import load_model
+    from tiles.testing import run_on_arrays
+
+    f, spec = _predictor_map(rng)
+    rows, cols = rng.integers(0, 48, 60), rng.integers(0, 40, 60)
+    keep = np.unique(rows * 40 + cols, return_index=True)[1]
+    rows, cols = rows[keep], cols[keep]
+    values = 2.0 + 4.0 * f[0, rows, cols] - 1.5 * f[1, rows, cols] + rng.normal(0, 0.05, rows.size)
+    valid = np.ones((48, 40), bool)
+    valid[rows[0], cols[0]] = False  # one sample on a nodata pixel: dropped, named in the model
+    f[:, rows[0], cols[0]] = np.nan
+    samples = CalibrationSamples(rows=rows, cols=cols, values=values, ids=[f"s{i}" for i in range(rows.size)])
+    section = {"name": "clay_map", "quantity": "clay", "units": "%", "method": "linear",
+               "input": "src/feat", "bands": ["depth", "area"], "cv": {"folds": 5, "seed": 2}}
+    out, _ = run_on_arrays(build_steps(section, samples), {"feat": (f, spec)}, tmp_path, tile=tile, valid=valid)
+    model = load_model(next((tmp_path / "run" / "models").glob("clay_map-*.json")).with_suffix(""))
+    assert model["dropped_samples"] == ["s0"]
+    # the whole-array reference: fit on the sample pixels directly, predict every pixel
+    ok = np.arange(rows.size) != 0
+    whole = fit_calibration(f[:2, rows[ok], cols[ok]].T, values[ok], method="linear",
+                            predictor_names=["depth", "area"], folds=5, seed=2)
+    np.testing.assert_allclose(model["coef"], whole["coef"], rtol=1e-10)
+    np.testing.assert_allclose(model["cv_predicted"], whole["cv_predicted"], rtol=1e-10)
+    v, s, o = predict_calibration(whole, f[:2].reshape(2, -1).T)
+    # DESIGN.md invariant 1: tiled equals untiled (floats to 1e-6 relative)
+    np.testing.assert_allclose(out["clay_map/quantity"][0].ravel(), v, rtol=1e-6, equal_nan=True)
+    np.testing.assert_allclose(out["clay_map/uncertainty"][0].ravel(), s, rtol=1e-6, equal_nan=True)
+    flags = out["clay_map/out_of_range"][0].ravel()
+    np.testing.assert_array_equal(flags[np.isfinite(v)], np.where(o[np.isfinite(v)], 2, 1))
+    assert np.isnan(out["clay_map/quantity"][0, rows[0], cols[0]])
+
+
+def test_step_rejects_sample_outside_grid(tmp_path, rng):
+    from tiles.testing import run_on_arrays
+
+    f, spec = _predictor_map(rng, 20, 20)
+    samples = CalibrationSamples(rows=np.array([1, 2, 3, 4, 5, 25]), cols=np.array([1, 2, 3, 4, 5, 6]),
+                                 values=np.arange(6.0))
+    section = {"name": "q", "quantity": "q", "method": "linear", "input": "src/feat", "bands": ["depth"]}
+    with pytest.raises(Exception, match="row 25, col 6 lies outside the 20 x 20 grid"):
+        run_on_arrays(build_steps(section, samples), {"feat": (f, spec)}, tmp_path, tile=16)
