@@ -46,8 +46,18 @@ class TileTask:
         return f"{self.step.name}-{self.index[0]}-{self.index[1]}"
 
 
-@lru_cache(maxsize=32)
 def _store(path: str) -> TileStore:
+    """The opened store at ``path``, cached per process while its ``zarr.json`` is unchanged.
+
+    A store recreated at the same path (an invalidated step) has a new ``zarr.json`` (its attributes
+    hold the step key); keying the cache on its content keeps a process from writing or decoding
+    with a stale layout or output description.
+    """
+    return _store_cached(path, (Path(path) / "zarr.json").read_bytes())
+
+
+@lru_cache(maxsize=32)
+def _store_cached(path: str, _meta: bytes) -> TileStore:
     return TileStore(Path(path))
 
 
