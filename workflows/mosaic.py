@@ -1,0 +1,672 @@
+"""The mosaic step: many flight lines onto one grid, overlaps resolved, brightness matched.
+
+Pure functions (no I/O) do the science:
+
+- :func:`resolve_overlaps` picks or blends the lines per pixel by a policy: ``nearest_centre`` (the
+  line whose footprint edge is farthest, i.e. the pixel is nearest its swath centre; the default),
+  ``first``, ``last`` (in config order) or ``feather`` (weights rising linearly from the footprint
+  edge to ``blend_width`` pixels inside it).
+- :func:`pair_sums` / :func:`solve_brightness` fit the brightness matching: for every pair of
+  overlapping lines, sums over a seeded sample of pixels where both are valid; then one least-squares
+  adjustment over all lines, per band, of gains and offsets ``g_k x + o_k`` minimising
+  ``sum over pairs and samples of (g_i x_i + o_i - g_j x_j - o_j)^2`` with the reference line fixed
+  at ``g = 1, o = 0``. Solving all lines at once makes the corrections agree around the overlap graph.
+- Overlap statistics before and after matching (mean and RMS difference per pair and band) are
+  computed exactly from the same sums, analytically, so no second pass over the data is needed.
+  They describe the sampled pixels, not every overlapping pixel.
+
+:class:`MosaicConfig` is the YAML section; :func:`build_mosaic_step` turns it into the engine's
+:class:`~tiles.step.Step` (named ``mosaic``; outputs ``reflectance`` and ``source``).
+"""
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal, Mapping, Sequence
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+from tiles.grid import Grid, Tile
+from tiles.step import Block, Fit, OutputSpec, Step
+
+from .ingest import (
+    IngestError,
+    LineInfo,
+    bad_band_mask,
+    footprint_to_grid,
+    footprints_geojson,
+    inspect_line,
+    read_lines,
+    segments_of,
+    target_grid,
+)
+
+__all__ = [
+    "MosaicConfig",
+    "MosaicPlan",
+    "plan_mosaic",
+    "build_mosaic_step",
+    "mosaic_step",
+    "mosaic_kernel",
+    "resolve_overlaps",
+    "sample_mask",
+    "pair_sums",
+    "accumulate_overlaps",
+    "merge_overlaps",
+    "finalize_brightness",
+    "solve_brightness",
+    "overlap_statistics",
+    "select_overlap_tiles",
+    "write_footprints",
+    "SUGGESTED_BAD_BANDS",
+]
+
+#: Usual water-vapour windows (nm), a suggestion for ``bad_bands`` (common practice).
+SUGGESTED_BAD_BANDS: tuple[tuple[float, float], ...] = ((1340.0, 1460.0), (1790.0, 1960.0))
+
+Policy = Literal["nearest_centre", "first", "last", "feather"]
+
+
+class MosaicConfig(BaseModel):
+    """The ``mosaic`` section of a run's YAML.
+
+    Paths are relative to the config file's folder (``base_dir``).
+    """
+
+    model_config = ConfigDict(extra="forbid")
+
+    lines: list[str] = Field(min_length=1, description="flight line rasters, in priority order")
+    names: list[str] | None = Field(None, description="line names (default: file stems)")
+    wavelength_table: str | dict[str, str] | None = Field(
+        None, description="sidecar CSV of band centres for every line, or {line file name: table}")
+    wavelength_unit: Literal["auto", "nm", "um"] = "auto"
+    scale_factor: float | None = Field(None, description="stored -> reflectance; None: file's or 1e-4 for integers")
+    add_offset: float | None = None
+    nodata: float | None = Field(None, description="stored nodata for lines that declare none")
+    bad_bands: list[tuple[float, float]] = Field(default_factory=list, description="windows in nm dropped everywhere")
+    crs: str | None = None
+    resolution: float | tuple[float, float] | None = None
+    bounds: tuple[float, float, float, float] | None = None
+    overlap: Policy = "nearest_centre"
+    blend_width: float = Field(20.0, gt=0, description="feather width in pixels")
+    resampling: Literal["nearest", "bilinear"] = "nearest"
+    brightness_matching: bool = True
+    reference_line: int | str = Field(1, description="1-based number or name of the line others are matched to")
+    sample_size: int = Field(20000, gt=0, description="sampled pixels per overlapping pair")
+    seed: int = 0
+    spectral_tolerance: float = Field(1.0, ge=0, description="nm; larger band-centre differences need resampling")
+    on_mismatch: Literal["resample", "refuse"] = "resample"
+    output_nodata: int = -9999
+    output_scale: float = Field(1e-4, gt=0)
+
+    @field_validator("bad_bands")
+    @classmethod
+    def _windows(cls, v: list[tuple[float, float]]) -> list[tuple[float, float]]:
+        for w in v:
+            if w[1] < w[0]:
+                raise ValueError(f"bad_bands window must be (low, high) in nm. Got {list(w)}")
+        return v
+
+    @model_validator(mode="after")
+    def _names(self) -> "MosaicConfig":
+        if self.names is not None and len(self.names) != len(self.lines):
+            raise ValueError(f"names has {len(self.names)} entries for {len(self.lines)} lines")
+        if not -32768 <= self.output_nodata <= 32767:
+            raise ValueError(f"output_nodata must fit int16. Got {self.output_nodata}")
+        return self
+
+
+@dataclass
+class MosaicPlan:
+    """Everything the mosaic step needs, worked out before any pixel is warped."""
+
+    config: MosaicConfig
+    lines: list[LineInfo]
+    grid: Grid
+    reference: int
+    wavelength: np.ndarray
+    fwhm: np.ndarray
+    line_params: list[dict]
+    spectral: dict[int, np.ndarray]
+    segments: dict[int, np.ndarray]
+    overlaps: list[dict]
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def band_names(self) -> tuple[str, ...]:
+        width = max(3, len(str(len(self.wavelength))))
+        return tuple(f"b{i + 1:0{width}d}" for i in range(len(self.wavelength)))
+
+
+# ---------------------------------------------------------------------------------------------
+# planning
+
+
+def _table_for(cfg: MosaicConfig, path: Path, base: Path) -> Path | None:
+    t = cfg.wavelength_table
+    if t is None:
+        return None
+    if isinstance(t, str):
+        return (base / t).resolve()
+    for key in (path.name, str(path), path.stem):
+        if key in t:
+            return (base / t[key]).resolve()
+    return None
+
+
+def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
+    """Inspect the lines, choose the bands and the grid, and describe each line for the reader.
+
+    Raises :class:`~workflows.ingest.IngestError` naming the line (and band) at fault.
+    """
+    from .spectra import SpectralCoverageError, resample
+
+    base = Path(base_dir)
+    paths = [(base / p).resolve() if not Path(p).is_absolute() else Path(p) for p in cfg.lines]
+    names = cfg.names or [p.stem for p in paths]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise IngestError(f"line names must be unique; repeated: {dup}. Set 'names' in the mosaic config")
+    lines = [
+        inspect_line(p, number=k + 1, name=names[k], wavelength_table=_table_for(cfg, p, base),
+                     wavelength_unit=cfg.wavelength_unit, nodata=cfg.nodata, scale=cfg.scale_factor,
+                     offset=cfg.add_offset)
+        for k, p in enumerate(paths)
+    ]
+    if len(lines) > 65535:
+        raise IngestError(f"at most 65535 lines fit the source layer. Got {len(lines)}")
+    if isinstance(cfg.reference_line, str):
+        if cfg.reference_line not in names:
+            raise IngestError(f"reference_line {cfg.reference_line!r} is not a line name. Got names {names}")
+        reference = names.index(cfg.reference_line) + 1
+    else:
+        reference = int(cfg.reference_line)
+        if not 1 <= reference <= len(lines):
+            raise IngestError(f"reference_line must be 1..{len(lines)}. Got {reference}")
+    ref = lines[reference - 1]
+    keep = ~bad_band_mask(ref.wavelength, cfg.bad_bands)
+    if not keep.any():
+        raise IngestError(f"the bad-band windows {cfg.bad_bands} drop every band of the reference line "
+                          f"{Path(ref.path).name!r} ({ref.wavelength.min():g}-{ref.wavelength.max():g} nm)")
+    wl = ref.wavelength[keep]
+    fw = ref.fwhm[keep]
+    grid = target_grid(lines, cfg.crs, cfg.resolution, cfg.bounds)
+    yscale = grid.res[1] / grid.res[0]
+    line_params: list[dict] = []
+    spectral: dict[int, np.ndarray] = {}
+    segments: dict[int, np.ndarray] = {}
+    fps_px = {}
+    notes: list[str] = []
+    from rasterio.crs import CRS
+
+    for ln in lines:
+        label = f"flight line {Path(ln.path).name!r}"
+        same_bands = ln.count == ref.count and np.max(np.abs(ln.wavelength - ref.wavelength)) <= cfg.spectral_tolerance
+        if same_bands:
+            bands = (np.flatnonzero(keep) + 1).tolist()
+        elif cfg.on_mismatch == "refuse":
+            if ln.count != ref.count:
+                raise IngestError(
+                    f"{label} has {ln.count} bands but the reference line {Path(ref.path).name!r} has "
+                    f"{ref.count}, and on_mismatch is 'refuse'; set on_mismatch: resample to resample it")
+            d = np.abs(ln.wavelength - ref.wavelength)
+            b = int(np.argmax(d))
+            raise IngestError(
+                f"{label}: band {b + 1} is at {ln.wavelength[b]:g} nm, the reference line's at "
+                f"{ref.wavelength[b]:g} nm ({d[b]:.3g} nm apart; tolerance {cfg.spectral_tolerance:g} nm) and "
+                "on_mismatch is 'refuse'")
+        else:
+            src_keep = ~bad_band_mask(ln.wavelength, cfg.bad_bands)
+            bands = (np.flatnonzero(src_keep) + 1).tolist()
+            if len(bands) < 2:
+                raise IngestError(f"{label} keeps {len(bands)} band(s) after the bad-band windows: cannot resample")
+            try:
+                eye = np.eye(len(bands))
+                matrix = resample(ln.wavelength[src_keep], eye, wl, fw, on_uncovered="raise")
+            except SpectralCoverageError as exc:
+                raise IngestError(f"{label} cannot be resampled to the reference bands: {exc}") from exc
+            spectral[ln.number] = matrix.astype(np.float32)
+            method = "Gaussian" if np.all(np.isfinite(fw)) else ("linear" if not np.any(np.isfinite(fw)) else "Gaussian/linear")
+            notes.append(f"{ln.name}: {ln.count} bands resampled to the reference's {len(wl)} ({method})")
+        fp = footprint_to_grid(ln, grid)
+        minx, miny, maxx, maxy = fp.bounds
+        bbox = [max(int(math.floor(minx)) - 1, 0), max(int(math.floor(miny / yscale)) - 1, 0),
+                min(int(math.ceil(maxx)) + 1, grid.cols), min(int(math.ceil(maxy / yscale)) + 1, grid.rows)]
+        fps_px[ln.number] = fp
+        segments[ln.number] = segments_of(fp)
+        same_crs = CRS.from_user_input(ln.crs) == CRS.from_user_input(grid.crs)
+        xs, ys = _scale_ratio(ln, grid, same_crs)
+        line_params.append({
+            "number": ln.number, "name": ln.name, "path": ln.path, "crs": ln.crs, "same_crs": bool(same_crs),
+            "transform": [float(v) for v in ln.transform], "width": ln.width, "height": ln.height,
+            "nodata": ln.nodata, "bands": bands,
+            "scale": [float(ln.scale[b - 1]) for b in bands], "offset": [float(ln.offset[b - 1]) for b in bands],
+            "xscale": xs, "yscale": ys, "bbox_px": bbox,
+        })
+    overlaps = []
+    for i in range(len(lines)):
+        for j in range(i + 1, len(lines)):
+            a = fps_px[i + 1].intersection(fps_px[j + 1]).area / yscale
+            if a >= 1.0:
+                overlaps.append({"pair": [i + 1, j + 1], "pixels": int(round(a)),
+                                 "names": [lines[i].name, lines[j].name]})
+    return MosaicPlan(cfg, lines, grid, reference, wl, fw, line_params, spectral, segments, overlaps, notes)
+
+
+def _scale_ratio(ln: LineInfo, grid: Grid, same_crs: bool) -> tuple[float, float]:
+    """Target pixels per source pixel along x and y (the warper's fixed resampling scale)."""
+    if same_crs:
+        rx, ry = ln.res
+    else:
+        from rasterio.warp import calculate_default_transform
+
+        from .ingest import _raster_bounds
+
+        tr, _, _ = calculate_default_transform(ln.crs, grid.crs, ln.width, ln.height, *_raster_bounds(ln))
+        rx, ry = abs(tr.a), abs(tr.e)
+    return float(rx / grid.res[0]), float(ry / grid.res[1])
+
+
+def mosaic_outputs(plan: MosaicPlan) -> dict[str, OutputSpec]:
+    """Output descriptions: int16 reflectance (scale 1e-4) with wavelengths, and the source layer."""
+    cfg = plan.config
+    n = len(plan.lines)
+    refl = OutputSpec(
+        bands=plan.band_names, dtype="int16", nodata=cfg.output_nodata,
+        coords={"wavelength": tuple(float(v) for v in plan.wavelength),
+                "fwhm": tuple(float(v) for v in plan.fwhm)},
+        attrs={"scale_factor": cfg.output_scale, "add_offset": 0.0, "units": "1",
+               "long_name": "surface reflectance", "wavelength_units": "nm"},
+    )
+    source = OutputSpec(
+        bands=("source",), dtype="uint8" if n <= 255 else "uint16", nodata=0, kind="categorical",
+        class_names=tuple(ln.name for ln in plan.lines),
+        attrs={"long_name": "flight line each pixel came from (0 = none)", "policy": cfg.overlap},
+    )
+    return {"reflectance": refl, "source": source}
+
+
+def mosaic_step(plan: MosaicPlan) -> Step:
+    """The engine step for a plan (see :func:`build_mosaic_step`)."""
+    cfg = plan.config
+    pairs = [o["pair"] for o in plan.overlaps]
+    rates = {f"{i}-{j}": min(1.0, cfg.sample_size / max(o["pixels"], 1)) for o, (i, j) in zip(plan.overlaps, pairs)}
+    matching = bool(cfg.brightness_matching and pairs)
+    params = {
+        "lines": plan.line_params,
+        "n_lines": len(plan.lines),
+        "n_bands": int(len(plan.wavelength)),
+        "policy": cfg.overlap,
+        "blend_width": float(cfg.blend_width),
+        "resampling": cfg.resampling,
+        "yscale": float(plan.grid.res[1] / plan.grid.res[0]),
+        "matching": matching,
+        "reference": plan.reference,
+        "pairs": pairs,
+        "sample_rates": rates,
+        "seed": int(cfg.seed),
+    }
+    static: dict[str, Any] = {f"segments_{k}": v for k, v in plan.segments.items()}
+    static.update({f"spectral_{k}": v for k, v in plan.spectral.items()})
+    static["footprints"] = footprints_geojson(plan.lines, plan.grid, plan.overlaps)
+    fit = Fit(accumulate_overlaps, merge_overlaps, finalize_brightness, select=select_overlap_tiles) if matching else None
+    return Step(
+        name="mosaic", kernel=mosaic_kernel, outputs=mosaic_outputs(plan), params=params, static=static,
+        fit=fit, reader=read_lines, grid=plan.grid,
+        sources={ln.path: ln.fingerprint for ln in plan.lines},
+    )
+
+
+def build_mosaic_step(cfg: MosaicConfig | Mapping[str, Any], base_dir: str | Path = ".") -> Step:
+    """Validate the section, inspect the lines and declare the ``mosaic`` step.
+
+    Parameters
+    ----------
+    cfg : a :class:`MosaicConfig` or the YAML mapping of the ``mosaic`` section.
+    base_dir : folder that relative paths in the section are relative to.
+    """
+    if not isinstance(cfg, MosaicConfig):
+        cfg = MosaicConfig.model_validate(dict(cfg))
+    return mosaic_step(plan_mosaic(cfg, base_dir))
+
+
+def write_footprints(source: Step | MosaicPlan, path: str | Path) -> Path:
+    """Write the lines' footprints (GeoJSON, longitude/latitude) with their overlaps; return the path."""
+    if isinstance(source, MosaicPlan):
+        doc = footprints_geojson(source.lines, source.grid, source.overlaps)
+    else:
+        doc = source.static.get("footprints")
+        if doc is None:
+            raise ValueError(f"step {source.name!r} carries no footprints; was it made by build_mosaic_step?")
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    p.write_text(json.dumps(doc, indent=1))
+    return p
+
+
+# ---------------------------------------------------------------------------------------------
+# overlaps
+
+
+def resolve_overlaps(
+    lines: Mapping[int, np.ndarray],
+    edges: Mapping[int, np.ndarray],
+    policy: Policy = "nearest_centre",
+    blend_width: float = 20.0,
+    gain: np.ndarray | None = None,
+    offset: np.ndarray | None = None,
+    shape: tuple[int, int, int] | None = None,
+    source_dtype: str = "uint8",
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Combine overlapping lines into one cube.
+
+    Parameters
+    ----------
+    lines : line number (1-based) -> float32 (bands, rows, cols) reflectance, NaN where no data.
+    edges : line number -> (rows, cols) distance to that line's footprint edge in pixels.
+    policy : "nearest_centre" (largest edge distance wins; ties go to the lower line number),
+        "first" / "last" (lowest / highest line number with data), "feather" (weights
+        ``min(edge / blend_width, 1)``, weighted mean of the lines with data).
+    gain, offset : (n_lines, bands) brightness corrections applied as ``gain * x + offset`` before
+        combining (row k-1 for line k); None for none.
+    shape : (bands, rows, cols) of the output when ``lines`` is empty.
+
+    Returns
+    -------
+    reflectance float32 (bands, rows, cols) NaN where no line has data; source (rows, cols) line
+    number (for feather: the line with the largest edge distance), 0 where none; valid (rows, cols).
+    """
+    if shape is None:
+        if not lines:
+            raise ValueError("resolve_overlaps needs the output shape when no line meets the window")
+        shape = next(iter(lines.values())).shape  # type: ignore[assignment]
+    nb, rows, cols = shape  # type: ignore[misc]
+    out = np.full((nb, rows, cols), np.nan, dtype=np.float32)
+    source = np.zeros((rows, cols), dtype=source_dtype)
+    best = np.full((rows, cols), -np.inf, dtype=np.float32)
+    wsum = np.zeros((rows, cols), dtype=np.float32) if policy == "feather" else None
+    if policy == "feather":
+        out[:] = 0.0
+    if policy not in ("nearest_centre", "first", "last", "feather"):
+        raise ValueError(f"overlap policy must be nearest_centre, first, last or feather. Got {policy!r}")
+
+    def corrected(k: int, x: np.ndarray) -> np.ndarray:
+        if gain is None:
+            return x
+        g = np.asarray(gain[k - 1], dtype=np.float32)[:, None]
+        o = np.asarray(offset[k - 1], dtype=np.float32)[:, None] if offset is not None else 0.0
+        return x * g + o
+
+    for k in sorted(lines):
+        x = lines[k]
+        if x.shape != (nb, rows, cols):
+            raise ValueError(f"line {k} has shape {x.shape}; expected {(nb, rows, cols)}")
+        e = np.asarray(edges[k], dtype=np.float32).reshape(rows, cols)
+        ok = np.all(np.isfinite(x), axis=0) & np.isfinite(e)
+        if policy == "first":
+            sel = ok & (source == 0)
+        elif policy == "last":
+            sel = ok
+        else:
+            sel = ok & (e > best)
+        if policy == "feather":
+            w = np.clip(e / np.float32(blend_width), 0.0, 1.0)
+            w[~ok] = 0.0
+            has = w > 0
+            out[:, has] += corrected(k, x[:, has]) * w[has]
+            wsum += w
+        elif sel.any():
+            out[:, sel] = corrected(k, x[:, sel])
+        source[sel] = k
+        best[sel] = e[sel]
+    if policy == "feather":
+        assert wsum is not None
+        has = wsum > 0
+        out[:, has] /= wsum[has]
+        out[:, ~has] = np.nan
+    valid = source > 0
+    out[:, ~valid] = np.nan
+    return out, source, valid
+
+
+def _line_arrays(block: Block) -> tuple[dict[int, np.ndarray], dict[int, np.ndarray]]:
+    lines, edges = {}, {}
+    for key, arr in block.data.items():
+        if key.startswith("line_"):
+            k = int(key[5:])
+            lines[k] = arr
+            edges[k] = block.data[f"edge_{k}"][0]
+    return lines, edges
+
+
+def mosaic_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np.ndarray]:
+    """The step's kernel: brightness corrections (when fitted) and the overlap policy."""
+    p = block.params
+    lines, edges = _line_arrays(block)
+    gain = offset = None
+    if model is not None and "gain" in model:
+        gain, offset = np.asarray(model["gain"]), np.asarray(model["offset"])
+    rows, cols = block.valid.shape
+    refl, source, valid = resolve_overlaps(
+        lines, edges, p["policy"], float(p["blend_width"]), gain, offset, shape=(int(p["n_bands"]), rows, cols),
+        source_dtype="uint8" if int(p["n_lines"]) <= 255 else "uint16")
+    return {"reflectance": refl, "source": source[None], "valid": valid}
+
+
+# ---------------------------------------------------------------------------------------------
+# brightness matching
+
+
+def sample_mask(rows: np.ndarray, cols: np.ndarray, rate: float, seed: int) -> np.ndarray:
+    """A seeded Bernoulli sample of pixels that depends only on their global (row, col).
+
+    Each pixel gets a 64-bit hash of (seed, row, col) (a splitmix64 finaliser, common practice); it is
+    sampled when the hash, as a fraction of 2**64, is below ``rate``. The sample is the same however
+    the grid is tiled.
+    """
+    if rate >= 1.0:
+        return np.ones((rows.size, cols.size), dtype=bool)
+    with np.errstate(over="ignore"):
+        r = rows.astype(np.uint64)[:, None]
+        c = cols.astype(np.uint64)[None, :]
+        z = (r << np.uint64(32)) ^ c ^ (np.uint64(seed & 0xFFFFFFFF) * np.uint64(0x9E3779B97F4A7C15))
+        z = z + np.uint64(0x9E3779B97F4A7C15)
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        z = z ^ (z >> np.uint64(31))
+    return (z >> np.uint64(11)).astype(np.float64) * (1.0 / (1 << 53)) < rate
+
+
+def pair_sums(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Sums for regressing one line on another: (6, bands) = n, sum x, sum y, sum x^2, sum y^2, sum xy.
+
+    ``x`` and ``y`` are (bands, n) samples of the same pixels in two lines.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    y = np.asarray(y, dtype=np.float64)
+    n = np.full(x.shape[0], x.shape[1], dtype=np.float64)
+    return np.stack([n, x.sum(1), y.sum(1), (x * x).sum(1), (y * y).sum(1), (x * y).sum(1)])
+
+
+def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
+    """Per tile: pair sums over the sampled core pixels where both lines of a pair are valid.
+
+    Only core pixels are counted, so each pixel is counted once over the tiling.
+    """
+    p = block.params
+    lines, _ = _line_arrays(block)
+    crop = block.tile.crop
+    core = block.tile.core
+    rows = np.arange(core.row, core.row + core.rows)
+    cols = np.arange(core.col, core.col + core.cols)
+    acc: dict[str, np.ndarray] = {}
+    ok = {k: np.all(np.isfinite(v[:, crop[0], crop[1]]), axis=0) for k, v in lines.items()}
+    for i, j in p["pairs"]:
+        if i not in lines or j not in lines:
+            continue
+        both = ok[i] & ok[j]
+        if not both.any():
+            continue
+        both &= sample_mask(rows, cols, float(p["sample_rates"][f"{i}-{j}"]), int(p["seed"]) + 7919 * i + j)
+        if not both.any():
+            continue
+        xi = lines[i][:, crop[0], crop[1]][:, both]
+        xj = lines[j][:, crop[0], crop[1]][:, both]
+        acc[f"{i}-{j}"] = pair_sums(xi, xj)
+    return acc
+
+
+def merge_overlaps(a: Mapping[str, np.ndarray] | None, b: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray]:
+    """Add two accumulators key by key (associative and commutative)."""
+    out = {k: v.copy() for k, v in (a or {}).items()}
+    for k, v in (b or {}).items():
+        out[k] = out[k] + v if k in out else v.copy()
+    return out
+
+
+def solve_brightness(
+    sums: Mapping[tuple[int, int], np.ndarray],
+    n_lines: int,
+    reference: int = 1,
+    min_samples: int = 10,
+) -> tuple[np.ndarray, np.ndarray, list[int]]:
+    """One least-squares adjustment of per-band gains and offsets over all lines.
+
+    Minimises, per band, ``sum over pairs (i, j) and samples p of (g_i x_ip + o_i - g_j x_jp - o_j)^2``
+    with ``g_ref = 1, o_ref = 0``. The normal equations are built exactly from the pair sums of
+    :func:`pair_sums` (x = line i, y = line j). Lines not connected to the reference through pairs
+    with at least ``min_samples`` samples keep ``g = 1, o = 0`` and are returned as unmatched. A
+    ridge of 1e-12 times the mean diagonal pulls any direction the data leave free (e.g. a band that
+    is constant over an overlap) towards no correction.
+
+    Returns
+    -------
+    gain (n_lines, bands), offset (n_lines, bands), unmatched line numbers.
+    """
+    used = {(int(i), int(j)): np.asarray(s, dtype=np.float64) for (i, j), s in sums.items()
+            if np.asarray(s)[0].min() >= min_samples}
+    nb = next(iter(used.values())).shape[1] if used else 0
+    gain = np.ones((n_lines, max(nb, 0)))
+    offset = np.zeros((n_lines, max(nb, 0)))
+    # connected component of the reference
+    adj: dict[int, set[int]] = {k: set() for k in range(1, n_lines + 1)}
+    for i, j in used:
+        adj[i].add(j)
+        adj[j].add(i)
+    comp, todo = {reference}, [reference]
+    while todo:
+        for m in adj[todo.pop()]:
+            if m not in comp:
+                comp.add(m)
+                todo.append(m)
+    unmatched = sorted(set(range(1, n_lines + 1)) - comp)
+    if nb == 0 or len(comp) == 1:
+        return gain, offset, unmatched
+    free = sorted(comp - {reference})
+    idx = {k: n for n, k in enumerate(free)}
+    m = len(free)
+    N = np.zeros((nb, 2 * m, 2 * m))
+    rhs = np.zeros((nb, 2 * m))
+
+    def gi(k: int) -> int | None:
+        return idx[k] if k in idx else None
+
+    def oi(k: int) -> int | None:
+        return m + idx[k] if k in idx else None
+
+    for (i, j), s in used.items():
+        if i not in comp:
+            continue
+        n, sx, sy, sxx, syy, sxy = s
+        # residual r = g_i x + o_i - g_j y - o_j ; coefficient vector entries (variable, value)
+        terms_i = [(gi(i), "x"), (oi(i), "1")]
+        terms_j = [(gi(j), "y"), (oi(j), "1")]
+        # sums of products of the regressors: signs: +x, +1 for line i; -y, -1 for line j
+        prod = {("x", "x"): sxx, ("x", "1"): sx, ("1", "1"): n, ("y", "y"): syy, ("y", "1"): sy,
+                ("x", "y"): sxy, ("1", "x"): sx, ("1", "y"): sy, ("y", "x"): sxy}
+        entries = [(v, a, 1.0) for v, a in terms_i] + [(v, a, -1.0) for v, a in terms_j]
+        for va, a, sa in entries:
+            for vb, b, sb in entries:
+                val = sa * sb * prod[(a, b)]
+                if va is not None and vb is not None:
+                    N[:, va, vb] += val
+                elif va is not None and vb is None:
+                    # fixed variable (reference): g_ref = 1 contributes, o_ref = 0 does not
+                    if b in ("x", "y"):
+                        rhs[:, va] -= val
+    ridge = 1e-12 * np.maximum(np.einsum("bii->b", N) / (2 * m), 1e-30)
+    prior = np.concatenate([np.ones(m), np.zeros(m)])
+    A = N + ridge[:, None, None] * np.eye(2 * m)[None]
+    b = rhs + ridge[:, None] * prior[None]
+    sol = np.linalg.solve(A, b[..., None])[..., 0]
+    for k in free:
+        gain[k - 1] = sol[:, idx[k]]
+        offset[k - 1] = sol[:, m + idx[k]]
+    return gain, offset, unmatched
+
+
+def overlap_statistics(s: np.ndarray, gi: np.ndarray | float = 1.0, oi: np.ndarray | float = 0.0,
+                       gj: np.ndarray | float = 1.0, oj: np.ndarray | float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and RMS of ``(gi x + oi) - (gj y + oj)`` over the samples summarised by ``s`` (per band).
+
+    Exact, from the sums of :func:`pair_sums`:
+    ``mean = (gi Sx + n oi - gj Sy - n oj) / n`` and
+    ``mean square = (gi^2 Sxx + gj^2 Syy - 2 gi gj Sxy + 2 d (gi Sx - gj Sy) + n d^2) / n`` with ``d = oi - oj``.
+    """
+    n, sx, sy, sxx, syy, sxy = np.asarray(s, dtype=np.float64)
+    d = np.asarray(oi) - np.asarray(oj)
+    gi, gj = np.asarray(gi, dtype=np.float64), np.asarray(gj, dtype=np.float64)
+    mean = (gi * sx - gj * sy) / n + d
+    ms = (gi * gi * sxx + gj * gj * syy - 2 * gi * gj * sxy + 2 * d * (gi * sx - gj * sy) + n * d * d) / n
+    return mean, np.sqrt(np.maximum(ms, 0.0))
+
+
+def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[str, Any], meta: Any) -> dict:
+    """The brightness model: gains and offsets per line and band, and overlap statistics.
+
+    Model keys: ``gain``, ``offset`` (n_lines, bands); ``pairs`` (P, 2); ``samples`` (P,);
+    ``bias_before``, ``rmsd_before``, ``bias_after``, ``rmsd_after`` (P, bands); and JSON values
+    ``reference``, ``unmatched_lines``, ``summary`` (per pair: mean over bands of the RMS difference
+    before and after, and the reduction), ``statistics`` (how they were computed).
+    """
+    n_lines, nb, ref = int(params["n_lines"]), int(params["n_bands"]), int(params["reference"])
+    sums = {tuple(int(v) for v in k.split("-")): v for k, v in (acc or {}).items()}
+    gain, offset, unmatched = solve_brightness(sums, n_lines, ref)
+    if gain.shape[1] != nb:
+        gain, offset = np.ones((n_lines, nb)), np.zeros((n_lines, nb))
+    keys = sorted(sums)
+    P = len(keys)
+    pairs = np.array(keys, dtype=np.int64).reshape(P, 2)
+    samples = np.array([int(sums[k][0, 0]) for k in keys], dtype=np.int64)
+    stats = {name: np.zeros((P, nb)) for name in ("bias_before", "rmsd_before", "bias_after", "rmsd_after")}
+    summary = []
+    for p, (i, j) in enumerate(keys):
+        s = sums[(i, j)]
+        stats["bias_before"][p], stats["rmsd_before"][p] = overlap_statistics(s)
+        stats["bias_after"][p], stats["rmsd_after"][p] = overlap_statistics(s, gain[i - 1], offset[i - 1],
+                                                                            gain[j - 1], offset[j - 1])
+        before = float(stats["rmsd_before"][p].mean())
+        after = float(stats["rmsd_after"][p].mean())
+        summary.append({"pair": [i, j], "samples": int(samples[p]), "rmsd_before": before, "rmsd_after": after,
+                        "reduction": (1.0 - after / before) if before > 0 else 0.0})
+    return {
+        "gain": gain, "offset": offset, "pairs": pairs, "samples": samples, **stats,
+        "reference": ref, "unmatched_lines": unmatched, "summary": summary,
+        "statistics": "exact over the sampled overlap pixels, from the pair sums (no second pass)",
+    }
+
+
+def select_overlap_tiles(tiles: Sequence[Tile], params: Mapping[str, Any]) -> list[Tile]:
+    """The tiles whose window meets the footprint boxes of both lines of at least one overlapping pair."""
+    boxes = {int(ln["number"]): ln["bbox_px"] for ln in params["lines"]}
+    out = []
+    for t in tiles:
+        w = t.core
+        meets = {k for k, (c0, r0, c1, r1) in boxes.items()
+                 if c0 < w.col + w.cols and c1 > w.col and r0 < w.row + w.rows and r1 > w.row}
+        if any(i in meets and j in meets for i, j in params["pairs"]):
+            out.append(t)
+    return out
