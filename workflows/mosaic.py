@@ -629,8 +629,9 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[st
 
     Model keys: ``gain``, ``offset`` (n_lines, bands); ``pairs`` (P, 2); ``samples`` (P,);
     ``bias_before``, ``rmsd_before``, ``bias_after``, ``rmsd_after`` (P, bands); and JSON values
-    ``reference``, ``unmatched_lines``, ``summary`` (per pair: mean over bands of the RMS difference
-    before and after, and the reduction), ``statistics`` (how they were computed).
+    ``reference``, ``unmatched_lines``, ``summary`` (per pair, means over bands of the absolute mean
+    difference ("bias", the brightness mismatch) and of the RMS difference (which keeps the noise),
+    before and after, and their reductions), ``statistics`` (how they were computed).
     """
     n_lines, nb, ref = int(params["n_lines"]), int(params["n_bands"]), int(params["reference"])
     sums = {tuple(int(v) for v in k.split("-")): v for k, v in (acc or {}).items()}
@@ -650,8 +651,13 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[st
                                                                             gain[j - 1], offset[j - 1])
         before = float(stats["rmsd_before"][p].mean())
         after = float(stats["rmsd_after"][p].mean())
-        summary.append({"pair": [i, j], "samples": int(samples[p]), "rmsd_before": before, "rmsd_after": after,
-                        "reduction": (1.0 - after / before) if before > 0 else 0.0})
+        bias_b = float(np.abs(stats["bias_before"][p]).mean())
+        bias_a = float(np.abs(stats["bias_after"][p]).mean())
+        summary.append({"pair": [i, j], "samples": int(samples[p]),
+                        "abs_bias_before": bias_b, "abs_bias_after": bias_a,
+                        "bias_reduction": (1.0 - bias_a / bias_b) if bias_b > 0 else 0.0,
+                        "rmsd_before": before, "rmsd_after": after,
+                        "rmsd_reduction": (1.0 - after / before) if before > 0 else 0.0})
     return {
         "gain": gain, "offset": offset, "pairs": pairs, "samples": samples, **stats,
         "reference": ref, "unmatched_lines": unmatched, "summary": summary,
