@@ -9,7 +9,9 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
+from contextlib import contextmanager
 from pathlib import Path
+from typing import Iterator
 
 __all__ = ["Ledger"]
 
@@ -37,6 +39,17 @@ class Ledger:
     def close(self) -> None:
         self.db.close()
 
+    @contextmanager
+    def _transaction(self) -> Iterator[None]:
+        """One explicit transaction (the connection autocommits each statement otherwise)."""
+        self.db.execute("BEGIN IMMEDIATE")
+        try:
+            yield
+        except BaseException:
+            self.db.execute("ROLLBACK")
+            raise
+        self.db.execute("COMMIT")
+
     # steps ---------------------------------------------------------------------------------------
     def step_key(self, name: str) -> str | None:
         row = self.db.execute("SELECT key FROM steps WHERE name=?", (name,)).fetchone()
@@ -47,7 +60,7 @@ class Ledger:
                         (name, key, total, json.dumps(info, default=str), time.time()))
 
     def forget_step(self, name: str) -> None:
-        with self.db:
+        with self._transaction():
             self.db.execute("DELETE FROM tiles WHERE name=?", (name,))
             self.db.execute("DELETE FROM steps WHERE name=?", (name,))
             self.db.execute("DELETE FROM products WHERE name=?", (name,))
@@ -70,7 +83,7 @@ class Ledger:
     def mark(self, name: str, key: str, index: tuple[int, int], status: str, seconds: float = 0.0,
              error: str | None = None) -> None:
         now = time.time()
-        with self.db:
+        with self._transaction():
             self.db.execute("INSERT OR REPLACE INTO tiles VALUES (?,?,?,?,?,?,?,?)",
                             (name, key, index[0], index[1], status, error, seconds, now))
             self.db.execute("INSERT INTO history VALUES (?,?,?,?,?,?,?)",
