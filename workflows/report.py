@@ -1,0 +1,710 @@
+"""The run report: one self-contained HTML page a person looks at instead of reading tables.
+
+:func:`build_report` writes ``report.html`` into the run directory from a :class:`ReportSummary`.
+Every section of the summary is optional (``None`` or an empty list), so a partial run still gets
+a report; the page lists what the run did not produce.
+
+The page has no remote resources and no scripts: every figure is a PNG drawn with matplotlib's Agg
+renderer and embedded as a base64 ``data:`` URI, the style sheet is inline, and every piece of text
+from the run is HTML-escaped. Large rasters are thinned by striding (nearest sample) to at most
+``max_pixels`` on their longer side before plotting: the report shows the maps, the products hold
+the data.
+
+The summary is a plain typed structure (dataclasses of numpy arrays, strings and numbers), filled
+by whoever knows the run (the pipeline, from the run directory); accuracy sections take the result
+objects of :mod:`workflows.accuracy` directly.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import io
+import os
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Literal, Mapping, Sequence
+
+import numpy as np
+
+from .accuracy import AreaEstimate, ClassAccuracy, regression_metrics
+
+__all__ = [
+    "CAUTION",
+    "REPORT_NAME",
+    "FlightLine",
+    "InputsSection",
+    "Quicklook",
+    "EigenvalueCurve",
+    "ClassMapView",
+    "ContinuousMapView",
+    "SpectraView",
+    "ScatterView",
+    "AccuracyView",
+    "StepTiming",
+    "ReportSummary",
+    "render_html",
+    "build_report",
+]
+
+REPORT_NAME = "report.html"
+
+CAUTION = (
+    "Every product of this run is an estimate. Its reliability is the accuracy measured in this report "
+    "against the reference samples, and it holds only where those samples represent the ground. "
+    "Confirm the maps in the field before acting on them, and use them under the local rules and "
+    "within licensed professional practice (for example in exploration, environmental or "
+    "agricultural decisions); they do not replace either."
+)
+
+Extent = tuple[float, float, float, float]
+"""(left, right, bottom, top) in the mosaic's CRS, as matplotlib's ``imshow`` takes it."""
+
+
+# ----------------------------------------------------------------------------------------------
+# the summary: every field optional
+# ----------------------------------------------------------------------------------------------
+
+@dataclass
+class FlightLine:
+    """One input flight line: where it came from and its footprint on the mosaic grid.
+
+    ``footprint`` is a ring of (x, y) vertices in the mosaic's CRS.
+    """
+
+    name: str
+    path: str = ""
+    bands: int | None = None
+    rows: int | None = None
+    cols: int | None = None
+    footprint: Sequence[tuple[float, float]] | None = None
+
+
+@dataclass
+class InputsSection:
+    """The inputs and the mosaic they make.
+
+    ``background`` is an (rows, cols, 3) RGB (0-1) or (rows, cols) image of the mosaic over
+    ``extent`` on which the footprints are drawn (typically the quicklook).
+    """
+
+    lines: list[FlightLine] = field(default_factory=list)
+    crs: str = ""
+    grid_shape: tuple[int, int] | None = None
+    resolution: float | None = None
+    background: np.ndarray | None = None
+    extent: Extent | None = None
+
+
+@dataclass
+class Quicklook:
+    """A true-colour view: ``rgb`` is (3, rows, cols) reflectance (red, green, blue), stretched
+    between the ``stretch`` percentiles of each channel; ``wavelengths`` the bands used (nm)."""
+
+    rgb: np.ndarray
+    wavelengths: tuple[float, float, float] | None = None
+    extent: Extent | None = None
+    stretch: tuple[float, float] = (2.0, 98.0)
+
+
+@dataclass
+class EigenvalueCurve:
+    """Eigenvalues of a transform (MNF: signal-to-noise + 1), largest first; ``kept`` components."""
+
+    values: np.ndarray
+    kept: int | None = None
+    title: str = "MNF eigenvalues"
+    ylabel: str = "eigenvalue (SNR + 1)"
+
+
+@dataclass
+class ClassMapView:
+    """A class map: values 1..n name ``class_names``; 0 (or ``nodata``) is unclassified / no data."""
+
+    name: str
+    classes: np.ndarray
+    class_names: Sequence[str]
+    colors: Sequence[tuple[int, int, int]] | None = None
+    extent: Extent | None = None
+    nodata: int | None = None
+    note: str = ""
+
+
+@dataclass
+class ContinuousMapView:
+    """An abundance, quantity or uncertainty map, NaN where there is no data.
+
+    ``outside`` (optional, bool) marks pixels outside the calibration range; they are hatched.
+    """
+
+    name: str
+    values: np.ndarray
+    units: str = ""
+    kind: Literal["abundance", "quantity", "uncertainty", "other"] = "quantity"
+    vmin: float | None = None
+    vmax: float | None = None
+    extent: Extent | None = None
+    outside: np.ndarray | None = None
+    note: str = ""
+
+
+@dataclass
+class SpectraView:
+    """Spectra on one plot: ``spectra`` maps a name to values at ``wavelengths`` (nm)."""
+
+    title: str
+    wavelengths: np.ndarray
+    spectra: Mapping[str, np.ndarray]
+    kind: Literal["endmember", "library", "other"] = "endmember"
+    ylabel: str = "reflectance"
+
+
+@dataclass
+class ScatterView:
+    """Predicted against observed values at reference samples (calibration CV, abundance, quantity).
+
+    ``metrics`` (r2, rmse, bias, n) are computed from the points when not given.
+    """
+
+    name: str
+    observed: np.ndarray
+    predicted: np.ndarray
+    units: str = ""
+    kind: Literal["calibration", "abundance", "quantity"] = "calibration"
+    metrics: Mapping[str, float] | None = None
+    note: str = ""
+
+    @classmethod
+    def from_calibration(cls, name: str, model: Mapping[str, object]) -> "ScatterView":
+        """The cross-validated scatter of a fitted model of :mod:`workflows.calibration`."""
+        cv = dict(model["cv"])  # type: ignore[arg-type]
+        k = model.get("n_components")
+        what = f"{model['method']}" + (f", {k} components" if k else "")
+        return cls(name=f"{name} ({what})", observed=np.asarray(model["observed"]),
+                   predicted=np.asarray(model["cv_predicted"]), units=str(model.get("units", "")),
+                   kind="calibration", metrics={key: cv[key] for key in ("n", "r2", "rmse", "bias")},
+                   note=f"predictors: {', '.join(map(str, model['predictors']))}"
+                        if len(model["predictors"]) <= 12 else f"{len(model['predictors'])} predictors")  # type: ignore[arg-type]
+
+
+@dataclass
+class AccuracyView:
+    """The accuracy of one class map: sample-based figures and, when mapped counts are known,
+    the area-weighted estimates of Olofsson et al. (2014)."""
+
+    map_name: str
+    accuracy: ClassAccuracy
+    areas: AreaEstimate | None = None
+    note: str = ""
+
+
+@dataclass
+class StepTiming:
+    """Wall time of one phase of one step (``phase`` e.g. "fit", "tiles", "export")."""
+
+    step: str
+    seconds: float
+    phase: str = ""
+    tiles: int | None = None
+    state: str = ""
+
+
+@dataclass
+class ReportSummary:
+    """Everything the report shows. Every section is optional; absent ones are listed as such."""
+
+    title: str = "swathmill run report"
+    run_name: str = ""
+    created: str | None = None
+    inputs: InputsSection | None = None
+    quicklook: Quicklook | None = None
+    eigenvalues: list[EigenvalueCurve] = field(default_factory=list)
+    class_maps: list[ClassMapView] = field(default_factory=list)
+    continuous_maps: list[ContinuousMapView] = field(default_factory=list)
+    spectra: list[SpectraView] = field(default_factory=list)
+    scatters: list[ScatterView] = field(default_factory=list)
+    accuracy: list[AccuracyView] = field(default_factory=list)
+    timings: list[StepTiming] = field(default_factory=list)
+    provenance: Mapping[str, str] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    caution: str = CAUTION
+
+
+# ----------------------------------------------------------------------------------------------
+# figures
+# ----------------------------------------------------------------------------------------------
+
+_DEFAULT_COLORS = [
+    (31, 119, 180), (255, 127, 14), (44, 160, 44), (214, 39, 40), (148, 103, 189), (140, 86, 75),
+    (227, 119, 194), (127, 127, 127), (188, 189, 34), (23, 190, 207), (174, 199, 232), (255, 187, 120),
+    (152, 223, 138), (255, 152, 150), (197, 176, 213), (196, 156, 148), (247, 182, 210), (219, 219, 141),
+]
+
+
+def _figure(w: float = 7.0, h: float = 4.5):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(w, h), dpi=100, layout="constrained")
+
+
+def _png(fig) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", metadata={"Software": None})
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _img(fig, alt: str) -> str:
+    return f'<img alt="{_e(alt)}" src="data:image/png;base64,{_png(fig)}">'
+
+
+def _thin(a: np.ndarray, max_pixels: int) -> tuple[np.ndarray, int]:
+    """Stride an image (rows, cols, ...) down to at most ``max_pixels`` on its longer side."""
+    step = max(1, int(np.ceil(max(a.shape[0], a.shape[1]) / max_pixels)))
+    return a[::step, ::step], step
+
+
+def _stretch(rgb: np.ndarray, lo: float, hi: float) -> np.ndarray:
+    """(3, r, c) or (r, c, 3) -> (r, c, 4) RGBA in 0..1, transparent where any channel is NaN."""
+    a = np.asarray(rgb, dtype=np.float64)
+    if a.ndim == 3 and a.shape[0] == 3 and a.shape[-1] != 3:
+        a = np.moveaxis(a, 0, -1)
+    if a.ndim != 3 or a.shape[-1] != 3:
+        raise ValueError(f"an RGB image must be (3, rows, cols) or (rows, cols, 3). Got shape {a.shape}")
+    out = np.zeros(a.shape[:2] + (4,))
+    ok = np.all(np.isfinite(a), axis=-1)
+    for k in range(3):
+        ch = a[..., k]
+        if ok.any():
+            p0, p1 = np.percentile(ch[ok], [lo, hi])
+            out[..., k] = np.clip((ch - p0) / (p1 - p0 if p1 > p0 else 1.0), 0, 1)
+    out[..., 3] = ok
+    out[~ok, :3] = 0
+    return out
+
+
+def _axes_labels(ax, extent: Extent | None) -> None:
+    if extent is None:
+        ax.set_xlabel("column")
+        ax.set_ylabel("row")
+    else:
+        ax.set_xlabel("x")
+        ax.set_ylabel("y")
+        ax.ticklabel_format(useOffset=False, style="plain")
+
+
+def _imshow_extent(shape: tuple[int, int], extent: Extent | None, step: int) -> Extent:
+    if extent is not None:
+        return extent
+    return (-0.5, shape[1] * step - 0.5, shape[0] * step - 0.5, -0.5)
+
+
+def _fig_inputs(sec: InputsSection, max_pixels: int) -> str | None:
+    if sec.background is None and not any(ln.footprint for ln in sec.lines):
+        return None
+    fig = _figure(7, 6)
+    ax = fig.add_subplot()
+    if sec.background is not None:
+        bg = np.asarray(sec.background)
+        img = _stretch(bg, 2, 98) if bg.ndim == 3 else bg
+        img, step = _thin(img, max_pixels)
+        ax.imshow(img, extent=_imshow_extent(img.shape[:2], sec.extent, step), cmap="gray", interpolation="nearest")
+    for k, ln in enumerate(sec.lines):
+        if not ln.footprint:
+            continue
+        ring = np.asarray(ln.footprint, dtype=float)
+        ring = np.vstack([ring, ring[:1]])
+        color = np.array(_DEFAULT_COLORS[k % len(_DEFAULT_COLORS)]) / 255
+        ax.plot(ring[:, 0], ring[:, 1], color=color, lw=1.8, label=ln.name)
+        cx, cy = ring[:-1].mean(0)
+        ax.annotate(ln.name, (cx, cy), color=color, fontsize=8, ha="center",
+                    bbox={"facecolor": "white", "alpha": 0.7, "lw": 0})
+    _axes_labels(ax, sec.extent)
+    ax.set_title("Flight-line footprints over the mosaic")
+    ax.set_aspect("equal")
+    return _img(fig, "flight-line footprints over the mosaic")
+
+
+def _fig_quicklook(q: Quicklook, max_pixels: int) -> str:
+    rgba = _stretch(q.rgb, *q.stretch)
+    rgba, step = _thin(rgba, max_pixels)
+    fig = _figure(7, 6)
+    ax = fig.add_subplot()
+    ax.imshow(rgba, extent=_imshow_extent(rgba.shape[:2], q.extent, step), interpolation="nearest")
+    _axes_labels(ax, q.extent)
+    wl = f" (R {q.wavelengths[0]:.0f}, G {q.wavelengths[1]:.0f}, B {q.wavelengths[2]:.0f} nm)" if q.wavelengths else ""
+    ax.set_title(f"True-colour quicklook{wl}")
+    return _img(fig, "true-colour quicklook")
+
+
+def _fig_eigen(c: EigenvalueCurve) -> str:
+    v = np.asarray(c.values, dtype=float).ravel()
+    fig = _figure(7, 4)
+    ax = fig.add_subplot()
+    k = np.arange(1, v.size + 1)
+    ax.plot(k, v, "o-", ms=3, color="#1f4e79")
+    if c.kept:
+        ax.axvline(c.kept + 0.5, color="#c0392b", ls="--", label=f"{c.kept} components kept")
+        ax.legend()
+    if np.all(v > 0) and v.max() / v.min() > 50:
+        ax.set_yscale("log")
+    ax.set_xlabel("component")
+    ax.set_ylabel(c.ylabel)
+    ax.set_title(c.title)
+    ax.grid(alpha=0.3)
+    return _img(fig, c.title)
+
+
+def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
+    from matplotlib.colors import ListedColormap
+    from matplotlib.patches import Patch
+
+    cls = np.asarray(v.classes)
+    if cls.ndim == 3:
+        cls = cls[0]
+    n = len(v.class_names)
+    colors = list(v.colors) if v.colors else _DEFAULT_COLORS[:n]
+    while len(colors) < n:
+        colors.append(_DEFAULT_COLORS[len(colors) % len(_DEFAULT_COLORS)])
+    img, step = _thin(cls, max_pixels)
+    img = img.astype(np.int64)
+    if v.nodata is not None:
+        img = np.where(img == v.nodata, 0, img)
+    img = np.where((img < 0) | (img > n), 0, img)
+    cmap = ListedColormap([(1, 1, 1)] + [tuple(np.array(c[:3]) / 255) for c in colors[:n]])
+    fig = _figure(7.5, 6)
+    ax = fig.add_subplot()
+    ax.imshow(img, cmap=cmap, vmin=-0.5, vmax=n + 0.5, extent=_imshow_extent(img.shape, v.extent, step),
+              interpolation="nearest")
+    counts = np.bincount(img.ravel(), minlength=n + 1)
+    handles = [Patch(facecolor=cmap(i), edgecolor="black", lw=0.5, label=f"{i} {name}")
+               for i, name in enumerate(v.class_names, start=1)]
+    if counts[0]:
+        handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="0 unclassified / no data"))
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    _axes_labels(ax, v.extent)
+    ax.set_title(v.name)
+    return _img(fig, f"class map {v.name}")
+
+
+def _fig_continuous(v: ContinuousMapView, max_pixels: int) -> str:
+    vals = np.asarray(v.values, dtype=float)
+    if vals.ndim == 3:
+        vals = vals[0]
+    img, step = _thin(vals, max_pixels)
+    finite = img[np.isfinite(img)]
+    vmin, vmax = v.vmin, v.vmax
+    if v.kind == "abundance":
+        vmin = 0.0 if vmin is None else vmin
+        vmax = 1.0 if vmax is None else vmax
+    if finite.size and (vmin is None or vmax is None):
+        p2, p98 = np.percentile(finite, [2, 98])
+        vmin = p2 if vmin is None else vmin
+        vmax = p98 if vmax is None else vmax
+    cmap = {"abundance": "viridis", "quantity": "cividis", "uncertainty": "magma"}.get(v.kind, "viridis")
+    fig = _figure(7.5, 6)
+    ax = fig.add_subplot()
+    ext = _imshow_extent(img.shape, v.extent, step)
+    im = ax.imshow(np.ma.masked_invalid(img), cmap=cmap, vmin=vmin, vmax=vmax, extent=ext, interpolation="nearest")
+    cb = fig.colorbar(im, ax=ax, shrink=0.85)
+    cb.set_label(f"{v.name} ({v.units})" if v.units else v.name)
+    if v.outside is not None:
+        out, _ = _thin(np.asarray(v.outside, dtype=bool).reshape(vals.shape), max_pixels)
+        if out.any():
+            overlay = np.zeros(out.shape + (4,))
+            overlay[out] = (0.84, 0.19, 0.15, 0.75)
+            ax.imshow(overlay, extent=ext, interpolation="nearest")
+            ax.set_title(f"{v.name}\n(red: outside the calibration range, {100 * out.mean():.1f}% of pixels)",
+                         fontsize=10)
+    _axes_labels(ax, v.extent)
+    if not ax.get_title():
+        ax.set_title(v.name)
+    return _img(fig, f"map {v.name}")
+
+
+def _fig_spectra(v: SpectraView) -> str:
+    fig = _figure(7.5, 4.5)
+    ax = fig.add_subplot()
+    wl = np.asarray(v.wavelengths, dtype=float)
+    for k, (name, s) in enumerate(v.spectra.items()):
+        ax.plot(wl, np.asarray(s, dtype=float), lw=1.3, label=name,
+                color=np.array(_DEFAULT_COLORS[k % len(_DEFAULT_COLORS)]) / 255)
+    ax.set_xlabel("wavelength (nm)")
+    ax.set_ylabel(v.ylabel)
+    ax.set_title(v.title)
+    ax.grid(alpha=0.3)
+    if v.spectra:
+        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    return _img(fig, v.title)
+
+
+def _scatter_metrics(v: ScatterView) -> dict[str, float]:
+    if v.metrics is not None:
+        return dict(v.metrics)
+    m = regression_metrics(v.observed, v.predicted)
+    return {"n": m.n, "r2": m.r2, "rmse": m.rmse, "bias": m.bias}
+
+
+def _fig_scatter(v: ScatterView) -> str:
+    obs = np.asarray(v.observed, dtype=float).ravel()
+    pred = np.asarray(v.predicted, dtype=float).ravel()
+    m = _scatter_metrics(v)
+    fig = _figure(5.2, 5)
+    ax = fig.add_subplot()
+    ax.scatter(obs, pred, s=14, alpha=0.75, color="#1f4e79", edgecolor="none")
+    both = np.concatenate([obs, pred])
+    both = both[np.isfinite(both)]
+    if both.size:
+        lo, hi = both.min(), both.max()
+        pad = 0.05 * (hi - lo if hi > lo else 1.0)
+        ax.plot([lo - pad, hi + pad], [lo - pad, hi + pad], color="#888", lw=1, ls="--", label="1:1")
+        ax.set_xlim(lo - pad, hi + pad)
+        ax.set_ylim(lo - pad, hi + pad)
+    u = f" ({v.units})" if v.units else ""
+    ax.set_xlabel(f"observed{u}")
+    ax.set_ylabel(f"{'cross-validated ' if v.kind == 'calibration' else ''}predicted{u}")
+    ax.set_title(v.name)
+    ax.text(0.03, 0.97, f"n = {int(m.get('n', obs.size))}\nR² = {_num(m.get('r2'))}\nRMSE = {_num(m.get('rmse'))}"
+            f"\nbias = {_num(m.get('bias'))}", transform=ax.transAxes, va="top", fontsize=9,
+            bbox={"facecolor": "white", "alpha": 0.8, "lw": 0})
+    ax.set_box_aspect(1)
+    ax.grid(alpha=0.3)
+    return _img(fig, f"scatter {v.name}")
+
+
+def _fig_confusion(v: AccuracyView) -> str:
+    m = np.asarray(v.accuracy.matrix)
+    names = list(v.accuracy.names)
+    k = len(names)
+    fig = _figure(max(6.0, 3.0 + 0.7 * k), max(5.0, 2.0 + 0.6 * k))
+    ax = fig.add_subplot()
+    rows = m.sum(1, keepdims=True)
+    share = np.divide(m, rows, out=np.zeros(m.shape, float), where=rows > 0)
+    im = ax.imshow(share, cmap="Blues", vmin=0, vmax=1)
+    for i in range(k):
+        for j in range(k):
+            ax.text(j, i, str(int(m[i, j])), ha="center", va="center", fontsize=8,
+                    color="white" if share[i, j] > 0.6 else "black")
+    ax.set_xticks(range(k), names, rotation=45, ha="right", fontsize=8)
+    ax.set_yticks(range(k), names, fontsize=8)
+    ax.set_xlabel("reference class")
+    ax.set_ylabel("map class")
+    ax.set_title(f"{v.map_name}: validation samples", fontsize=10)
+    fig.colorbar(im, ax=ax, shrink=0.8).set_label("share of the map row")
+    return _img(fig, f"confusion matrix {v.map_name}")
+
+
+def _fig_timings(ts: Sequence[StepTiming]) -> str:
+    labels = [f"{t.step} {t.phase}".strip() for t in ts]
+    secs = [float(t.seconds) for t in ts]
+    fig = _figure(7, max(2.0, 0.35 * len(ts) + 1.0))
+    ax = fig.add_subplot()
+    y = np.arange(len(ts))
+    ax.barh(y, secs, color="#4a7bb7")
+    ax.set_yticks(y, labels, fontsize=8)
+    ax.invert_yaxis()
+    ax.set_xlabel("seconds")
+    ax.set_title("Run time per step")
+    ax.grid(axis="x", alpha=0.3)
+    return _img(fig, "run time per step")
+
+
+# ----------------------------------------------------------------------------------------------
+# HTML
+# ----------------------------------------------------------------------------------------------
+
+_CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:0 auto;max-width:1100px;padding:0 1.2em 3em;
+color:#1d2733;line-height:1.45}
+h1{margin-top:1em}h2{border-bottom:2px solid #dbe3ec;padding-bottom:.2em;margin-top:2em}
+h3{margin-bottom:.3em}
+.caution{background:#fff4e0;border-left:5px solid #e08a00;padding:.8em 1em;margin:1em 0}
+table{border-collapse:collapse;margin:.6em 0 1.2em;font-size:.92em}
+th,td{border:1px solid #cfd8e3;padding:.25em .6em;text-align:right}
+th:first-child,td:first-child{text-align:left}
+thead th{background:#eef3f8}
+img{max-width:100%;height:auto;display:block;margin:.4em 0 1em}
+.muted{color:#6b7785}.grid{display:flex;flex-wrap:wrap;gap:1em}.grid>div{flex:1 1 420px}
+nav ul{columns:2;font-size:.95em}code{background:#f1f4f7;padding:0 .25em}
+"""
+
+
+def _e(s: object) -> str:
+    return html.escape(str(s), quote=True)
+
+
+def _num(v: object, digits: int = 4) -> str:
+    if v is None:
+        return "–"
+    try:
+        f = float(v)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return _e(v)
+    if not np.isfinite(f):
+        return "–"
+    if f != 0 and (abs(f) >= 1e5 or abs(f) < 1e-3):
+        return f"{f:.{digits - 1}e}"
+    return f"{f:.{digits}g}" if abs(f) >= 1 else f"{f:.{digits}f}"
+
+
+def _pm(v: float, ci: float, digits: int = 3) -> str:
+    if v is None or not np.isfinite(v):
+        return "–"
+    if ci is None or not np.isfinite(ci):
+        return f"{v:.{digits}f}"
+    return f"{v:.{digits}f} ± {ci:.{digits}f}"
+
+
+def _area(v: float, ci: float) -> str:
+    if v is None or not np.isfinite(v):
+        return "–"
+    return f"{v:,.1f}" if ci is None or not np.isfinite(ci) else f"{v:,.1f} ± {ci:,.1f}"
+
+
+def _table(head: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
+    h = "".join(f"<th>{_e(c)}</th>" for c in head)
+    body = "".join("<tr>" + "".join(f"<td>{c}</td>" for c in r) + "</tr>" for r in rows)
+    return f"<table><thead><tr>{h}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _accuracy_html(v: AccuracyView) -> str:
+    a = v.accuracy
+    parts = [f"<h3>{_e(v.map_name)}</h3>"]
+    if v.note:
+        parts.append(f"<p>{_e(v.note)}</p>")
+    parts.append(
+        f"<p>{a.n} validation samples. Overall accuracy <b>{a.overall:.3f}</b>; "
+        f"kappa {_num(a.kappa, 3)} (standard error {_num(a.kappa_se, 3)}). Sample-based figures "
+        f"(each sample counts once, whatever the area of its class):</p>")
+    parts.append(_fig_confusion(v))
+    rows = [[_e(nm), str(int(a.matrix[i].sum())), str(int(a.matrix[:, i].sum())), _num(a.users[i], 3),
+             _num(a.producers[i], 3), _num(a.f1[i], 3)] for i, nm in enumerate(a.names)]
+    parts.append(_table(["class", "mapped samples", "reference samples", "user's", "producer's", "F1"], rows))
+    ar = v.areas
+    if ar is not None:
+        parts.append(
+            f"<p>Area-weighted estimates (Olofsson et al. 2014, map classes as strata; ± is the 95% "
+            f"confidence interval). Overall accuracy <b>{_pm(ar.overall, ar.overall_ci)}</b>.</p>")
+        unit = _e(ar.area_unit)
+        rows = [[_e(nm), _area(ar.mapped_area[i], None), _area(ar.area[i], ar.area_ci[i]),
+                 _pm(ar.users[i], ar.users_ci[i]), _pm(ar.producers[i], ar.producers_ci[i])]
+                for i, nm in enumerate(ar.names)]
+        parts.append(_table(["class", f"mapped area ({unit})", f"estimated area ({unit})", "user's", "producer's"],
+                            rows))
+    return "\n".join(parts)
+
+
+def _section(anchor: str, title: str, body: str) -> str:
+    return f'<section id="{anchor}"><h2>{_e(title)}</h2>\n{body}\n</section>'
+
+
+def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
+    """The report page as a string (see :func:`build_report`)."""
+    s = summary
+    created = s.created or datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+    sections: list[tuple[str, str, str]] = []
+    missing: list[str] = []
+
+    def add(anchor: str, title: str, body: str | None) -> None:
+        if body:
+            sections.append((anchor, title, body))
+        else:
+            missing.append(title)
+
+    # inputs and footprints
+    body = None
+    if s.inputs is not None:
+        inp = s.inputs
+        parts = []
+        info = []
+        if inp.grid_shape:
+            info.append(f"mosaic grid {inp.grid_shape[0]} x {inp.grid_shape[1]} pixels")
+        if inp.resolution:
+            info.append(f"pixel size {_num(inp.resolution)}")
+        if inp.crs:
+            info.append(f"CRS <code>{_e(inp.crs if len(inp.crs) < 80 else inp.crs[:77] + '...')}</code>")
+        if info:
+            parts.append("<p>" + "; ".join(info) + ".</p>")
+        if inp.lines:
+            parts.append(_table(["flight line", "file", "bands", "rows", "cols"],
+                                [[_e(ln.name), _e(ln.path), _num(ln.bands), _num(ln.rows), _num(ln.cols)]
+                                 for ln in inp.lines]))
+        fig = _fig_inputs(inp, max_pixels)
+        if fig:
+            parts.append(fig)
+        body = "\n".join(parts)
+    add("inputs", "Inputs and flight-line footprints", body)
+    add("quicklook", "True-colour quicklook", _fig_quicklook(s.quicklook, max_pixels) if s.quicklook else None)
+    add("mnf", "MNF eigenvalues", "\n".join(_fig_eigen(c) for c in s.eigenvalues) or None)
+    add("classes", "Class maps", "\n".join(
+        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_classmap(v, max_pixels) for v in s.class_maps) or None)
+    ab = [v for v in s.continuous_maps if v.kind == "abundance"]
+    qt = [v for v in s.continuous_maps if v.kind != "abundance"]
+    add("abundance", "Abundance maps", "\n".join(
+        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_continuous(v, max_pixels) for v in ab) or None)
+    add("quantity", "Quantity maps", "\n".join(
+        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_continuous(v, max_pixels) for v in qt) or None)
+    add("spectra", "Endmember and library spectra", "\n".join(_fig_spectra(v) for v in s.spectra) or None)
+    if s.scatters:
+        rows = []
+        for v in s.scatters:
+            m = _scatter_metrics(v)
+            rows.append([_e(v.name), _e(v.kind), _num(m.get("n")), _num(m.get("r2"), 3), _num(m.get("rmse")),
+                         _num(m.get("bias")), _e(v.units)])
+        figs = "".join(f"<div>{_fig_scatter(v)}{f'<p>{_e(v.note)}</p>' if v.note else ''}</div>" for v in s.scatters)
+        body = ("<p>Calibration figures are cross-validated: each sample is predicted by a model that did not "
+                "see it. Bias is the mean of predicted minus observed.</p>"
+                + _table(["name", "kind", "n", "R²", "RMSE", "bias", "units"], rows)
+                + f'<div class="grid">{figs}</div>')
+    else:
+        body = None
+    add("calibration", "Calibration and regression checks", body)
+    add("accuracy", "Accuracy of the class maps", "\n".join(_accuracy_html(v) for v in s.accuracy) or None)
+    if s.timings:
+        total = sum(float(t.seconds) for t in s.timings)
+        body = (_table(["step", "phase", "seconds", "tiles", "state"],
+                       [[_e(t.step), _e(t.phase), _num(t.seconds, 3), _num(t.tiles), _e(t.state)] for t in s.timings])
+                + f"<p>Total {total:.1f} s.</p>" + _fig_timings(s.timings))
+    else:
+        body = None
+    add("timings", "Run time per step", body)
+    add("provenance", "Provenance", _table(["item", "value"], [[_e(k), f"<code>{_e(v)}</code>"]
+                                                               for k, v in s.provenance.items()])
+        if s.provenance else None)
+
+    nav = "".join(f'<li><a href="#{a}">{_e(t)}</a></li>' for a, t, _ in sections)
+    notes = "".join(f"<li>{_e(n)}</li>" for n in s.notes)
+    parts = [
+        "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_e(s.title)}{' – ' + _e(s.run_name) if s.run_name else ''}</title>",
+        f"<style>{_CSS}</style></head><body>",
+        f"<h1>{_e(s.title)}</h1>",
+        f'<p class="muted">{"Run " + _e(s.run_name) + " · " if s.run_name else ""}report written {_e(created)}</p>',
+        f'<div class="caution" id="caution"><b>Caution.</b> {_e(s.caution)}</div>',
+        f"<nav><ul>{nav}</ul></nav>" if nav else "",
+        f"<ul>{notes}</ul>" if notes else "",
+        f'<p class="muted">Not in this run: {_e(", ".join(missing))}.</p>' if missing else "",
+        *(_section(a, t, b) for a, t, b in sections),
+        "</body></html>",
+    ]
+    return "\n".join(p for p in parts if p)
+
+
+def build_report(run_dir: str | Path, summary: ReportSummary, *, max_pixels: int = 900,
+                 name: str = REPORT_NAME) -> Path:
+    """Write the run's report as one self-contained HTML file in ``run_dir``; return its path.
+
+    The file is written to a temporary name and renamed into place, so a reader never sees half a
+    report. Raises FileNotFoundError when ``run_dir`` does not exist.
+    """
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise FileNotFoundError(f"run directory {run_dir} does not exist")
+    if "/" in name or "\\" in name or not name.endswith(".html"):
+        raise ValueError(f"the report name must be a plain file name ending in .html. Got {name!r}")
+    text = render_html(summary, max_pixels=max_pixels)
+    path = run_dir / name
+    tmp = run_dir / f".{name}.tmp"
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+    return path
