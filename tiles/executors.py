@@ -145,34 +145,62 @@ class DaskExecutor:
             submit_next()
 
     def reduce(self, fn, items, merge):
+        """Accumulate on the workers, then merge in the same fixed pairwise tree as :func:`_tree`.
+
+        Merges start as soon as both halves of a pair are ready, but the pairs are fixed by the
+        items' order, never by completion order: floating-point merges give the same bits as the
+        in-process loop whatever the number of workers.
+        """
         from distributed import as_completed
 
-        it = iter(items)
+        items = list(items)
+        if not items:
+            return None
+        sizes = [len(items)]  # number of nodes per level of the tree
+        while sizes[-1] > 1:
+            sizes.append((sizes[-1] + 1) // 2)
+        top = len(sizes) - 1
+        it = iter(enumerate(items))
         ac = as_completed()
-        n_sub = 0
-        for _ in range(self.max_in_flight):
+        where: dict = {}  # future key -> (level, index)
+        waiting: dict = {}  # (level, index) -> future whose sibling is not ready yet
+        result = None
+
+        def submit_next() -> None:
             try:
-                ac.add(self.client.submit(fn, next(it), pure=False, retries=self.retries))
-                n_sub += 1
+                k, item = next(it)
             except StopIteration:
-                break
-        ready: list = []
-        last = None
+                return
+            fut = self.client.submit(fn, item, pure=False, retries=self.retries)
+            where[fut.key] = (0, k)
+            ac.add(fut)
+
+        def place(level: int, k: int, fut) -> None:
+            nonlocal result
+            while level < top and (k ^ 1) >= sizes[level]:  # a lone last node moves up unchanged
+                level, k = level + 1, k // 2
+            if level == top:
+                result = fut
+                return
+            sib = waiting.pop((level, k ^ 1), None)
+            if sib is None:
+                waiting[(level, k)] = fut
+                return
+            a, b = (fut, sib) if k % 2 == 0 else (sib, fut)
+            m = self.client.submit(merge, a, b, pure=False, retries=self.retries)
+            where[m.key] = (level + 1, k // 2)
+            ac.add(m)
+
+        for _ in range(self.max_in_flight):
+            submit_next()
         for fut in ac:
             if fut.status == "error":
                 fut.result()  # raises
-            ready.append(fut)
-            try:
-                ac.add(self.client.submit(fn, next(it), pure=False, retries=self.retries))
-            except StopIteration:
-                pass
-            while len(ready) >= 2:
-                a, b = ready.pop(0), ready.pop(0)
-                ac.add(self.client.submit(merge, a, b, pure=False, retries=self.retries))
-            last = fut
-        if ready:
-            return ready[0].result()
-        return last.result() if last is not None else None
+            level, k = where.pop(fut.key)
+            if level == 0:
+                submit_next()
+            place(level, k, fut)
+        return result.result()
 
     def close(self) -> None:
         try:
