@@ -538,7 +538,7 @@ def _raster_bounds(ln: LineInfo) -> tuple[float, float, float, float]:
     from affine import Affine
 
     t = Affine(*ln.transform)
-    xs, ys = zip(*[t * (c, r) for c, r in ((0, 0), (ln.width, 0), (0, ln.height), (ln.width, ln.height))])
+    xs, ys = zip(*[t @ (c, r) for c, r in ((0, 0), (ln.width, 0), (0, ln.height), (ln.width, ln.height))])
     return min(xs), min(ys), max(xs), max(ys)
 
 
@@ -645,7 +645,7 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
     else:
         lb = transform_bounds(grid.crs, line["crs"], left, bottom, right, top, densify_pts=21)
     inv = ~src_t
-    xs, ys = zip(*[inv * (x, y) for x, y in ((lb[0], lb[1]), (lb[0], lb[3]), (lb[2], lb[1]), (lb[2], lb[3]))])
+    xs, ys = zip(*[inv @ (x, y) for x, y in ((lb[0], lb[1]), (lb[0], lb[3]), (lb[2], lb[1]), (lb[2], lb[3]))])
     margin = 3 if resampling == "nearest" else 4
     c0 = max(int(math.floor(min(xs))) - margin, 0)
     r0 = max(int(math.floor(min(ys))) - margin, 0)
@@ -659,7 +659,7 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
             raw = ds.read(bands, window=RWindow(c0, r0, c1 - c0, r1 - r0))
     except (RasterioIOError, OSError) as exc:
         raise IngestError(f"flight line {Path(line['path']).name!r} cannot be read: {exc}") from exc
-    win_t = src_t * Affine.translation(c0, r0)
+    win_t = src_t @ Affine.translation(c0, r0)
     scale = np.asarray(line["scale"], dtype=np.float32)[:, None, None]
     offset = np.asarray(line["offset"], dtype=np.float32)[:, None, None]
     nodata = line["nodata"]

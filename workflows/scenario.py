@@ -318,7 +318,7 @@ def _ground_reference(rng: np.random.Generator, abund: np.ndarray, classes: np.n
             taken[win] = True
             rr, cc = np.mgrid[r - 1:r + 2, c - 1:c + 2]
             corners = [(c - 1, r - 1), (c + 2, r - 1), (c + 2, r + 2), (c - 1, r + 2), (c - 1, r - 1)]
-            feats.append({"kind": "Polygon", "xy": [transform * p for p in corners], "block": (r // block, c // block),
+            feats.append({"kind": "Polygon", "xy": [transform @ p for p in corners], "block": (r // block, c // block),
                           "props": props(rr.ravel(), cc.ravel(), m)})
             polys += 1
         cand = cand[~taken.ravel()[cand]]
@@ -326,13 +326,13 @@ def _ground_reference(rng: np.random.Generator, abund: np.ndarray, classes: np.n
         for idx in pick:
             r, c = divmod(int(idx), cols)
             taken[r, c] = True
-            feats.append({"kind": "Point", "xy": transform * (c + 0.5, r + 0.5), "block": (r // block, c // block),
+            feats.append({"kind": "Point", "xy": transform @ (c + 0.5, r + 0.5), "block": (r // block, c // block),
                           "props": props(np.array([r]), np.array([c]), m)})
     # a few mixed points anywhere (labelled by their dominant material)
     free = np.flatnonzero(~taken.ravel())
     for idx in rng.choice(free, size=min(len(names) * 3, free.size), replace=False):
         r, c = divmod(int(idx), cols)
-        feats.append({"kind": "Point", "xy": transform * (c + 0.5, r + 0.5), "block": (r // block, c // block),
+        feats.append({"kind": "Point", "xy": transform @ (c + 0.5, r + 0.5), "block": (r // block, c // block),
                       "props": props(np.array([r]), np.array([c]), names[int(classes[r, c]) - 1])})
     # split by spatial blocks: per class, whole blocks go to validation until about a third is there
     for m in names:
@@ -425,7 +425,7 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         name = f"corrowan_line{k + 1:02d}"
         path = root / "lines" / f"{name}.tif"
         _write_line(path, true_cube, mask, r0, r1, c0, c1, gains[k], offsets[k], sigma, wl, fwhm,
-                    transform * Affine.translation(c0, r0), r_noise[k], name)
+                    transform @ Affine.translation(c0, r0), r_noise[k], name)
         line_paths.append(path)
         line_facts.append({"name": name, "file": f"lines/{name}.tif", "window": [r0, c0, r1 - r0, c1 - c0],
                            "valid_pixels": int(mask.sum()), **{k2: v for k2, v in sw.items()},
