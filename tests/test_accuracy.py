@@ -7,6 +7,7 @@ import sklearn.metrics as skm
 
 from workflows.accuracy import (
     AccuracyError,
+    abundance_metrics,
     area_estimate,
     class_accuracy,
     confusion_matrix,
@@ -143,6 +144,19 @@ def test_regression_metrics_match_sklearn(rng):
     assert met.n == 200
     pred[:5] = np.nan
     assert regression_metrics(obs, pred).n == 195
+
+
+def test_abundance_metrics_match_sklearn(rng):
+    ref = rng.dirichlet([1, 1, 1], 300).T
+    est = np.clip(ref + rng.normal(0, 0.05, ref.shape), 0, 1)
+    mets = abundance_metrics(ref, est, ["tree", "water", "soil"])
+    # sklearn.metrics with multioutput="raw_values": one figure per endmember (columns)
+    rmse = np.sqrt(skm.mean_squared_error(ref.T, est.T, multioutput="raw_values"))
+    r2 = skm.r2_score(ref.T, est.T, multioutput="raw_values")
+    np.testing.assert_allclose([m.rmse for m in mets[:3]], rmse, rtol=1e-12)
+    np.testing.assert_allclose([m.r2 for m in mets[:3]], r2, rtol=1e-12)
+    assert mets[3].name == "all" and mets[3].n == 900
+    assert mets[3].rmse == pytest.approx(np.sqrt(skm.mean_squared_error(ref.ravel(), est.ravel())), rel=1e-12)
 
 
 def test_count_classes_window_by_window(rng):

@@ -39,6 +39,7 @@ __all__ = [
     "kappa",
     "area_estimate",
     "regression_metrics",
+    "abundance_metrics",
     "count_classes",
     "count_classes_in_raster",
     "class_counts_fit",
@@ -362,6 +363,37 @@ def regression_metrics(observed: Sequence[float] | np.ndarray, predicted: Sequen
     ss_tot = float(np.sum((obs - obs.mean()) ** 2))
     r2 = 1.0 - float(np.sum(err ** 2)) / ss_tot if ss_tot > 0 else float("nan")
     return RegressionMetrics(n=n, rmse=float(np.sqrt(np.mean(err ** 2))), bias=float(err.mean()), r2=r2, name=name)
+
+
+def abundance_metrics(reference: np.ndarray, estimate: np.ndarray,
+                      names: Sequence[str] | None = None) -> list[RegressionMetrics]:
+    """RMSE, bias and R2 of estimated against reference fractions, per endmember and pooled.
+
+    Parameters
+    ----------
+    reference, estimate
+        (k, n) fractions of k endmembers at n pixels (or (k, rows, cols)); NaN pairs are left out.
+    names
+        Endmember names (default "endmember 1" ...).
+
+    Returns
+    -------
+    list of RegressionMetrics
+        One per endmember, then the pooled figure over all fractions (named "all").
+    """
+    ref = np.asarray(reference, dtype=float)
+    est = np.asarray(estimate, dtype=float)
+    if ref.shape != est.shape or ref.ndim < 2:
+        raise AccuracyError(f"reference and estimated fractions need the same (endmembers, pixels) shape. "
+                            f"Got {ref.shape} and {est.shape}")
+    k = ref.shape[0]
+    names = list(names) if names is not None else [f"endmember {i + 1}" for i in range(k)]
+    if len(names) != k:
+        raise AccuracyError(f"{k} endmembers need {k} names. Got {len(names)}")
+    ref, est = ref.reshape(k, -1), est.reshape(k, -1)
+    out = [regression_metrics(ref[i], est[i], name=str(names[i])) for i in range(k)]
+    out.append(regression_metrics(ref, est, name="all"))
+    return out
 
 
 # ----------------------------------------------------------------------------------------------
