@@ -189,6 +189,27 @@ def test_count_classes_zarr_and_raster(tmp_path, rng):
     assert got[3] == 0  # the nodata value is not counted
 
 
+def test_class_counts_fit_counts_each_pixel_once(rng):
+    from functools import reduce
+
+    from tiles.grid import Tiling
+    from tiles.step import Block
+    from tiles.testing import default_grid
+    from workflows.accuracy import class_counts_fit
+
+    cmap = rng.integers(0, 6, (1, 70, 45)).astype(np.float32)
+    valid = rng.random((70, 45)) > 0.1
+    fit = class_counts_fit("classes", 5)
+    grid = default_grid(70, 45)
+    accs = []
+    for t in Tiling(grid, 16, halo=3):  # a halo: the padded windows overlap, the cores do not
+        sl = t.padded.slices
+        accs.append(fit.accumulate(Block(data={"classes": cmap[:, sl[0], sl[1]]}, valid=valid[sl], tile=t,
+                                         grid=grid.window(t.padded), params={}, static={}, meta={})))
+    counts = fit.finalize(reduce(fit.merge, accs), {}, {})["counts"]
+    np.testing.assert_array_equal(counts, np.bincount(cmap[0][valid].astype(int), minlength=6))  # numpy
+
+
 def test_values_at(rng):
     arr = rng.random((2, 130, 70))
     rows, cols = rng.integers(0, 130, 50), rng.integers(0, 70, 50)
