@@ -51,7 +51,7 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from .accuracy import regression_metrics
 
