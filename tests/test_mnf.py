@@ -118,7 +118,8 @@ def _reference(cube: np.ndarray, valid: np.ndarray, directions=("horizontal", "v
 
 def _scene(rng, rows=48, cols=40, p=8, n_signal=3, noise=0.01, sigma=3.0, offset=0.3):
     """Smooth signal (blurred random fields times random spectra) plus correlated band noise, float32."""
-    fields = np.stack([scipy.ndimage.gaussian_filter(rng.standard_normal((rows, cols)), sigma) for _ in range(n_signal)])
+    fields = np.stack([scipy.ndimage.gaussian_filter(rng.standard_normal((rows, cols)), sigma)
+                       for _ in range(n_signal)])
     fields /= fields.std(axis=(1, 2), keepdims=True)
     spectra = rng.uniform(0.02, 0.1, (p, n_signal)) * np.linspace(1, 2, n_signal)[None, :]
     truth = offset + np.einsum("pk,krc->prc", spectra, fields)
@@ -193,6 +194,20 @@ def test_tiled_statistics_equal_whole_array_reference(scene, size, order):
     model = finalize(acc, params, _meta(6, _grid(37, 29)))
     np.testing.assert_allclose(model["noise_covariance"], n_ref, rtol=1e-11, atol=1e-15)
     assert model["n_noise_pairs"] == {"horizontal": n_h, "vertical": n_v}
+
+
+def test_tiled_statistics_keep_precision_with_a_large_mean(scene):
+    # int16-like values (scaled reflectance plus a large offset), held exactly in float32: the
+    # per-tile centring and pairwise merge (Chan et al., 1979) keep np.cov's answer (oracle: numpy).
+    cube, valid = scene
+    big = np.round(cube * 1e4 + 20000.0).astype(np.float32)
+    acc = _fit_tiled(big, valid, 5, _params())
+    s_ref, _, _ = _reference(big, valid)
+    np.testing.assert_allclose(acc.data.covariance(), s_ref, rtol=1e-11, atol=1e-11 * np.abs(s_ref).max())
+    diffs = big[:, :, :-1] - big[:, :, 1:]  # exact in float32 for these integers
+    m = valid[:, :-1] & valid[:, 1:]
+    np.testing.assert_allclose(acc.noise["horizontal"].covariance(), np.cov(diffs[:, m].astype(np.float64)),
+                               rtol=1e-11)
 
 
 def test_tiling_does_not_change_the_model_beyond_round_off(scene):
@@ -390,6 +405,7 @@ def test_singular_bands_regularized(rng):
     with pytest.warns(MnfWarning, match="regularized.*b003"):
         model = _fit(cube, size=30, singular="regularize")
     assert model["excluded_bands"] == {} and model["regularization"] > 0
+    assert set(model["flagged_bands"]) == {"b001", "b003", "b006", "b008"}
     assert model["eigenvectors"].shape == (8, 8)
     # The transform stays invertible: forward then inverse with all components returns the input.
     np.testing.assert_allclose(inverse(forward(cube, model, 8), model), cube, atol=1e-5)

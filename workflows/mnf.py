@@ -48,7 +48,8 @@ Model
 A dict of numpy arrays and JSON values (saved by the engine as JSON plus npz):
 
 ``method``, ``bands`` (all input band names), ``used_bands`` and ``band_index`` (the bands that enter
-the transform), ``excluded_bands`` ({band: reason}), ``mean`` (p,), ``eigenvalues`` (p,) in decreasing
+the transform), ``excluded_bands`` ({band: reason}, left out), ``flagged_bands`` ({band: reason}, found
+by the screening, excluded or regularized), ``mean`` (p,), ``eigenvalues`` (p,) in decreasing
 order, ``eigenvectors`` (p, p) with components as columns, ``inverse`` (p, p) = V^-1 = V' N (rows are
 components), ``data_covariance`` and ``noise_covariance`` (p, p; identity for PCA), ``regularization``
 (ridge added to N, 0 if none), ``n_components`` (kept), ``n_pixels``, ``n_noise_pairs``
@@ -250,15 +251,26 @@ class Moments:
 
 def moments(x: np.ndarray) -> Moments:
     """Moments of the columns of ``x`` (p, n), centred on their own mean, in float64."""
-    x = np.asarray(x, dtype=np.float64)
+    return _moments_inplace(np.array(x, dtype=np.float64))
+
+
+def _moments_inplace(x: np.ndarray) -> Moments:
+    """Moments of the columns of a float64 array (p, n) that may be overwritten (centred in place)."""
     p, n = x.shape
     if n == 0:
         return Moments.empty(p)
     mean = x.mean(axis=1)
-    xc = x - mean[:, None]
-    m2 = xc @ xc.T  # numpy uses a symmetric rank-k update for a @ a.T
+    x -= mean[:, None]
+    m2 = x @ x.T  # numpy uses a symmetric rank-k update for a @ a.T
     m2 = 0.5 * (m2 + m2.T)
     return Moments(n, mean, m2)
+
+
+def _gather64(x: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """The pixels of ``x`` (p, rows, cols) where ``mask`` (rows, cols) holds, as a new float64 (p, n)."""
+    if mask.all():
+        return np.array(x, dtype=np.float64).reshape(x.shape[0], -1)
+    return x[:, mask].astype(np.float64)
 
 
 def merge_moments(a: Moments, b: Moments) -> Moments:
@@ -382,7 +394,7 @@ def accumulate(block: Block) -> MnfAccumulator:
         b = min(a + step, r1)
         m = use[a:b, c0:c1]
         if m.any():
-            data = merge_moments(data, moments(x[:, a:b, c0:c1][:, m]))
+            data = merge_moments(data, _moments_inplace(_gather64(x[:, a:b, c0:c1], m)))
         for d in directions:
             if d == "horizontal":  # pair (r, c) - (r, c + 1); c + 1 must lie in the padded window
                 ce = min(c1, wp - 1)
@@ -396,8 +408,9 @@ def accumulate(block: Block) -> MnfAccumulator:
                 second = (slice(a + 1, be + 1), slice(c0, c1))
             pm = use[first] & pair_ok[first] & pair_ok[second]
             if pm.any():
-                diff = x[:, first[0], first[1]][:, pm].astype(np.float64) - x[:, second[0], second[1]][:, pm]
-                noise[d] = merge_moments(noise[d], moments(diff))
+                diff = _gather64(x[:, first[0], first[1]], pm)
+                diff -= _gather64(x[:, second[0], second[1]], pm)  # exact: float32 values in float64
+                noise[d] = merge_moments(noise[d], _moments_inplace(diff))
     return MnfAccumulator(data, noise, (tuple(int(i) for i in block.tile.index),))
 
 
@@ -530,18 +543,18 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
                        f"bands ({p}). Raise pixel_fraction/tile_fraction or check the valid area")
     s_full = acc.data.covariance()
     tol = float(params.get("singular_tolerance", 1e-8))
-    excluded: dict[str, str] = {}
+    flagged: dict[str, str] = {}
     ridge = 0.0
     if method == "pca":
         n_full, counts = np.eye(p), {}
         used = np.arange(p)
     else:
         n_full, counts = _noise_covariance(acc, p)
-        excluded = screen_noise_bands(n_full, s_full, bands, tol)
+        flagged = screen_noise_bands(n_full, s_full, bands, tol)
         mode = params.get("singular", "exclude")
-        used = np.array([i for i, b in enumerate(bands) if b not in excluded], dtype=int)
-        if excluded:
-            listing = "; ".join(f"{b}: {why}" for b, why in excluded.items())
+        used = np.array([i for i, b in enumerate(bands) if b not in flagged], dtype=int)
+        if flagged:
+            listing = "; ".join(f"{b}: {why}" for b, why in flagged.items())
             if mode == "error":
                 raise MnfError(f"the noise covariance is singular because of band(s) {listing}. Drop them, or "
                                "set singular: exclude or singular: regularize")
@@ -553,10 +566,10 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
             else:
                 used = np.arange(p)
                 diag = np.diag(n_full)
-                ridge = float(params.get("regularization", 1e-6)) * float(np.mean(diag[diag > 0]) if (diag > 0).any() else 1.0)
+                scale = float(np.mean(diag[diag > 0])) if (diag > 0).any() else 1.0
+                ridge = float(params.get("regularization", 1e-6)) * scale
                 warnings.warn(f"MNF: noise covariance regularized (+{ridge:.3g} on the diagonal) because of "
                               f"band(s) {listing}", MnfWarning, stacklevel=2)
-                excluded = {}
     s = s_full[np.ix_(used, used)]
     if method == "pca":
         lam, vec = scipy.linalg.eigh(s)
@@ -574,6 +587,7 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
     vec *= np.where(vec[big, np.arange(vec.shape[1])] < 0, -1.0, 1.0)[None, :]
     inv = vec.T if method == "pca" else vec.T @ nn  # V^-1 = V' N since V' N V = I
     k = keep_components(lam, params)
+    used_names = {bands[i] for i in used}
     selection = {
         "tile_fraction": float(params.get("tile_fraction", 1.0)),
         "pixel_fraction": float(params.get("pixel_fraction", 1.0)),
@@ -587,7 +601,8 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
         "bands": bands,
         "used_bands": [bands[i] for i in used],
         "band_index": used.astype(np.int64),
-        "excluded_bands": excluded,
+        "excluded_bands": {b: flagged[b] for b in bands if b in flagged and b not in used_names},
+        "flagged_bands": flagged,
         "mean": acc.data.mean[used].copy(),
         "eigenvalues": lam,
         "eigenvectors": vec,
