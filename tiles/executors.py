@@ -93,9 +93,9 @@ class DaskExecutor:
         else:
             if cluster is None:
                 n = n_workers or max(1, (os.cpu_count() or 1) // threads_per_worker)
+                net = {"host": "127.0.0.1"} if processes else {}
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
-                                       memory_limit=memory_limit, host="127.0.0.1",
-                                       dashboard_address=dashboard_address)
+                                       memory_limit=memory_limit, dashboard_address=dashboard_address, **net)
                 self._own_cluster = cluster
             self.client = Client(cluster)
         self.retries = retries
