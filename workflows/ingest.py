@@ -629,14 +629,15 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
 
     ``line`` is the JSON description the mosaic step carries (see ``workflows.mosaic``): path, crs,
     transform, width, height, nodata, bands (1-based indexes to read), scale, offset, xscale, yscale.
-    Returns None when the line has no pixel in the source window the grid needs.
+    GDAL reads from the file only the source window the grid needs; source pixel coordinates are
+    computed from the whole line's transform (not a cut-out's), so every tile does the same arithmetic
+    as a whole-line warp. Returns None when the grid lies wholly outside the line's raster.
     """
     import rasterio
     from affine import Affine
     from rasterio.enums import Resampling
     from rasterio.errors import RasterioIOError
     from rasterio.warp import reproject, transform_bounds
-    from rasterio.windows import Window as RWindow
 
     src_t = Affine(*line["transform"])
     left, bottom, right, top = grid.bounds
@@ -646,48 +647,38 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
         lb = transform_bounds(grid.crs, line["crs"], left, bottom, right, top, densify_pts=21)
     inv = ~src_t
     xs, ys = zip(*[inv @ (x, y) for x, y in ((lb[0], lb[1]), (lb[0], lb[3]), (lb[2], lb[1]), (lb[2], lb[3]))])
-    margin = 3 if resampling == "nearest" else 4
-    c0 = max(int(math.floor(min(xs))) - margin, 0)
-    r0 = max(int(math.floor(min(ys))) - margin, 0)
-    c1 = min(int(math.ceil(max(xs))) + margin, int(line["width"]))
-    r1 = min(int(math.ceil(max(ys))) + margin, int(line["height"]))
-    if c1 <= c0 or r1 <= r0:
+    if max(xs) < -2 or min(xs) > line["width"] + 2 or max(ys) < -2 or min(ys) > line["height"] + 2:
         return None
     bands = [int(b) for b in line["bands"]]
-    try:
-        with rasterio.open(line["path"]) as ds:
-            raw = ds.read(bands, window=RWindow(c0, r0, c1 - c0, r1 - r0))
-    except (RasterioIOError, OSError) as exc:
-        raise IngestError(f"flight line {Path(line['path']).name!r} cannot be read: {exc}") from exc
-    win_t = src_t @ Affine.translation(c0, r0)
     scale = np.asarray(line["scale"], dtype=np.float32)[:, None, None]
     offset = np.asarray(line["offset"], dtype=np.float32)[:, None, None]
     nodata = line["nodata"]
-    opts = dict(src_transform=win_t, src_crs=line["crs"], dst_transform=grid.transform, dst_crs=grid.crs,
-                tolerance=0.0, XSCALE=line["xscale"], YSCALE=line["yscale"], num_threads=1)
-    integer = np.issubdtype(raw.dtype, np.integer)
-    if resampling == "nearest" and integer and nodata is not None and _in_range(nodata, raw.dtype):
-        # nearest on the stored integers, decoded after: exact and half the memory of float32
-        dst = np.empty((len(bands), grid.rows, grid.cols), dtype=raw.dtype)
-        reproject(raw, dst, src_nodata=nodata, dst_nodata=nodata, resampling=Resampling.nearest, **opts)
-        ok = dst != np.asarray(nodata).astype(raw.dtype)
-        out = dst.astype(np.float32)
-        out *= scale
-        if np.any(offset):
-            out += offset
-        out[~ok] = np.nan
-        return out
-    src = raw.astype(np.float32)
-    bad = ~_valid_stored(raw, nodata)
-    src *= scale
+    opts = dict(dst_transform=grid.transform, dst_crs=grid.crs, tolerance=0.0,
+                XSCALE=line["xscale"], YSCALE=line["yscale"], num_threads=1)
+    try:
+        with rasterio.open(line["path"]) as ds:
+            src = rasterio.band(ds, bands)
+            dtype = np.dtype(ds.dtypes[0])
+            integer = np.issubdtype(dtype, np.integer)
+            if resampling == "nearest" and integer and nodata is not None and _in_range(nodata, dtype):
+                # nearest on the stored integers, decoded after: exact, and half the memory of float32
+                dst = np.empty((len(bands), grid.rows, grid.cols), dtype=dtype)
+                reproject(src, dst, src_nodata=nodata, dst_nodata=nodata, resampling=Resampling.nearest, **opts)
+                ok = dst != np.asarray(nodata).astype(dtype)
+                out = dst.astype(np.float32)
+                del dst
+                out[~np.broadcast_to(ok, out.shape)] = np.nan
+            else:
+                out = np.empty((len(bands), grid.rows, grid.cols), dtype=np.float32)
+                src_nodata = nodata if nodata is not None else (np.nan if not integer else None)
+                method = Resampling.nearest if resampling == "nearest" else Resampling.bilinear
+                reproject(src, out, src_nodata=src_nodata, dst_nodata=np.nan, resampling=method, **opts)
+    except (RasterioIOError, OSError) as exc:
+        raise IngestError(f"flight line {Path(line['path']).name!r} cannot be read: {exc}") from exc
+    out *= scale
     if np.any(offset):
-        src += offset
-    src[bad] = np.nan
-    del raw
-    dst = np.empty((len(bands), grid.rows, grid.cols), dtype=np.float32)
-    method = Resampling.nearest if resampling == "nearest" else Resampling.bilinear
-    reproject(src, dst, src_nodata=np.nan, dst_nodata=np.nan, resampling=method, **opts)
-    return dst
+        out += offset
+    return out
 
 
 def _in_range(v: float, dtype: np.dtype) -> bool:

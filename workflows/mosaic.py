@@ -54,6 +54,7 @@ __all__ = [
     "resolve_overlaps",
     "sample_mask",
     "pair_sums",
+    "block_means",
     "accumulate_overlaps",
     "merge_overlaps",
     "finalize_brightness",
@@ -95,7 +96,8 @@ class MosaicConfig(BaseModel):
     resampling: Literal["nearest", "bilinear"] = "nearest"
     brightness_matching: bool = True
     reference_line: int | str = Field(1, description="1-based number or name of the line others are matched to")
-    sample_size: int = Field(20000, gt=0, description="sampled pixels per overlapping pair")
+    sample_size: int = Field(20000, gt=0, description="sampled blocks per overlapping pair")
+    match_block: int = Field(3, ge=1, le=16, description="side in pixels of the blocks whose means are matched")
     seed: int = 0
     spectral_tolerance: float = Field(1.0, ge=0, description="nm; larger band-centre differences need resampling")
     on_mismatch: Literal["resample", "refuse"] = "resample"
@@ -257,16 +259,22 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
 
 
 def _scale_ratio(ln: LineInfo, grid: Grid, same_crs: bool) -> tuple[float, float]:
-    """Target pixels per source pixel along x and y (the warper's fixed resampling scale)."""
-    if same_crs:
-        rx, ry = ln.res
-    else:
-        from rasterio.warp import calculate_default_transform
+    """Target pixels per source pixel along x and y (the warper's fixed resampling scale).
 
-        from .ingest import _raster_bounds
+    In another CRS, a source pixel's two sides at the line's centre are transformed into the target
+    CRS and measured there.
+    """
+    rx, ry = ln.res
+    if not same_crs:
+        from affine import Affine
+        from rasterio.warp import transform as warp_transform
 
-        tr, _, _ = calculate_default_transform(ln.crs, grid.crs, ln.width, ln.height, *_raster_bounds(ln))
-        rx, ry = abs(tr.a), abs(tr.e)
+        t = Affine(*ln.transform)
+        cx, cy = ln.width / 2, ln.height / 2
+        pts = [t @ (cx, cy), t @ (cx + 1, cy), t @ (cx, cy + 1)]
+        xs, ys = warp_transform(ln.crs, grid.crs, [p[0] for p in pts], [p[1] for p in pts])
+        rx = math.hypot(xs[1] - xs[0], ys[1] - ys[0])
+        ry = math.hypot(xs[2] - xs[0], ys[2] - ys[0])
     return float(rx / grid.res[0]), float(ry / grid.res[1])
 
 
@@ -293,7 +301,8 @@ def mosaic_step(plan: MosaicPlan) -> Step:
     """The engine step for a plan (see :func:`build_mosaic_step`)."""
     cfg = plan.config
     pairs = [o["pair"] for o in plan.overlaps]
-    rates = {f"{i}-{j}": min(1.0, cfg.sample_size / max(o["pixels"], 1)) for o, (i, j) in zip(plan.overlaps, pairs)}
+    nblk = cfg.match_block ** 2
+    rates = {f"{i}-{j}": min(1.0, cfg.sample_size * nblk / max(o["pixels"], 1)) for o, (i, j) in zip(plan.overlaps, pairs)}
     matching = bool(cfg.brightness_matching and pairs)
     params = {
         "lines": plan.line_params,
@@ -308,11 +317,14 @@ def mosaic_step(plan: MosaicPlan) -> Step:
         "pairs": pairs,
         "sample_rates": rates,
         "seed": int(cfg.seed),
+        "match_block": int(cfg.match_block),
+        "grid_shape": [plan.grid.rows, plan.grid.cols],
     }
     static: dict[str, Any] = {f"segments_{k}": v for k, v in plan.segments.items()}
     static.update({f"spectral_{k}": v for k, v in plan.spectral.items()})
     static["footprints"] = footprints_geojson(plan.lines, plan.grid, plan.overlaps)
-    fit = Fit(accumulate_overlaps, merge_overlaps, finalize_brightness, select=select_overlap_tiles) if matching else None
+    fit = (Fit(accumulate_overlaps, merge_overlaps, finalize_brightness, select=select_overlap_tiles,
+               halo=cfg.match_block - 1) if matching else None)
     return Step(
         name="mosaic", kernel=mosaic_kernel, outputs=mosaic_outputs(plan), params=params, static=static,
         fit=fit, reader=read_lines, grid=plan.grid,
@@ -491,30 +503,53 @@ def pair_sums(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return np.stack([n, x.sum(1), y.sum(1), (x * x).sum(1), (y * y).sum(1), (x * y).sum(1)])
 
 
-def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
-    """Per tile: pair sums over the sampled core pixels where both lines of a pair are valid.
+def block_means(x: np.ndarray, r0: int, c0: int, nr: int, nc: int, b: int) -> np.ndarray:
+    """Means of ``nr`` x ``nc`` blocks of ``b`` x ``b`` pixels starting at local (r0, c0): (..., nr, nc)."""
+    sub = x[..., r0:r0 + nr * b, c0:c0 + nc * b]
+    return sub.reshape(*sub.shape[:-2], nr, b, nc, b).mean(axis=(-3, -1))
 
-    Only core pixels are counted, so each pixel is counted once over the tiling.
+
+def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
+    """Per tile: pair sums over sampled blocks where both lines of a pair are valid.
+
+    The sampling unit is a block of ``match_block`` x ``match_block`` pixels on a lattice anchored at
+    the grid's origin; its band means are compared. Averaging lowers the noise (and so the bias that
+    noise in the regressor puts on a least-squares gain) and the effect of small misregistrations
+    between lines. A block belongs to the tile holding its first pixel (the fit's halo holds the rest),
+    and blocks that run past the grid's edge are not used, so each block is counted once and the sums
+    do not depend on the tiling.
     """
     p = block.params
+    b = int(p.get("match_block", 1))
+    rows_g, cols_g = (int(v) for v in p["grid_shape"])
     lines, _ = _line_arrays(block)
-    crop = block.tile.crop
-    core = block.tile.core
-    rows = np.arange(core.row, core.row + core.rows)
-    cols = np.arange(core.col, core.col + core.cols)
+    core, pad = block.tile.core, block.tile.padded
+    R0 = -(-core.row // b) * b
+    C0 = -(-core.col // b) * b
+    R1 = min(core.row + core.rows, rows_g - b + 1)  # block origins: R0 <= R < R1, multiples of b
+    C1 = min(core.col + core.cols, cols_g - b + 1)
+    nr, nc = max(0, -(-(R1 - R0) // b)), max(0, -(-(C1 - C0) // b))
     acc: dict[str, np.ndarray] = {}
-    ok = {k: np.all(np.isfinite(v[:, crop[0], crop[1]]), axis=0) for k, v in lines.items()}
+    if nr == 0 or nc == 0:
+        return acc
+    if R0 + nr * b > pad.row + pad.rows or C0 + nc * b > pad.col + pad.cols:
+        raise ValueError(f"the fit's halo is too small for blocks of {b} px on {block.tile.name}")
+    r0, c0 = R0 - pad.row, C0 - pad.col
+    ok = {k: block_means(np.all(np.isfinite(v), axis=0).astype(np.float32), r0, c0, nr, nc, b) == 1.0
+          for k, v in lines.items()}
+    brow = np.arange(R0 // b, R0 // b + nr)
+    bcol = np.arange(C0 // b, C0 // b + nc)
     for i, j in p["pairs"]:
         if i not in lines or j not in lines:
             continue
         both = ok[i] & ok[j]
         if not both.any():
             continue
-        both &= sample_mask(rows, cols, float(p["sample_rates"][f"{i}-{j}"]), int(p["seed"]) + 7919 * i + j)
+        both &= sample_mask(brow, bcol, float(p["sample_rates"][f"{i}-{j}"]), int(p["seed"]) + 7919 * i + j)
         if not both.any():
             continue
-        xi = lines[i][:, crop[0], crop[1]][:, both]
-        xj = lines[j][:, crop[0], crop[1]][:, both]
+        xi = block_means(lines[i], r0, c0, nr, nc, b)[:, both]
+        xj = block_means(lines[j], r0, c0, nr, nc, b)[:, both]
         acc[f"{i}-{j}"] = pair_sums(xi, xj)
     return acc
 
