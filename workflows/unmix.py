@@ -1,0 +1,1225 @@
+"""Linear spectral unmixing of whole tiles: four variants, exact non-negative solutions.
+
+Model
+-----
+A pixel spectrum ``x`` (L bands) is modelled as ``x = M a + e`` with ``M`` the (L, p) endmember matrix
+(one column per endmember), ``a`` the p abundances and ``e`` the residual. Four variants:
+
+``unconstrained``      least squares, ``a = G^-1 b`` with ``G = M'M`` and ``b = M'x`` (normal equations).
+``sum_to_one``         least squares subject to ``1'a = 1``, in closed form from the bordered system
+                       ``[[G, 1], [1', 0]] [a; mu] = [b; 1]`` (equal to ``a_LS + G^-1 1 (1 - 1'a_LS) /
+                       (1'G^-1 1)``).
+``nonnegative``        least squares subject to ``a >= 0`` (what ``scipy.optimize.nnls`` solves).
+``fully_constrained``  both constraints (Heinz and Chang, 2001, IEEE TGRS 39(3):529-545).
+
+How a tile is solved
+--------------------
+Pixels are columns of a matrix. For a chunk of pixels the only per-pixel quantities the solvers need
+are ``b = M'x`` (p values) and ``x'x``; ``G`` and everything derived from it are computed once per
+endmember set (:class:`Unmixer`). For every support ``S`` (subset of endmembers allowed to be
+non-zero) the constrained or unconstrained least-squares solution on ``S`` is an affine function of
+``b``, ``a_S = K_S b + c_S``; the matrices ``K_S, c_S`` are precomputed for all ``2^p - 1`` supports
+when ``p <= 12`` and cached on demand otherwise.
+
+The non-negative variants use a primal active-set method (the scheme of Lawson and Hanson's NNLS,
+1974, extended with the equality constraint), run on all pixels of a chunk at once: every pixel
+carries its own support (a bitmask) and its own feasible point; in each round each unfinished pixel
+either moves to the solution on its support (and, when a Lagrange multiplier is negative, frees the
+most negative one) or stops at the first bound it meets and drops that endmember. Pixels are advanced
+together, with the affine maps gathered by bitmask. It starts from the full-support closed form:
+pixels where that is feasible are optimal at once (so all constraints are inactive), the others start
+from its positive entries. A handful of rounds settles nearly all pixels.
+
+Optimality is then checked on every pixel with the Karush-Kuhn-Tucker conditions in relative form
+(:func:`kkt_violation`): ``a >= 0``; ``g = G a - b`` (plus the sum-to-one multiplier ``mu``) is zero on
+the support and non-negative off it. Pixels that fail (round-off on ill-conditioned sets, or cycling
+in degenerate cases) are re-solved one by one: ``scipy.optimize.nnls`` for ``nonnegative``; for
+``fully_constrained`` Heinz and Chang's augmented nnls locates the support, the sum-to-one solution
+on that support is computed by QR, and if that does not satisfy the conditions, all supports are
+enumerated (p <= 12). The result is the optimum, not an approximation.
+
+The residual is ``rss = x'x - 2 a'b + a'G a``; where that formula cancels (``rss < 1e-6 x'x``, e.g.
+noise-free mixtures) the residual is recomputed explicitly, so RMSE keeps its relative precision.
+``rmse = sqrt(rss / L)``.
+
+Endmember sets
+--------------
+:func:`check_endmembers` refuses rank-deficient sets (naming the offending endmembers) and warns
+(:class:`IllConditionedWarning`) when the condition number of the problem exceeds ``max_condition``,
+naming that number and the two most similar endmembers. The condition number is that of ``M`` for the
+unconstrained and non-negative variants, and that of ``M Z`` (``Z`` an orthonormal basis of the
+directions with ``1'z = 0``) for the sum-to-one variants, whose solutions only depend on the
+differences between endmembers.
+
+A shade (zero) endmember can be added for the sum-to-one variants. Data in another space (e.g. MNF
+components) are unmixed with endmembers moved into that space by the same transform
+(:class:`LinearTransform` or any callable); note that an affine transform (with an offset) keeps the
+linear mixing model only under the sum-to-one constraint.
+"""
+from __future__ import annotations
+
+import functools
+import hashlib
+import math
+import warnings
+from collections import OrderedDict
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any, Callable, Literal, Mapping, Sequence
+
+import numpy as np
+import scipy.optimize
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+
+from . import endmembers as _em
+from .library import SpectralLibrary, read_library, resample_library
+from .reference import GroundReferenceConfig, SampleTable, load_samples
+
+__all__ = [
+    "METHODS",
+    "Method",
+    "UnmixError",
+    "IllConditionedWarning",
+    "LinearTransform",
+    "UnmixResult",
+    "Unmixer",
+    "condition_number",
+    "check_endmembers",
+    "kkt_violation",
+    "fcls_pixel",
+    "unmix",
+    "unmix_cube",
+    "unmix_step",
+    "ImageEndmembersConfig",
+    "EndmemberSourceConfig",
+    "UnmixConfig",
+    "build_steps",
+]
+
+Method = Literal["unconstrained", "sum_to_one", "nonnegative", "fully_constrained"]
+METHODS: tuple[str, ...] = ("unconstrained", "sum_to_one", "nonnegative", "fully_constrained")
+SUM_TO_ONE = ("sum_to_one", "fully_constrained")
+NONNEGATIVE = ("nonnegative", "fully_constrained")
+
+_TABLE_MAX_P = 12  # precompute the affine maps of all supports up to this many endmembers
+_ENUMERATE_MAX_P = 12  # per-pixel exact enumeration in the fall-back up to this many endmembers
+
+
+class UnmixError(ValueError):
+    """Endmembers or data unfit for unmixing; the message names what is at fault."""
+
+
+class IllConditionedWarning(UserWarning):
+    """The endmember set is ill-conditioned: abundances are sensitive to noise."""
+
+
+@dataclass(frozen=True)
+class LinearTransform:
+    """``y = (x - offset) @ matrix``: spectra (n, bands) to components (n, k), e.g. an MNF forward.
+
+    Parameters
+    ----------
+    offset : (bands,) array subtracted first (e.g. the MNF mean).
+    matrix : (bands, k) array (e.g. the first k MNF eigenvectors as columns).
+    """
+
+    offset: np.ndarray
+    matrix: np.ndarray
+
+    def __post_init__(self) -> None:
+        off = np.asarray(self.offset, dtype=np.float64).ravel()
+        mat = np.asarray(self.matrix, dtype=np.float64)
+        if mat.ndim != 2 or mat.shape[0] != off.size:
+            raise UnmixError(f"a linear transform needs offset (bands,) and matrix (bands, k). Got offset "
+                             f"{off.shape} and matrix {mat.shape}")
+        object.__setattr__(self, "offset", off)
+        object.__setattr__(self, "matrix", mat)
+
+    def __call__(self, spectra: np.ndarray) -> np.ndarray:
+        s = np.asarray(spectra, dtype=np.float64)
+        if s.shape[-1] != self.offset.size:
+            raise UnmixError(f"the transform expects spectra of {self.offset.size} bands. Got {s.shape[-1]}")
+        return (s - self.offset) @ self.matrix
+
+
+# --------------------------------------------------------------------------------------------------
+# checks of the endmember set
+
+
+def _null_sum_basis(p: int) -> np.ndarray:
+    """(p, p-1) orthonormal basis of {z : 1'z = 0}."""
+    u, _s, _vt = np.linalg.svd(np.eye(p) - 1.0 / p)  # the centring projector: p-1 unit singular values
+    return u[:, : p - 1]
+
+
+def condition_number(endmembers: np.ndarray, method: str = "unconstrained") -> float:
+    """2-norm condition number of the unmixing problem (see the module notes).
+
+    ``cond(M)`` for the unconstrained and non-negative variants; ``cond(M Z)`` for the sum-to-one
+    variants, ``Z`` an orthonormal basis of ``{z : 1'z = 0}``. ``inf`` when rank-deficient.
+    """
+    m = np.asarray(endmembers, dtype=np.float64)
+    if method in SUM_TO_ONE:
+        if m.shape[1] == 1:
+            return 1.0
+        m = m @ _null_sum_basis(m.shape[1])
+    s = np.linalg.svd(m, compute_uv=False)
+    if s[-1] <= s[0] * np.finfo(np.float64).eps * max(m.shape) or s[0] == 0:
+        return math.inf
+    return float(s[0] / s[-1])
+
+
+def _closest_pair(m: np.ndarray, names: Sequence[str]) -> tuple[str, str, float]:
+    norms = np.linalg.norm(m, axis=0)
+    norms = np.where(norms > 0, norms, np.inf)
+    cos = np.clip((m.T @ m) / np.outer(norms, norms), -1.0, 1.0)  # spectral angle (Kruse et al., 1993)
+    ang = np.arccos(cos)
+    np.fill_diagonal(ang, np.inf)
+    i, j = np.unravel_index(np.argmin(ang), ang.shape)
+    return names[min(i, j)], names[max(i, j)], float(ang[i, j])
+
+
+def check_endmembers(endmembers: np.ndarray, names: Sequence[str], method: str,
+                     max_condition: float = 1e3) -> float:
+    """Refuse unusable endmember sets; warn for ill-conditioned ones. Returns the condition number.
+
+    Raises
+    ------
+    UnmixError
+        NaN or infinite values (naming the endmember and band), fewer bands than the problem needs,
+        or a rank-deficient set (condition number infinite), naming the two most similar endmembers.
+
+    Warns
+    -----
+    IllConditionedWarning
+        When the condition number exceeds ``max_condition``, naming it and the closest pair.
+    """
+    m = np.asarray(endmembers, dtype=np.float64)
+    if m.ndim != 2 or m.shape[1] != len(names):
+        raise UnmixError(f"endmembers must be (bands, {len(names)}) for {len(names)} names. Got {m.shape}")
+    if method not in METHODS:
+        raise UnmixError(f"unknown unmixing method {method!r}; choose one of {', '.join(METHODS)}")
+    bad = ~np.isfinite(m)
+    if bad.any():
+        b, e = np.argwhere(bad)[0]
+        raise UnmixError(f"endmember {names[e]!r} has a non-finite value in band {b + 1} "
+                         f"({int(bad[:, e].sum())} such bands)")
+    p, nb = m.shape[1], m.shape[0]
+    need = p - 1 if method in SUM_TO_ONE else p
+    if nb < need:
+        raise UnmixError(f"{p} endmembers need at least {need} bands for the {method} variant. Got {nb}")
+    cond = condition_number(m, method)
+    if p > 1:
+        a, b, ang = _closest_pair(m, names)
+        pair = f"the most similar pair is {a!r} and {b!r} (spectral angle {ang:.3g} rad)"
+    else:
+        pair = ""
+    if not math.isfinite(cond):
+        raise UnmixError(f"the endmember set is rank-deficient for the {method} variant (condition number "
+                         f"infinite): {pair}; remove one of them")
+    if cond > max_condition:
+        warnings.warn(f"ill-conditioned endmember set: condition number {cond:.4g} exceeds {max_condition:.4g}; "
+                      f"{pair}. Abundances will be sensitive to noise", IllConditionedWarning, stacklevel=3)
+    return cond
+
+
+# --------------------------------------------------------------------------------------------------
+# the affine maps of all supports
+
+
+def _support_bits(masks: np.ndarray, p: int) -> np.ndarray:
+    return ((np.asarray(masks, dtype=np.int64)[:, None] >> np.arange(p)) & 1).astype(bool)
+
+
+def _support_maps(g: np.ndarray, masks: np.ndarray, sum_to_one: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Affine maps ``a = K b + c`` of the least-squares solutions on each support (zero off it).
+
+    The bordered (or plain) Gram matrix of each support is embedded in a full-size matrix with the
+    identity on the rows and columns outside the support, inverted in one batch, and masked.
+    Singular supports get NaN maps (never used for a full-rank set).
+    """
+    p = g.shape[0]
+    bits = _support_bits(masks, p)
+    s = bits.astype(np.float64)
+    q = p + 1 if sum_to_one else p
+    h = np.zeros((len(masks), q, q))
+    outer = s[:, :, None] * s[:, None, :]
+    h[:, :p, :p] = g * outer
+    h[:, np.arange(p), np.arange(p)] += 1.0 - s
+    t = float(np.mean(np.diag(g))) or 1.0  # scale of the constraint row (conditioning only)
+    if sum_to_one:
+        h[:, :p, p] = t * s
+        h[:, p, :p] = t * s
+    cond = np.linalg.cond(h)
+    ok = np.isfinite(cond) & (cond < 1.0 / (np.finfo(np.float64).eps * 16))
+    hinv = np.full_like(h, np.nan)
+    if ok.any():
+        hinv[ok] = np.linalg.inv(h[ok])
+    k = hinv[:, :p, :p] * outer
+    c = hinv[:, :p, p] * s * t if sum_to_one else np.zeros((len(masks), p))
+    return k, c
+
+
+class _Supports:
+    """Affine maps of all supports (a table when p <= 12) or of the supports met so far (a cache).
+
+    Layout: pixels are columns, ``b`` is (p, n); the table holds ``K`` as (p, p, 2^p) and ``c`` as
+    (p, 2^p) so that one support gather per matrix entry gives contiguous (n,) rows.
+    """
+
+    def __init__(self, g: np.ndarray, sum_to_one: bool):
+        self.g, self.sum_to_one = g, sum_to_one
+        p = g.shape[0]
+        self.p = p
+        self.full = (1 << p) - 1
+        k, c = _support_maps(g, np.array([self.full]), sum_to_one)
+        self.k_full, self.c_full = k[0], c[0]
+        if p <= _TABLE_MAX_P:
+            k, c = _support_maps(g, np.arange(1 << p), sum_to_one)
+            k[0], c[0] = 0.0, 0.0  # the empty support: a = 0
+            self.k = np.ascontiguousarray(np.moveaxis(k, 0, -1))
+            self.c = np.ascontiguousarray(c.T)
+        else:
+            self.k = self.c = None
+            self.cache: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+
+    def solve_full(self, b: np.ndarray) -> np.ndarray:
+        return self.k_full @ b + self.c_full[:, None]
+
+    def solve(self, b: np.ndarray, masks: np.ndarray) -> np.ndarray:
+        """Solutions (p, n) on each pixel's support for right-hand sides ``b`` (p, n)."""
+        if self.k is not None:
+            out = self.c[:, masks]
+            for j in range(self.p):
+                out += self.k[:, j, masks] * b[j]
+            return out
+        out = np.empty_like(b)
+        uniq, inv = np.unique(masks, return_inverse=True)
+        missing = [int(m) for m in uniq if int(m) not in self.cache]
+        if missing:
+            k, c = _support_maps(self.g, np.asarray(missing), self.sum_to_one)
+            for i, m in enumerate(missing):
+                self.cache[m] = (k[i], c[i]) if m else (np.zeros((self.p, self.p)), np.zeros(self.p))
+        for u, m in enumerate(uniq):
+            sel = inv == u
+            k, c = self.cache[int(m)]
+            out[:, sel] = k @ b[:, sel] + c[:, None]
+        return out
+
+
+# --------------------------------------------------------------------------------------------------
+# optimality check and exact per-pixel solutions
+
+
+def kkt_violation(gram: np.ndarray, b: np.ndarray, a: np.ndarray, method: str) -> np.ndarray:
+    """Largest violation of the optimality conditions per pixel, relative to the problem's scale.
+
+    For ``min 1/2 a'Ga - b'a`` with ``a >= 0`` (and ``1'a = 1``): ``g = G a - b`` (+ ``mu`` for the
+    sum-to-one multiplier, fitted on the support) must be 0 where ``a > 0`` and ``>= 0`` where
+    ``a = 0``; ``a >= 0``; ``|1'a - 1| = 0``. The scale is ``max|b| + max|G| sum|a|``.
+
+    Parameters
+    ----------
+    gram : (p, p) ``M'M``.
+    b : (p, n) ``M'x`` per pixel (pixels as columns).
+    a : (p, n) abundances.
+    method : one of :data:`METHODS`.
+
+    Returns
+    -------
+    (n,) float64, 0 at an exact optimum.
+    """
+    gram = np.asarray(gram, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    a = np.asarray(a, dtype=np.float64)
+    g = gram @ a - b
+    gmax = np.abs(gram).max()
+    scale = np.abs(b).max(axis=0) + gmax * np.abs(a).sum(axis=0) + np.finfo(np.float64).tiny
+    pos = a > 0 if method in NONNEGATIVE else np.ones(a.shape, dtype=bool)
+    if method in SUM_TO_ONE:
+        mu = -(g * pos).sum(axis=0) / np.maximum(pos.sum(axis=0), 1)
+        g += mu
+    v = np.where(pos, np.abs(g), np.maximum(-g, 0.0)).max(axis=0) / scale
+    if method in NONNEGATIVE:
+        v = np.maximum(v, np.maximum(-a, 0.0).max(axis=0) * gmax / scale)
+    if method in SUM_TO_ONE:
+        v = np.maximum(v, np.abs(a.sum(axis=0) - 1.0))
+    return v
+
+
+def _sum_to_one_on(m: np.ndarray, x: np.ndarray, support: np.ndarray) -> np.ndarray:
+    """Sum-to-one least squares on a support by QR (null-space form); zeros off the support."""
+    p = m.shape[1]
+    idx = np.flatnonzero(support)
+    a = np.zeros(p)
+    if idx.size == 1:
+        a[idx] = 1.0
+        return a
+    ms = m[:, idx]
+    v0 = np.full(idx.size, 1.0 / idx.size)
+    z = _null_sum_basis(idx.size)
+    sol, *_ = np.linalg.lstsq(ms @ z, x - ms @ v0, rcond=None)
+    a[idx] = v0 + z @ sol
+    return a
+
+
+def _kkt_pixel(m: np.ndarray, x: np.ndarray, a: np.ndarray, method: str, rtol: float) -> bool:
+    gram = m.T @ m
+    return bool(kkt_violation(gram, (m.T @ x)[:, None], a[:, None], method)[0] <= rtol)
+
+
+def fcls_pixel(m: np.ndarray, x: np.ndarray, *, rtol: float = 1e-9, delta: float | None = None) -> np.ndarray:
+    """Exact fully constrained least squares for one pixel (the fall-back of :class:`Unmixer`).
+
+    Heinz and Chang's augmented problem ``nnls([M; d 1'], [x; d])`` locates the support; the
+    sum-to-one least-squares solution on that support (QR, null-space form) is returned when it is
+    feasible and satisfies the optimality conditions; otherwise every support is tried (p <= 12) and
+    the feasible solution of smallest residual is returned.
+
+    Parameters
+    ----------
+    m : (L, p) endmembers.  x : (L,) pixel.
+    delta : weight of the sum-to-one row; default ``1e3 max|M|`` (Heinz and Chang, 2001).
+    """
+    m = np.asarray(m, dtype=np.float64)
+    x = np.asarray(x, dtype=np.float64)
+    p = m.shape[1]
+    d = 1e3 * max(np.abs(m).max(), 1e-300) if delta is None else float(delta)
+    aug = np.vstack([m, np.full((1, p), d)])
+    a_hc, _ = scipy.optimize.nnls(aug, np.r_[x, d], maxiter=50 * p)
+    a = _sum_to_one_on(m, x, a_hc > 0)
+    if a.min() >= 0 and _kkt_pixel(m, x, a, "fully_constrained", rtol):
+        return a
+    if p > _ENUMERATE_MAX_P:
+        return np.maximum(a_hc, 0) / max(a_hc.sum(), 1e-300)
+    best, best_r = None, math.inf
+    for mask in range(1, 1 << p):
+        sup = _support_bits(np.array([mask]), p)[0]
+        cand = _sum_to_one_on(m, x, sup)
+        if cand.min() < -1e-12:
+            continue
+        r = float(np.sum((x - m @ cand) ** 2))
+        if r < best_r:
+            best, best_r = np.maximum(cand, 0.0), r
+    return best / best.sum()
+
+
+# --------------------------------------------------------------------------------------------------
+# the compiled per-pixel loop (optional: numba)
+
+
+def _active_set_loop(b, k_tab, c_tab, gram, sum_to_one, tol_add, max_rounds, a_out, flag):  # pragma: no cover
+    """The same active-set method as :meth:`Unmixer._round`, one pixel at a time (compiled by numba).
+
+    b (p, n); k_tab (2^p, p, p), c_tab (2^p, p) the affine maps of all supports; writes a_out (p, n)
+    and flag (n,) (True where the pixel did not settle within max_rounds).
+    """
+    p, n = b.shape
+    full = (1 << p) - 1
+    gmax = np.abs(gram).max()
+    bi = np.empty(p)
+    s = np.empty(p)
+    ai = np.empty(p)
+    ratio = np.empty(p)
+    for i in range(n):
+        for q in range(p):
+            bi[q] = b[q, i]
+        for q in range(p):
+            acc = c_tab[full, q]
+            for r in range(p):
+                acc += k_tab[full, q, r] * bi[r]
+            s[q] = acc
+        feasible = True
+        for q in range(p):
+            if s[q] < 0.0:
+                feasible = False
+        if feasible:
+            for q in range(p):
+                a_out[q, i] = s[q]
+            flag[i] = False
+            continue
+        bmax = 0.0
+        ssum = 0.0
+        mask = 0
+        jbest = 0
+        for q in range(p):
+            bmax = max(bmax, abs(bi[q]))
+            ssum += abs(s[q])
+            ai[q] = 0.0
+            if s[q] > 0.0:
+                mask |= 1 << q
+            if s[q] > s[jbest]:
+                jbest = q
+        if sum_to_one:
+            ai[jbest] = 1.0
+            mask |= 1 << jbest
+        tol = tol_add * (bmax + gmax * ssum)
+        settled = False
+        for _round in range(max_rounds):
+            for q in range(p):
+                acc = c_tab[mask, q]
+                for r in range(p):
+                    acc += k_tab[mask, q, r] * bi[r]
+                s[q] = acc
+            blocked = False
+            for q in range(p):
+                if (mask >> q) & 1 and s[q] <= 0.0:
+                    blocked = True
+            if not blocked:
+                for q in range(p):
+                    ai[q] = s[q]
+                mu = 0.0
+                cnt = 0
+                if sum_to_one:
+                    for q in range(p):
+                        if (mask >> q) & 1:
+                            g = -bi[q]
+                            for r in range(p):
+                                g += gram[q, r] * s[r]
+                            mu -= g
+                            cnt += 1
+                    mu /= cnt
+                jmin = -1
+                lmin = 0.0
+                for q in range(p):
+                    if not (mask >> q) & 1:
+                        g = -bi[q] + mu
+                        for r in range(p):
+                            g += gram[q, r] * s[r]
+                        if jmin < 0 or g < lmin:
+                            jmin = q
+                            lmin = g
+                if jmin >= 0 and lmin < -tol:
+                    mask |= 1 << jmin
+                    continue
+                settled = True
+                break
+            alpha = np.inf
+            for q in range(p):
+                ratio[q] = np.inf
+                if (mask >> q) & 1 and s[q] <= 0.0:
+                    ratio[q] = 0.0 if ai[q] <= 0.0 else ai[q] / (ai[q] - s[q])
+                    alpha = min(alpha, ratio[q])
+            newmask = 0
+            for q in range(p):
+                if (mask >> q) & 1:
+                    an = ai[q] + alpha * (s[q] - ai[q])
+                    if an > 0.0 and not (s[q] <= 0.0 and ratio[q] <= alpha):
+                        ai[q] = an
+                        newmask |= 1 << q
+                    else:
+                        ai[q] = 0.0
+                else:
+                    ai[q] = 0.0
+            mask = newmask
+        for q in range(p):
+            a_out[q, i] = ai[q]
+        flag[i] = not settled
+
+
+try:  # compiled when numba is installed; the numpy rounds are used otherwise
+    import numba as _numba
+
+    _active_set_compiled = _numba.njit(cache=True, nogil=True)(_active_set_loop)
+except ImportError:  # pragma: no cover - depends on the environment
+    _active_set_compiled = None
+
+HAVE_NUMBA = _active_set_compiled is not None
+
+
+# --------------------------------------------------------------------------------------------------
+# the solver
+
+
+@dataclass
+class UnmixResult:
+    """Abundances (p, n), RMSE (n,), and how many pixels needed the exact per-pixel fall-back."""
+
+    abundances: np.ndarray
+    rmse: np.ndarray
+    n_fallback: int = 0
+    n_valid: int = 0
+
+
+class Unmixer:
+    """A prepared unmixing problem: endmembers, variant, and everything precomputed from them.
+
+    Parameters
+    ----------
+    endmembers : (L, p) array, one endmember per column, in the space of the data.
+    method : one of :data:`METHODS`.
+    names : endmember names (default ``em_1..``).
+    max_condition : warn above this condition number (see :func:`check_endmembers`).
+    kkt_rtol : relative tolerance of the optimality check (pixels above are re-solved exactly).
+    chunk : pixels per chunk (bounds the float64 work arrays to ``L * chunk`` values).
+    max_rounds : rounds of the vectorised active-set method before the rest fall back
+        (default ``3 p + 10``).
+    engine : "numpy" runs the active-set rounds on all pixels at once with numpy; "compiled" runs
+        the same method pixel by pixel in a loop compiled by numba (faster; needs numba and
+        p <= 12); "auto" (default) picks "compiled" when it can.
+    """
+
+    def __init__(self, endmembers: np.ndarray, method: str = "fully_constrained", *,
+                 names: Sequence[str] | None = None, max_condition: float = 1e3, kkt_rtol: float = 1e-9,
+                 chunk: int = 2048, max_rounds: int | None = None,
+                 engine: Literal["auto", "numpy", "compiled"] = "auto"):
+        m = np.asarray(endmembers, dtype=np.float64)
+        if m.ndim != 2:
+            raise UnmixError(f"endmembers must be a (bands, p) matrix. Got shape {m.shape}")
+        p = m.shape[1]
+        self.names = tuple(names) if names is not None else tuple(f"em_{i + 1}" for i in range(p))
+        if len(set(self.names)) != len(self.names):
+            raise UnmixError(f"endmember names must be unique. Got {list(self.names)}")
+        self.condition = check_endmembers(m, self.names, method, max_condition)
+        self.method = method
+        self.m = np.ascontiguousarray(m)
+        self.gram = m.T @ m
+        self.sum_to_one = method in SUM_TO_ONE
+        self.nonnegative = method in NONNEGATIVE
+        self.kkt_rtol = float(kkt_rtol)
+        self.chunk = int(chunk)
+        self.max_rounds = int(max_rounds) if max_rounds is not None else 3 * p + 10
+        self._supports = _Supports(self.gram, self.sum_to_one)
+        self._mt = np.ascontiguousarray(m.T)
+        self._pow2 = (1 << np.arange(p)).astype(np.int64)
+        self._bits = _support_bits(np.arange(1 << p), p).T.copy() if p <= _TABLE_MAX_P else None
+        self._gmax = float(np.abs(self.gram).max())
+        if engine not in ("auto", "numpy", "compiled"):
+            raise UnmixError(f"engine must be 'auto', 'numpy' or 'compiled'. Got {engine!r}")
+        can = HAVE_NUMBA and p <= _TABLE_MAX_P
+        if engine == "compiled" and not can:
+            raise UnmixError("engine 'compiled' needs numba installed and at most "
+                             f"{_TABLE_MAX_P} endmembers (got {p}); use engine 'numpy'")
+        self.engine = "compiled" if (engine == "compiled" or (engine == "auto" and can)) else "numpy"
+        if self.engine == "compiled":
+            self._k_rows = np.ascontiguousarray(np.moveaxis(self._supports.k, -1, 0))
+            self._c_rows = np.ascontiguousarray(self._supports.c.T)
+
+    @property
+    def p(self) -> int:
+        return self.m.shape[1]
+
+    @property
+    def bands(self) -> int:
+        return self.m.shape[0]
+
+    # -- normal-equation form ----------------------------------------------------------------------
+    def solve_normal(self, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Abundances (p, n) from ``b = M'x`` (p, n), and a flag (n,) of pixels that need the fall-back.
+
+        The closed forms for the unconstrained and sum-to-one variants; the vectorised active-set
+        method for the others (see the module notes). Flagged pixels either failed the KKT check
+        or did not settle within ``max_rounds``.
+        """
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        p, n = b.shape
+        if self.nonnegative and self.engine == "compiled":
+            a = np.empty_like(b)
+            flag = np.empty(n, dtype=bool)
+            _active_set_compiled(b, self._k_rows, self._c_rows, self.gram, self.sum_to_one,
+                                 0.1 * self.kkt_rtol, self.max_rounds, a, flag)
+            flag |= ~(kkt_violation(self.gram, b, a, self.method) <= self.kkt_rtol)
+            return a, flag
+        s = self._supports.solve_full(b)
+        if not self.nonnegative:
+            return s, np.zeros(n, dtype=bool)
+        done = np.all(s >= 0.0, axis=0)  # the full-support optimum is feasible: it is the optimum
+        a = np.where(done, s, 0.0)
+        todo = np.flatnonzero(~done)
+        flag = np.zeros(n, dtype=bool)
+        if todo.size:
+            st = s[:, todo]
+            wb = np.ascontiguousarray(b[:, todo])
+            wmask = self._pow2 @ (st > 0.0)
+            wa = np.zeros_like(st)
+            if self.sum_to_one:  # a feasible start: the vertex of the largest closed-form abundance
+                j = np.argmax(st, axis=0)
+                wa[j, np.arange(j.size)] = 1.0
+                wmask |= self._pow2[j]
+            wscale = np.abs(wb).max(axis=0) + self._gmax * np.abs(st).sum(axis=0)
+            widx = todo
+            for _ in range(self.max_rounds):
+                fin = self._round(wb, wa, wmask, wscale)
+                if fin.any():
+                    a[:, widx[fin]] = wa[:, fin]
+                    keep = ~fin
+                    wb, wa, wmask, wscale, widx = wb[:, keep], wa[:, keep], wmask[keep], wscale[keep], widx[keep]
+                if not widx.size:
+                    break
+            if widx.size:
+                a[:, widx] = wa
+                flag[widx] = True
+        viol = kkt_violation(self.gram, b, a, self.method)
+        flag |= ~(viol <= self.kkt_rtol)
+        return a, flag
+
+    def _round(self, b: np.ndarray, a: np.ndarray, mask: np.ndarray, scale: np.ndarray) -> np.ndarray:
+        """One round of the active-set method on a working set (updated in place); returns finished."""
+        s = self._supports.solve(b, mask)
+        pi = self._bits[:, mask] if self._bits is not None else _support_bits(mask, self.p).T
+        neg = pi & (s <= 0.0)
+        blocked = neg.any(axis=0)
+        fin = np.zeros(mask.size, dtype=bool)
+        # pixels whose support solution is feasible: move there, then test the multipliers
+        f = np.flatnonzero(~blocked)
+        if f.size:
+            sf, pf = s[:, f], pi[:, f]
+            a[:, f] = sf
+            lam = self.gram @ sf - b[:, f]
+            if self.sum_to_one:
+                lam -= (lam * pf).sum(axis=0) / pf.sum(axis=0)
+            lam[pf] = np.inf
+            j = np.argmin(lam, axis=0)
+            lmin = lam[j, np.arange(j.size)]
+            grow = lmin < -0.1 * self.kkt_rtol * scale[f]
+            fin[f[~grow]] = True
+            mask[f[grow]] |= self._pow2[j[grow]]
+        # pixels whose support solution leaves the feasible set: step to the first bound, drop it
+        bl = np.flatnonzero(blocked)
+        if bl.size:
+            ab, sb, nb, pb = a[:, bl], s[:, bl], neg[:, bl], pi[:, bl]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = np.where(nb, ab / (ab - sb), np.inf)
+            ratio[nb & (ab <= 0.0)] = 0.0
+            alpha = ratio.min(axis=0)
+            anew = ab + alpha * (sb - ab)
+            keep = pb & (anew > 0.0) & ~(nb & (ratio <= alpha))
+            a[:, bl] = np.where(keep, anew, 0.0)
+            mask[bl] = self._pow2 @ keep
+        return fin
+
+    # -- pixels --------------------------------------------------------------------------------------
+    def solve(self, pixels: np.ndarray) -> UnmixResult:
+        """Unmix pixels given as columns (L, n) (any float dtype; NaN pixels give NaN).
+
+        Two passes: ``b = M'x`` and ``x'x`` per chunk (in float64), then all pixels solved at once;
+        pixels needing the exact fall-back or an explicit residual are read again.
+
+        Returns
+        -------
+        UnmixResult with abundances (p, n) and rmse (n,) in float64.
+        """
+        x = np.asarray(pixels)
+        if x.ndim != 2 or x.shape[0] != self.bands:
+            raise UnmixError(f"pixels must be ({self.bands} bands, n) to match the endmembers. Got {x.shape}")
+        n = x.shape[1]
+        p, nbands = self.p, self.bands
+        b = np.empty((p, n))
+        xx = np.empty(n)
+        buf = np.empty((nbands, min(self.chunk, max(n, 1))))
+        for lo in range(0, n, self.chunk):
+            hi = min(lo + self.chunk, n)
+            xc = buf[:, : hi - lo]
+            xc[...] = x[:, lo:hi]
+            np.matmul(self._mt, xc, out=b[:, lo:hi])
+            np.einsum("ij,ij->j", xc, xc, out=xx[lo:hi])
+        ok = np.isfinite(xx) & np.all(np.isfinite(b), axis=0)
+        out_a = np.full((p, n), np.nan)
+        out_r = np.full(n, np.nan)
+        if not ok.any():
+            return UnmixResult(out_a, out_r, 0, 0)
+        okx = None if ok.all() else np.flatnonzero(ok)
+        bs = b if okx is None else b[:, okx]
+        xxs = xx if okx is None else xx[okx]
+        a, flag = self.solve_normal(bs)
+        cols = np.arange(n) if okx is None else okx
+        fb = np.flatnonzero(flag)
+        for k in fb:
+            a[:, k] = self._exact_pixel(np.asarray(x[:, cols[k]], dtype=np.float64))
+        rss = xxs - 2.0 * np.einsum("ij,ij->j", a, bs) + np.einsum("ij,ij->j", self.gram @ a, a)
+        weak = np.flatnonzero(~(rss > 1e-6 * xxs))
+        for lo in range(0, weak.size, self.chunk):
+            w = weak[lo:lo + self.chunk]
+            r = np.asarray(x[:, cols[w]], dtype=np.float64) - self.m @ a[:, w]
+            rss[w] = np.einsum("ij,ij->j", r, r)
+        rm = np.sqrt(np.maximum(rss, 0.0) / nbands)
+        if okx is None:
+            out_a, out_r = a, rm
+        else:
+            out_a[:, okx] = a
+            out_r[okx] = rm
+        return UnmixResult(out_a, out_r, int(fb.size), int(cols.size))
+
+    def _exact_pixel(self, x: np.ndarray) -> np.ndarray:
+        if self.method == "nonnegative":
+            a, _ = scipy.optimize.nnls(self.m, x, maxiter=50 * self.p)
+            return a
+        return fcls_pixel(self.m, x, rtol=self.kkt_rtol)
+
+
+# --------------------------------------------------------------------------------------------------
+# conveniences
+
+
+def _prepare_endmembers(endmembers: np.ndarray, names: Sequence[str] | None, method: str, shade: bool,
+                        transform: Callable[[np.ndarray], np.ndarray] | None) -> tuple[np.ndarray, tuple[str, ...]]:
+    m = np.asarray(endmembers, dtype=np.float64)
+    if m.ndim != 2:
+        raise UnmixError(f"endmembers must be a (bands, p) matrix. Got shape {m.shape}")
+    names = tuple(names) if names is not None else tuple(f"em_{i + 1}" for i in range(m.shape[1]))
+    if len(names) != m.shape[1]:
+        raise UnmixError(f"{len(names)} endmember names for {m.shape[1]} endmembers")
+    if shade:
+        if method not in SUM_TO_ONE:
+            raise UnmixError(f"a shade endmember needs a sum-to-one variant (sum_to_one or fully_constrained); "
+                             f"with {method!r} its abundance is undetermined")
+        if "shade" in names:
+            raise UnmixError("an endmember is already called 'shade'; rename it or set shade: false")
+        m = np.hstack([m, np.zeros((m.shape[0], 1))])
+        names = names + ("shade",)
+    if transform is not None:
+        m = np.asarray(transform(m.T), dtype=np.float64).T
+    return m, names
+
+
+def unmix(pixels: np.ndarray, endmembers: np.ndarray, method: str = "fully_constrained", *,
+          names: Sequence[str] | None = None, shade: bool = False,
+          transform: Callable[[np.ndarray], np.ndarray] | None = None, max_condition: float = 1e3,
+          kkt_rtol: float = 1e-9, chunk: int = 2048) -> UnmixResult:
+    """Unmix pixels (L, n) with endmembers (bands, p); see :class:`Unmixer`.
+
+    ``shade`` appends a zero endmember named ``shade``; ``transform`` maps endmember spectra
+    (p, bands) into the space of the pixels (p, L), e.g. a :class:`LinearTransform` for MNF components.
+    """
+    m, names = _prepare_endmembers(endmembers, names, method, shade, transform)
+    return Unmixer(m, method, names=names, max_condition=max_condition, kkt_rtol=kkt_rtol,
+                   chunk=chunk).solve(pixels)
+
+
+def unmix_cube(cube: np.ndarray, endmembers: np.ndarray, method: str = "fully_constrained", *,
+               names: Sequence[str] | None = None, shade: bool = False,
+               transform: Callable[[np.ndarray], np.ndarray] | None = None, max_condition: float = 1e3,
+               unmixer: Unmixer | None = None) -> dict[str, np.ndarray]:
+    """Unmix a cube (bands, rows, cols): ``{"abundance": (p, rows, cols), "rmse": (1, rows, cols)}``
+    as float32, plus ``"sum"`` (1, rows, cols) for the unconstrained variant. NaN where any band is NaN.
+
+    Give a prepared ``unmixer`` to skip preparing the endmembers (then the other endmember arguments
+    are ignored).
+    """
+    cube = np.asarray(cube)
+    if cube.ndim != 3:
+        raise UnmixError(f"a cube must be (bands, rows, cols). Got shape {cube.shape}")
+    if unmixer is None:
+        m, names = _prepare_endmembers(endmembers, names, method, shade, transform)
+        unmixer = Unmixer(m, method, names=names, max_condition=max_condition)
+    nb, rows, cols = cube.shape
+    res = unmixer.solve(cube.reshape(nb, rows * cols))
+    out = {"abundance": res.abundances.reshape(unmixer.p, rows, cols).astype(np.float32),
+           "rmse": res.rmse.reshape(1, rows, cols).astype(np.float32)}
+    if unmixer.method == "unconstrained":
+        out["sum"] = res.abundances.sum(axis=0).reshape(1, rows, cols).astype(np.float32)
+    return out
+
+
+# --------------------------------------------------------------------------------------------------
+# the engine step
+#
+# The step always has a fit phase: it settles the endmember matrix in the space of the input once,
+# before any tile is unmixed, and saves it in the model (so it is hashed into the step key):
+#   library   resampled to the input's ``wavelength`` (and ``fwhm``) coordinates; no tile is read.
+#   samples   mean spectrum of each ground-reference class (training and unassigned samples).
+#   image     extracted by :mod:`workflows.endmembers` (candidates per tile, global selection);
+#             the endmembers take the input's spectra at the chosen pixels.
+#   given     a matrix in the input's space; no tile is read.
+
+X = "x"  # input alias of the data to unmix
+_UNMIXERS: "OrderedDict[str, Unmixer]" = OrderedDict()
+
+
+def _select_none(tiles, params):
+    return []
+
+
+def _select_sample_tiles(tiles, params, *, rows: np.ndarray, cols: np.ndarray):
+    out = []
+    for t in tiles:
+        w = t.core
+        if np.any((rows >= w.row) & (rows < w.row + w.rows) & (cols >= w.col) & (cols < w.col + w.cols)):
+            out.append(t)
+    return out
+
+
+def _accumulate_samples(block: Block) -> dict:
+    """Spectra of the input at the sample pixels inside this tile's core (each sample counted once)."""
+    rows, cols = np.asarray(block.static["samples.row"]), np.asarray(block.static["samples.col"])
+    core, pad = block.tile.core, block.tile.padded
+    sel = np.flatnonzero((rows >= core.row) & (rows < core.row + core.rows)
+                         & (cols >= core.col) & (cols < core.col + core.cols))
+    x = block.data[X][:, rows[sel] - pad.row, cols[sel] - pad.col].T
+    ok = block.valid[rows[sel] - pad.row, cols[sel] - pad.col] & np.all(np.isfinite(x), axis=1)
+    return {"idx": sel[ok].astype(np.int64), "X": np.asarray(x[ok], dtype=np.float64),
+            "bad": sel[~ok].astype(np.int64)}
+
+
+def _merge_samples(a: dict | None, b: dict | None) -> dict | None:
+    if a is None or b is None:
+        return a if b is None else b
+    return {k: np.concatenate([a[k], b[k]]) for k in ("idx", "X", "bad")}
+
+
+def _image_block(block: Block) -> Block:
+    """The block as the extraction sees it: ``reduced`` (its own input, or the data) and ``spectra``."""
+    data = {"reduced": block.data.get("reduced", block.data[X]), "spectra": block.data[X]}
+    meta = {"reduced": block.meta.get("reduced", block.meta.get(X)), "spectra": block.meta.get(X)}
+    return replace(block, data=data, meta=meta)
+
+
+def _image_meta(meta: Mapping[str, InputMeta]) -> dict:
+    return {"reduced": meta.get("reduced", meta[X]), "spectra": meta[X]}
+
+
+def _accumulate_image(block: Block) -> dict:
+    return _em.candidate_accumulate(_image_block(block))
+
+
+def _coord(meta: InputMeta, name: str) -> np.ndarray | None:
+    v = meta.spec.coords.get(name)
+    if v is None:
+        return None
+    try:
+        arr = np.asarray([np.nan if (x is None or x == "NaN") else x for x in v], dtype=np.float64)
+    except (TypeError, ValueError):
+        return None
+    return arr
+
+
+def _finalize(acc: Any, params: Mapping[str, Any], meta: Mapping[str, InputMeta], *,
+              library: Mapping[str, Any] | None = None, table: SampleTable | None = None,
+              given: Mapping[str, Any] | None = None) -> dict:
+    """The endmember model of an unmixing step (see the notes above)."""
+    step = params["step"]
+    src = meta[X]
+    nb = len(src.spec.bands)
+    model: dict[str, Any] = {"source": params["source"]}
+    transform = None
+    if params.get("transform") is not None:
+        tf = params["transform"]
+        transform = LinearTransform(np.asarray(tf["offset"]), np.asarray(tf["matrix"]))
+    if params["source"] == "library":
+        if transform is not None:
+            wl, fwhm = np.asarray(params["cube_wavelengths"], dtype=np.float64), params.get("cube_fwhm")
+            fwhm = None if fwhm is None else np.asarray(fwhm, dtype=np.float64)
+        else:
+            wl, fwhm = _coord(src, "wavelength"), _coord(src, "fwhm")
+            if wl is None or not np.isfinite(wl).all():
+                raise UnmixError(f"step {step!r}: library endmembers need band wavelengths, but input {src.ref!r} "
+                                 "has no numeric 'wavelength' coordinate (components need a transform)")
+        if fwhm is not None and not np.isfinite(fwhm).any():
+            fwhm = None
+        lib = SpectralLibrary(tuple(library["names"]), np.asarray(library["wavelengths"]),
+                              np.asarray(library["spectra"]), source=library["source"])
+        m = resample_library(lib, wl, fwhm).spectra.T
+        names = list(lib.names)
+        model["resampling"] = "linear" if fwhm is None else "gaussian"
+    elif params["source"] == "samples":
+        assert table is not None
+        if acc is None:
+            acc = {"idx": np.empty(0, np.int64), "X": np.empty((0, nb)), "bad": np.empty(0, np.int64)}
+        order = np.argsort(acc["idx"], kind="stable")
+        idx, xs = acc["idx"][order], acc["X"][order]
+        use = table.split[idx] != 2  # validation samples never shape the endmembers
+        labels = table.label[idx][use]
+        k = len(table.class_names)
+        counts = np.bincount(labels, minlength=k + 1)[1:]
+        empty = [table.class_names[i] for i in range(k) if counts[i] == 0]
+        if empty:
+            raise UnmixError(f"step {step!r}: no valid ground-reference pixel for class(es) {empty}: cannot take "
+                             "their mean spectrum")
+        sums = np.zeros((k, nb))
+        np.add.at(sums, labels - 1, xs[use])
+        m = (sums / counts[:, None]).T
+        names = list(table.class_names)
+        model["counts"] = counts.astype(np.int64)
+        model["n_nodata_samples"] = int(acc["bad"].size)
+        transform = None  # the means are taken in the input's own space
+    elif params["source"] == "image":
+        ext = _em.extraction_finalize(acc, params["extraction"], _image_meta(meta))
+        m = np.asarray(ext["spectra"], dtype=np.float64).T
+        names = list(ext["names"])
+        model["extraction"] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in ext.items()
+                               if k not in ("spectra", "reduced")}
+        model["rows"], model["cols"] = ext["rows"], ext["cols"]
+        transform = None
+    else:
+        m = np.asarray(given["endmembers"], dtype=np.float64)
+        names = list(given["names"])
+    if transform is not None:
+        m = np.asarray(transform(m.T), dtype=np.float64).T
+    if params["shade"]:
+        m, names_t = _prepare_endmembers(m, names, params["method"], True, None)
+        names = list(names_t)
+    if m.shape[0] != nb:
+        raise UnmixError(f"step {step!r}: the endmembers have {m.shape[0]} bands but input {src.ref!r} has {nb}")
+    model["condition_number"] = check_endmembers(m, names, params["method"], params["max_condition"])
+    model["endmembers"] = m
+    model["names"] = names
+    return model
+
+
+def _unmixer(model: Mapping[str, Any], params: Mapping[str, Any]) -> Unmixer:
+    m = np.ascontiguousarray(model["endmembers"], dtype=np.float64)
+    key = hashlib.sha256(m.tobytes() + repr((m.shape, list(model["names"]), params["method"],
+                                             params["kkt_rtol"])).encode()).hexdigest()
+    u = _UNMIXERS.get(key)
+    if u is None:
+        with warnings.catch_warnings():  # warned once, when the step was fitted
+            warnings.simplefilter("ignore", IllConditionedWarning)
+            u = Unmixer(m, params["method"], names=list(model["names"]), max_condition=math.inf,
+                        kkt_rtol=params["kkt_rtol"])
+        _UNMIXERS[key] = u
+        while len(_UNMIXERS) > 4:
+            _UNMIXERS.popitem(last=False)
+    return u
+
+
+def _unmix_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np.ndarray]:
+    if model is None:
+        raise UnmixError("the unmixing kernel needs its fitted endmember model")
+    crop = block.tile.crop
+    x = block.data[X][:, crop[0], crop[1]]
+    u = _unmixer(model, block.params)
+    return unmix_cube(x, None, unmixer=u)
+
+
+def _unmix_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | None,
+                   params: Mapping[str, Any]) -> dict[str, OutputSpec]:
+    if model is None:
+        raise StepError(f"step {params.get('step')!r}: its outputs depend on the fitted endmembers")
+    names = tuple(str(n) for n in model["names"])
+    attrs = {"method": params["method"], "endmember_source": model["source"],
+             "condition_number": float(model["condition_number"])}
+    out = {"abundance": OutputSpec(bands=names, dtype="float32", nodata=float("nan"),
+                                   attrs={**attrs, "quantity": "abundance (fraction of the pixel)"}),
+           "rmse": OutputSpec(bands=("rmse",), dtype="float32", nodata=float("nan"),
+                              attrs={**attrs, "quantity": "root mean square residual over the bands",
+                                     "units": "units of the input"})}
+    if params["method"] == "unconstrained":
+        out["sum"] = OutputSpec(bands=("sum",), dtype="float32", nodata=float("nan"),
+                                attrs={**attrs, "quantity": "sum of the abundances"})
+    return out
+
+
+def _library_dict(lib: SpectralLibrary) -> dict:
+    return {"names": list(lib.names), "wavelengths": np.asarray(lib.wavelengths, dtype=np.float64),
+            "spectra": np.asarray(lib.spectra, dtype=np.float64), "source": Path(lib.source).name}
+
+
+def unmix_step(name: str, input_ref: str, *, method: str = "fully_constrained",
+               library: SpectralLibrary | None = None, samples: SampleTable | None = None,
+               image: Mapping[str, Any] | None = None, reduced_ref: str | None = None,
+               endmembers: np.ndarray | None = None, names: Sequence[str] | None = None,
+               shade: bool = False, max_condition: float = 1e3, kkt_rtol: float = 1e-9,
+               transform: LinearTransform | None = None, cube_wavelengths: Sequence[float] | None = None,
+               cube_fwhm: Sequence[float] | None = None) -> Step:
+    """A linear unmixing step of ``input_ref`` with endmembers from exactly one source.
+
+    Parameters
+    ----------
+    name : step name.
+    input_ref : "step/output" of the data to unmix (reflectance, or components).
+    method : one of :data:`METHODS`.
+    library : endmembers from a spectral library, resampled to the input's bands when fitted
+        (refused, naming the file and ranges, if it does not cover them).
+    samples : endmembers as the mean input spectrum of each ground-reference class (samples whose
+        split is "validation" are left out).
+    image : endmembers extracted from the image: parameters of
+        :func:`workflows.endmembers.extraction_params` (method, n_endmembers, seed, ...). The
+        extraction runs on ``reduced_ref`` (MNF or PCA components) if given, else on the input; the
+        endmembers take the input's values at the chosen pixels.
+    endmembers, names : a (bands, p) matrix already in the input's space, and its names.
+    shade : add a zero (shade) endmember; needs a sum-to-one variant.
+    max_condition : warn (when fitted) above this condition number.
+    kkt_rtol : tolerance of the optimality check.
+    transform : for library endmembers on transformed data (e.g. MNF components): the transform,
+        with the wavelengths (and FWHM) of the bands it takes (``cube_wavelengths``, ``cube_fwhm``).
+
+    Returns
+    -------
+    Step with outputs ``abundance`` (one float32 band per endmember, named after it), ``rmse``
+    (1 band) and, for the unconstrained variant, ``sum`` (1 band).
+    """
+    if method not in METHODS:
+        raise UnmixError(f"step {name!r}: unknown unmixing method {method!r}; choose one of {', '.join(METHODS)}")
+    given = [k for k, v in (("library", library), ("samples", samples), ("image", image),
+                            ("endmembers", endmembers)) if v is not None]
+    if len(given) != 1:
+        raise UnmixError(f"step {name!r}: give exactly one endmember source (library, samples, image or "
+                         f"endmembers). Got {given or 'none'}")
+    if shade and method not in SUM_TO_ONE:
+        raise UnmixError(f"step {name!r}: a shade endmember needs a sum-to-one variant (sum_to_one or "
+                         f"fully_constrained). Got {method!r}")
+    if not max_condition > 1:
+        raise UnmixError(f"step {name!r}: max_condition must exceed 1. Got {max_condition}")
+    source = given[0]
+    params: dict[str, Any] = {"step": name, "method": method, "source": source, "shade": bool(shade),
+                              "max_condition": float(max_condition), "kkt_rtol": float(kkt_rtol),
+                              "transform": None}
+    static: dict[str, Any] = {}
+    inputs = {X: input_ref}
+    if transform is not None:
+        if source != "library":
+            raise UnmixError(f"step {name!r}: a transform applies to library endmembers only (image and sample "
+                             "endmembers are taken from the input itself)")
+        if cube_wavelengths is None:
+            raise UnmixError(f"step {name!r}: with a transform, give cube_wavelengths (the bands it takes)")
+        if len(cube_wavelengths) != transform.offset.size:
+            raise UnmixError(f"step {name!r}: {len(cube_wavelengths)} cube wavelengths for a transform of "
+                             f"{transform.offset.size} bands")
+        params["transform"] = {"offset": transform.offset.tolist(), "matrix": transform.matrix.tolist()}
+        params["cube_wavelengths"] = [float(v) for v in cube_wavelengths]
+        params["cube_fwhm"] = None if cube_fwhm is None else [float(v) for v in cube_fwhm]
+    if source == "library":
+        assert library is not None
+        libd = _library_dict(library)
+        static.update({"library.wavelengths": libd["wavelengths"], "library.spectra": libd["spectra"],
+                       "library.names": libd["names"], "library.source": libd["source"]})
+        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples, select=_select_none,
+                  finalize=functools.partial(_finalize, library=libd))
+    elif source == "samples":
+        assert samples is not None
+        if len(samples) == 0:
+            raise UnmixError(f"step {name!r}: the ground reference has no sample on the grid")
+        static.update(samples.to_static())
+        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples,
+                  select=functools.partial(_select_sample_tiles, rows=samples.row, cols=samples.col),
+                  finalize=functools.partial(_finalize, table=samples))
+    elif source == "image":
+        params["extraction"] = _em.extraction_params(**dict(image))
+        if reduced_ref is not None and reduced_ref != input_ref:
+            inputs["reduced"] = reduced_ref
+        fit = Fit(accumulate=_accumulate_image, merge=_em.candidate_merge, finalize=_finalize)
+    else:
+        m = np.asarray(endmembers, dtype=np.float64)
+        if m.ndim != 2:
+            raise UnmixError(f"step {name!r}: endmembers must be a (bands, p) matrix. Got shape {m.shape}")
+        nm = list(names) if names is not None else [f"em_{i + 1}" for i in range(m.shape[1])]
+        if len(nm) != m.shape[1]:
+            raise UnmixError(f"step {name!r}: {len(nm)} names for {m.shape[1]} endmembers")
+        static.update({"endmembers": m, "endmember_names": nm})
+        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples, select=_select_none,
+                  finalize=functools.partial(_finalize, given={"endmembers": m, "names": nm}))
+    return Step(name=name, kernel=_unmix_kernel, outputs=_unmix_outputs, inputs=inputs, params=params,
+                fit=fit, static=static)
+
+
+# --------------------------------------------------------------------------------------------------
+# configuration
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class ImageEndmembersConfig(_Strict):
+    """Endmembers found in the image (see :mod:`workflows.endmembers`)."""
+
+    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
+    n_endmembers: int | None = Field(default=None, ge=2, le=64,
+                                     description="null: suggested from the reduced input's MNF eigenvalues")
+    reduced: str | None = Field(default=None, description="'step/output' of MNF/PCA components "
+                                                          "(null: extract on the input itself)")
+    n_dims: int | None = Field(default=None, ge=1)
+    seed: int = Field(default=0, ge=0)
+    n_directions: int = Field(default=512, ge=1, le=100_000)
+    n_brightest: int = Field(default=16, ge=1, le=10_000)
+    restarts: int = Field(default=5, ge=1, le=1000)
+    snr: float | None = None
+    min_snr: float = Field(default=1.0, gt=0)
+
+
+class EndmemberSourceConfig(_Strict):
+    """Where the endmembers come from: exactly one of ``library``, ``samples`` or ``image``."""
+
+    library: str | None = Field(default=None, description="spectral library CSV (relative to the config file)")
+    materials: list[str] | None = Field(default=None, description="subset of the library's materials, in order")
+    samples: GroundReferenceConfig | None = None
+    image: ImageEndmembersConfig | None = None
+
+    @model_validator(mode="after")
+    def _one(self) -> "EndmemberSourceConfig":
+        given = [k for k in ("library", "samples", "image") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(f"give exactly one of library, samples or image. Got {given or 'none'}")
+        if self.materials is not None and self.library is None:
+            raise ValueError("materials selects from a library: give library too")
+        return self
+
+
+class UnmixConfig(_Strict):
+    """The ``unmix`` section.
+
+    YAML shape::
+
+        unmix:
+          name: unmix                     # step name
+          input: mosaic/reflectance       # data to unmix ('step/output')
+          method: fully_constrained       # unconstrained | sum_to_one | nonnegative | fully_constrained
+          endmembers:                     # exactly one of:
+            library: libraries/site.csv   #   a spectral library (+ optional materials: [a, b])
+            # samples: {path: field/plots.gpkg, label: material}   #   ground-reference class means
+            # image: {method: nfindr, n_endmembers: 5, reduced: mnf/components, seed: 0}
+          shade: false                    # add a zero endmember (sum-to-one variants)
+          max_condition: 1000             # warn above this condition number
+    """
+
+    name: str = "unmix"
+    input: str = "mosaic/reflectance"
+    method: Literal["unconstrained", "sum_to_one", "nonnegative", "fully_constrained"] = "fully_constrained"
+    endmembers: EndmemberSourceConfig
+    shade: bool = False
+    max_condition: float = Field(default=1e3, gt=1)
+    kkt_rtol: float = Field(default=1e-9, gt=0, lt=1e-3)
+
+    @model_validator(mode="after")
+    def _check(self) -> "UnmixConfig":
+        if self.input.count("/") != 1:
+            raise ValueError(f"input must be 'step/output'. Got {self.input!r}")
+        if self.shade and self.method not in SUM_TO_ONE:
+            raise ValueError(f"shade needs method sum_to_one or fully_constrained. Got {self.method!r}")
+        n = self.name
+        if not n or "/" in n or not n.replace("_", "").replace("-", "").isalnum():
+            raise ValueError(f"name must be letters, digits, '_' or '-'. Got {n!r}")
+        return self
+
+
+def _ctx(ctx: Any, key: str, default: Any = None) -> Any:
+    if ctx is None:
+        return default
+    if isinstance(ctx, Mapping):
+        return ctx.get(key, default)
+    return getattr(ctx, key, default)
+
+
+def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
+    """``[unmix_step(...)]`` for the ``unmix`` section.
+
+    ``ctx`` (mapping or object) may provide ``base_dir`` (relative paths) and must provide ``grid``
+    (the mosaic's :class:`tiles.grid.Grid`) for ground-reference endmembers, optionally ``valid``.
+    """
+    if not isinstance(section, UnmixConfig):
+        raise UnmixError(f"build_steps takes an UnmixConfig. Got {type(section).__name__}")
+    src = section.endmembers
+    common = dict(method=section.method, shade=section.shade, max_condition=section.max_condition,
+                  kkt_rtol=section.kkt_rtol)
+    if src.library is not None:
+        path = Path(src.library).expanduser()
+        base = _ctx(ctx, "base_dir")
+        if not path.is_absolute() and base is not None:
+            path = Path(base) / path
+        lib = read_library(path)
+        if src.materials is not None:
+            lib = lib.subset(src.materials)
+        return [unmix_step(section.name, section.input, library=lib, **common)]
+    if src.samples is not None:
+        grid = _ctx(ctx, "grid")
+        if grid is None:
+            raise UnmixError("ground-reference endmembers need the mosaic grid: build_steps was called without "
+                             "ctx.grid")
+        table, _issues = load_samples(src.samples, grid, base_dir=_ctx(ctx, "base_dir"), valid=_ctx(ctx, "valid"))
+        return [unmix_step(section.name, section.input, samples=table, **common)]
+    img = src.image
+    assert img is not None
+    image = img.model_dump(exclude={"reduced"})
+    return [unmix_step(section.name, section.input, image=image, reduced_ref=img.reduced, **common)]
