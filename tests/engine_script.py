@@ -236,4 +236,9 @@ def main(argv: list[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    # run the importable module, not __main__: the kernels' names (part of the step keys) and their
+    # pickles must be those of the module ``engine_script``
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import engine_script
+
+    sys.exit(engine_script.main())
