@@ -48,7 +48,7 @@ SUGGESTED_BAD_BANDS = [[1340.0, 1460.0], [1790.0, 1960.0], [2450.0, 2600.0]]
 SIZES: dict[str, tuple[int, int, int, int, float, int, int]] = {
     "small": (200, 200, 160, 3, 5.0, 24, 2),
     "medium": (640, 640, 180, 4, 5.0, 40, 3),
-    "large": (2100, 2100, 170, 5, 5.0, 60, 4),
+    "large": (2200, 2200, 170, 5, 5.0, 60, 4),
 }
 
 #: name -> (colour, what it stands for)
@@ -383,7 +383,7 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
     ----------
     out_dir : folder to write into (created; existing files of a previous scenario are overwritten).
     size : "small" (200 x 200 px, 160 bands, 3 lines; the demo), "medium" (640 x 640 px, 180 bands,
-        4 lines) or "large" (2100 x 2100 px, 170 bands, 5 lines; a cube of about 1.5 GB, for
+        4 lines) or "large" (2200 x 2200 px, 170 bands, 5 lines; a cube of about 1.65 GB, for
         benchmarks).
     seed : everything is deterministic from it.
     """
