@@ -539,17 +539,23 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
                        n_endmembers: int | None = None, eigenvalues: Sequence[float] | None = None,
                        **kw: Any) -> dict:
     """Whole-array extraction (one tile): ``reduced`` (dims, rows, cols), optional ``spectra``
-    (bands, rows, cols). Same candidates and selection as the tiled fit. Returns the model."""
+    (bands, rows, cols). Same candidates and selection as the tiled fit. Returns the model.
+
+    Without ``n_endmembers``, it is suggested from ``eigenvalues`` (all MNF eigenvalues, which may be
+    more than the reduced bands given).
+    """
     from tiles.grid import Grid, Tiling
     from affine import Affine
 
     red = np.asarray(reduced, dtype=np.float32)
     grid = Grid(red.shape[1], red.shape[2], Affine.identity(), "EPSG:4326")
     tile = Tiling(grid, max(red.shape[1:]))[0, 0]
+    suggestion = None
+    if n_endmembers is None and eigenvalues is not None:
+        n_endmembers, suggestion = suggest_endmember_count(eigenvalues, min_snr=kw.get("min_snr", 1.0))
     params = extraction_params(method, n_endmembers, **kw)
-    coords = {} if eigenvalues is None else {"eigenvalue": tuple(float(v) for v in eigenvalues)}
     meta = {"reduced": InputMeta("src/reduced", grid, OutputSpec(tuple(f"c{i}" for i in range(red.shape[0])),
-                                                                  "float32", float("nan"), coords=coords))}
+                                                                  "float32", float("nan")))}
     data = {"reduced": red}
     valid = np.all(np.isfinite(red), axis=0)
     if spectra is not None:
@@ -558,7 +564,10 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
         meta["spectra"] = InputMeta("src/spectra", grid, OutputSpec(tuple(f"b{i}" for i in range(sp.shape[0])),
                                                                      "float32", float("nan")))
     block = Block(data=data, valid=valid, tile=tile, grid=grid, params=params, static={}, meta=meta)
-    return extraction_finalize(candidate_accumulate(block), params, meta)
+    model = extraction_finalize(candidate_accumulate(block), params, meta)
+    if suggestion is not None:
+        model["suggestion"] = suggestion
+    return model
 
 
 # --------------------------------------------------------------------------------------------------
