@@ -87,6 +87,7 @@ __all__ = [
     "class_means",
     "blocked_folds",
     "check_training",
+    "cap_samples",
     "fit_svm",
     "load_svm",
     "predict_svm",
@@ -132,21 +133,26 @@ def spectral_angle(pixels: np.ndarray, references: np.ndarray) -> np.ndarray:
     r = np.asarray(references, dtype=np.float64)
     if t.ndim != 2 or r.ndim != 2 or t.shape[1] != r.shape[1]:
         raise ClassifyError(f"pixels (n, b) and references (m, b) must share b. Got {t.shape} and {r.shape}")
+    return _angles_bands_first(t.T, r).T
+
+
+def _angles_bands_first(x: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Angles (m, c) between references r (m, b) and pixel columns x (b, c) (float64)."""
     rn = np.linalg.norm(r, axis=1)
     if np.any(~(rn > 0)):
         raise ClassifyError(f"reference(s) {np.flatnonzero(~(rn > 0)).tolist()} have zero norm or NaN values")
-    tn = np.linalg.norm(t, axis=1)
+    tn = np.sqrt(np.einsum("bc,bc->c", x, x))
     with np.errstate(invalid="ignore", divide="ignore"):
-        cos = (t @ r.T) / (tn[:, None] * rn[None, :])
+        cos = (r @ x) / (rn[:, None] * tn[None, :])
     ang = np.arccos(np.clip(cos, -1.0, 1.0))  # rounding can give 1.0000000000000002 (METHODS.md)
     # arccos loses half the digits near 0 (an error of ~1e-8 rad for parallel spectra): recompute the
     # near-parallel pairs with 2 atan2(|u - v|, |u + v|) on unit vectors (W. Kahan), exact to ~1e-16
     near = np.argwhere(cos > 1.0 - 1e-4)
     if near.size:
-        u = t[near[:, 0]] / tn[near[:, 0], None]
-        v = r[near[:, 1]] / rn[near[:, 1], None]
+        u = x[:, near[:, 1]].T / tn[near[:, 1], None]
+        v = r[near[:, 0]] / rn[near[:, 0], None]
         ang[near[:, 0], near[:, 1]] = 2.0 * np.arctan2(np.linalg.norm(u - v, axis=1), np.linalg.norm(u + v, axis=1))
-    ang[~(tn > 0) | ~np.isfinite(tn)] = np.nan
+    ang[:, ~(tn > 0) | ~np.isfinite(tn)] = np.nan
     return ang
 
 
@@ -486,24 +492,28 @@ def _exclude_mask(wl: np.ndarray | None, exclude: Sequence[Sequence[float]], ref
     return keep
 
 
-def _pixels(block: Block, band_index: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """(n, b) float64 spectra of the valid, finite pixels of the padded window and their flat indices."""
+_CHUNK = 16384  # pixels per work chunk in the kernels: bounds the float64 workspace to a few tens of MB
+
+
+def _pixel_chunks(block: Block, band_index: np.ndarray | None = None, chunk: int = _CHUNK):
+    """Yield (start, stop, X (b, c) float64, ok (c,)) over the flattened padded window, bands first.
+
+    ``ok`` marks valid pixels whose selected bands are all finite; columns of other pixels hold
+    whatever the input holds (callers mask their results with ``ok``).
+    """
     x = block.data["x"]
-    if band_index is not None:
-        x = x[np.asarray(band_index)]
-    b = x.shape[0]
-    flat = x.reshape(b, -1)
-    ok = block.valid.ravel() & np.all(np.isfinite(flat), axis=0)
-    idx = np.flatnonzero(ok)
-    return flat[:, idx].T.astype(np.float64), idx
+    flat = x.reshape(x.shape[0], -1)
+    valid = block.valid.ravel()
+    sel = None if band_index is None else np.asarray(band_index)
+    for s in range(0, flat.shape[1], chunk):
+        e = min(s + chunk, flat.shape[1])
+        X = (flat[:, s:e] if sel is None else flat[sel, s:e]).astype(np.float64)
+        ok = valid[s:e] & np.isfinite(X.sum(axis=0))  # NaN or inf in any band makes the sum non-finite
+        yield s, e, X, ok
 
 
-def _scatter(values: np.ndarray, idx: np.ndarray, shape: tuple[int, int], fill, dtype) -> np.ndarray:
-    """(n, m) or (n,) values at flat indices -> (m, rows, cols)."""
-    v = values if values.ndim == 2 else values[:, None]
-    out = np.full((v.shape[1], shape[0] * shape[1]), fill, dtype=dtype)
-    out[:, idx] = v.T
-    return out.reshape(v.shape[1], *shape)
+def _blank(m: int, shape: tuple[int, int], fill, dtype) -> np.ndarray:
+    return np.full((m, shape[0] * shape[1]), fill, dtype=dtype)
 
 
 def _class_spec(names: Sequence[str], colors) -> OutputSpec:
@@ -617,12 +627,19 @@ def _finalize_references(acc, params, meta, *, library: dict | None, table: Samp
 def _sam_kernel(block: Block, model: dict) -> dict:
     p = block.params
     shape = block.valid.shape
-    X, idx = _pixels(block, model["band_index"])
-    ang = spectral_angle(X, np.asarray(model["references"]))
-    thr = class_thresholds(np.asarray(p["ref_class"]), p["class_names"], p["threshold"], p["class_thresholds"])
-    cls = assign_min_angle(ang, np.asarray(p["ref_class"]), thr)
-    return {"classes": _scatter(cls, idx, shape, 0, np.uint8),
-            "angle": _scatter(ang.astype(np.float32), idx, shape, np.nan, np.float32)}
+    refs = np.asarray(model["references"], dtype=np.float64)
+    ref_class = np.asarray(p["ref_class"])
+    thr = class_thresholds(ref_class, p["class_names"], p["threshold"], p["class_thresholds"])
+    cls = _blank(1, shape, 0, np.uint8)
+    angle = _blank(refs.shape[0], shape, np.nan, np.float32)
+    for s, e, X, ok in _pixel_chunks(block, model["band_index"]):
+        if not ok.any():
+            continue
+        ang = _angles_bands_first(X if ok.all() else X[:, ok], refs)  # (m, c)
+        cols = np.arange(s, e)[ok]
+        angle[:, cols] = ang
+        cls[0, cols] = assign_min_angle(ang.T, ref_class, thr)
+    return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(-1, *shape)}
 
 
 def _sam_outputs(meta, model, params) -> dict[str, OutputSpec]:
@@ -636,18 +653,27 @@ def _sff_kernel(block: Block, model: dict) -> dict:
     p = block.params
     shape = block.valid.shape
     sel = np.asarray(model["band_index"])
-    X, idx = _pixels(block, sel)
+    ref_depth = np.asarray(model["ref_depth"], dtype=np.float64)
+    ref_class = np.asarray(p["ref_class"])
+    m = ref_depth.shape[0]
     wl, _ = _wavelengths(block.meta, "spectral feature fitting")
-    cr, _ = continuum_removed(wl[sel], X)
-    scale, rmse = sff_fit(1.0 - cr, np.asarray(model["ref_depth"]))
-    score = sff_score(scale, rmse, p["rmse_floor"])
-    cls = assign_best_fit(score, scale, rmse, np.asarray(p["ref_class"]), min_scale=p["min_scale"],
-                          max_rmse=p["max_rmse"], min_score=p["min_score"])
-    f = np.float32
-    return {"classes": _scatter(cls, idx, shape, 0, np.uint8),
-            "scale": _scatter(scale.astype(f), idx, shape, np.nan, f),
-            "rmse": _scatter(rmse.astype(f), idx, shape, np.nan, f),
-            "score": _scatter(score.astype(f), idx, shape, np.nan, f)}
+    cls = _blank(1, shape, 0, np.uint8)
+    out = {k: _blank(m, shape, np.nan, np.float32) for k in ("scale", "rmse", "score")}
+    for s, e, X, ok in _pixel_chunks(block, sel):
+        if not ok.any():
+            continue
+        cr, _ = continuum_removed(wl[sel], X[:, ok].T)
+        scale, rmse = sff_fit(1.0 - cr, ref_depth)
+        score = sff_score(scale, rmse, p["rmse_floor"])
+        cols = np.arange(s, e)[ok]
+        out["scale"][:, cols] = scale.T
+        out["rmse"][:, cols] = rmse.T
+        out["score"][:, cols] = score.T
+        cls[0, cols] = assign_best_fit(score, scale, rmse, ref_class, min_scale=p["min_scale"],
+                                       max_rmse=p["max_rmse"], min_score=p["min_score"])
+    res = {k: v.reshape(m, *shape) for k, v in out.items()}
+    res["classes"] = cls.reshape(1, *shape)
+    return res
 
 
 def _sff_outputs(meta, model, params) -> dict[str, OutputSpec]:
@@ -670,14 +696,6 @@ def _finalize_svm(acc, params, meta, *, table: SampleTable) -> dict:
     split = table.split[idx]
     train = split != 2
     Xt, yt, gt = X[train], y[train], table.group[idx][train]
-    cap = params.get("max_per_class")
-    if cap:
-        keep = np.zeros(yt.size, dtype=bool)
-        rng = np.random.default_rng(params["seed"])
-        for c in np.unique(yt):
-            where = np.flatnonzero(yt == c)
-            keep[where if where.size <= cap else np.sort(rng.choice(where, cap, replace=False))] = True
-        Xt, yt, gt = Xt[keep], yt[keep], gt[keep]
     model = fit_svm(Xt, yt, gt, class_names=table.class_names, C=params["C"], gamma=params["gamma"],
                     folds=params["folds"], scoring=params["scoring"], probability=params["probability"],
                     seed=params["seed"])
@@ -692,14 +710,24 @@ def _finalize_svm(acc, params, meta, *, table: SampleTable) -> dict:
 def _svm_kernel(block: Block, model: dict) -> dict:
     p = block.params
     shape = block.valid.shape
-    X, idx = _pixels(block)
-    if X.shape[1] != int(model["n_features"]):
-        raise ClassifyError(f"input has {X.shape[1]} bands; the SVM was trained on {model['n_features']}")
+    nb = block.data["x"].shape[0]
+    if nb != int(model["n_features"]):
+        raise ClassifyError(f"input has {nb} bands; the SVM was trained on {model['n_features']}")
     est = load_svm(model)
-    labels, proba = predict_svm(est, X, probability=p["probability"], chunk=p["chunk"])
-    out = {"classes": _scatter(labels.astype(np.uint8), idx, shape, 0, np.uint8)}
-    if p["probability"]:
-        out["probability"] = _scatter(proba.astype(np.float32), idx, shape, np.nan, np.float32)
+    k = len(p["class_names"])
+    cls = _blank(1, shape, 0, np.uint8)
+    proba = _blank(k, shape, np.nan, np.float32) if p["probability"] else None
+    for s, e, X, ok in _pixel_chunks(block, chunk=p["chunk"]):
+        if not ok.any():
+            continue
+        labels, pr = predict_svm(est, X[:, ok].T, probability=p["probability"], chunk=p["chunk"])
+        cols = np.arange(s, e)[ok]
+        cls[0, cols] = labels
+        if proba is not None:
+            proba[:, cols] = pr.T
+    out = {"classes": cls.reshape(1, *shape)}
+    if proba is not None:
+        out["probability"] = proba.reshape(k, *shape)
     return out
 
 
@@ -788,6 +816,24 @@ def sff_step(name: str, input_ref: str, *, wl_range: tuple[float, float], librar
                 fit=fit, static=static)
 
 
+def cap_samples(table: SampleTable, max_per_class: int, seed: int = 0) -> SampleTable:
+    """At most ``max_per_class`` samples per class and split, drawn with a seeded generator.
+
+    Applied to the sample table before the fit, so the accumulator only gathers what is trained on
+    (memory stays small with large polygons). The draw depends only on the table and the seed.
+    """
+    if max_per_class < 1:
+        raise ClassifyError(f"max_per_class must be at least 1. Got {max_per_class}")
+    keep = np.zeros(len(table), dtype=bool)
+    rng = np.random.default_rng(seed)
+    for sp in np.unique(table.split):
+        for c in np.unique(table.label):
+            where = np.flatnonzero((table.label == c) & (table.split == sp))
+            pick = where if where.size <= max_per_class else rng.choice(where, max_per_class, replace=False)
+            keep[pick] = True
+    return table.subset(keep)
+
+
 def svm_step(name: str, input_ref: str, *, samples: SampleTable,
              C: Sequence[float] = (1.0, 10.0, 100.0, 1000.0), gamma: Sequence[float | str] = (1e-3, 1e-2, 1e-1, 1.0),
              folds: int = 5, scoring: str = "accuracy", probability: bool = False, seed: int = 0,
@@ -796,10 +842,13 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable,
     """SVM classification of ``input_ref`` trained on the samples' train (and unassigned) pixels.
 
     Validation pixels (split code 2) are left out of training; the model reports their overall
-    accuracy under ``validation``.
+    accuracy under ``validation``. ``max_per_class`` caps the samples per class and split before the
+    fit (:func:`cap_samples`).
     """
     if len(samples) == 0:
         raise ClassifyError(f"step {name!r}: the ground reference has no sample on the grid")
+    if max_per_class is not None:
+        samples = cap_samples(samples, max_per_class, seed)
     train = samples.split != 2
     check_training(samples.label[train], samples.group[train], samples.class_names, folds)
     if colors is not None and len(colors) != len(samples.class_names):
