@@ -359,6 +359,9 @@ def test_config_models_and_build_steps(tmp_path: Path) -> None:
     assert s.params["range"] == [2100.0, 2400.0] and s.params["max_rmse"] == 0.02
     with pytest.raises(ClassifyError, match=r"fewer samples than the 5 cross-validation folds"):
         build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633"}), ctx)
+    from workflows.reference import GroundReferenceError
+    with pytest.raises(GroundReferenceError, match=r"label\(s\) \['alpha'\] are not in the class list \['beta'\]"):
+        build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633", "classes": ["beta"]}), ctx)
     with pytest.raises(ValueError, match="exactly one of 'library' or 'samples'"):
         SamConfig(references={})
     with pytest.raises(ValueError, match="extra"):

@@ -49,6 +49,9 @@ Steps (outputs)
     ``sff_step``: ``classes``, ``scale``, ``rmse``, ``score`` (one band per reference each).
     ``svm_step``: ``classes``, and ``probability`` (one band per class) when asked.
 
+The modal (majority) filter of a class map is the engine's generic step
+(``tiles.ops.modal_filter_step(name, "<step>/classes", size, n_classes=len(class_names))``).
+
 Configuration (YAML sections, one pydantic model each; see :class:`SamConfig`, :class:`SffConfig`,
 :class:`SvmConfig`) and ``build_steps(section, ctx)``; ``ctx`` provides ``grid`` (the mosaic's
 :class:`tiles.grid.Grid`, needed for ground reference) and optionally ``base_dir`` (relative paths)
