@@ -90,7 +90,7 @@ class Grid:
 
     def window(self, win: Window) -> "Grid":
         """The sub-grid covering ``win`` (which may reach past the edges, for warping)."""
-        return Grid(win.rows, win.cols, self.transform * Affine.translation(win.col, win.row), self.crs)
+        return Grid(win.rows, win.cols, self.transform @ Affine.translation(win.col, win.row), self.crs)
 
     def x_coords(self) -> "list[float]":
         t = self.transform
