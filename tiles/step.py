@@ -149,7 +149,8 @@ class Step:
     halo: pixels of context the kernel needs around each tile.
     fit: optional fit phase run before any tile is written.
     static: small data the kernel and accumulator need (sample points, library spectra); hashed.
-    decode: decode inputs to float32 with NaN at nodata (True) or pass raw stored values (False).
+    decode: decode inputs to float32 with NaN at nodata (True) or pass raw stored values (False);
+            with False the kernel also returns stored values (no scale_factor/add_offset applied).
     reader: optional source of input data instead of stores: (grid of padded window, tile, params,
             static) -> (data dict, valid mask). Used by steps that read outside files (the mosaic).
     grid: for a step with a reader, the output grid (steps with inputs take their inputs' grid).

@@ -134,12 +134,16 @@ def decode(raw: np.ndarray, spec: OutputSpec) -> np.ndarray:
     return out
 
 
-def encode(values: np.ndarray, spec: OutputSpec, valid: np.ndarray) -> np.ndarray:
-    """Physical values to the stored dtype; nodata wherever ``valid`` is False or the value is not finite."""
+def encode(values: np.ndarray, spec: OutputSpec, valid: np.ndarray, physical: bool = True) -> np.ndarray:
+    """Physical values to the stored dtype; nodata wherever ``valid`` is False or the value is not finite.
+
+    ``physical=False``: the values are already stored values (a step with ``decode=False``), so the
+    CF scale_factor/add_offset are not applied again.
+    """
     dt = np.dtype(spec.dtype)
     v = np.asarray(values)
-    scale = spec.attrs.get("scale_factor")
-    offset = spec.attrs.get("add_offset")
+    scale = spec.attrs.get("scale_factor") if physical else None
+    offset = spec.attrs.get("add_offset") if physical else None
     if scale is not None or offset:
         v = v.astype(np.float64)
         if offset:

@@ -150,7 +150,7 @@ def run_tile(task: TileTask) -> dict:
             if arr.shape[0] != len(spec.bands):
                 raise TileError(f"output {name!r} has {arr.shape[0]} bands; its description names "
                                 f"{len(spec.bands)}")
-            arrays[name] = encode(arr, spec, valid)
+            arrays[name] = encode(arr, spec, valid, physical=step.decode)
         store.clear(tile.core)
         for name, arr in arrays.items():
             store.write(name, tile.core, arr)
