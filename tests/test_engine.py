@@ -215,3 +215,23 @@ def test_every_product_is_a_valid_cog_with_a_valid_stac_item_and_provenance(tmp_
         created = dt.datetime.fromisoformat(tags["created"].replace("Z", "+00:00"))
         assert abs((dt.datetime.now(dt.timezone.utc) - created).total_seconds()) < 600
         assert item.properties["swathmill:step_key"] == reports[name].key
+
+
+def _passthrough(block, model) -> dict:
+    return {"output": block.data["x"]}
+
+
+def _same_spec(meta, model, params) -> dict:
+    return {"output": meta["x"].spec}
+
+
+def test_raw_step_writes_its_stored_values_unchanged(tmp_path: Path) -> None:
+    """decode=False: the kernel sees stored int16 values and returns stored values; no re-scaling."""
+    from tiles.step import Step
+
+    cube, valid = es.make_cube(32, 48, 3, seed=5)
+    spec = OutputSpec(bands=("b001", "b002", "b003"), dtype="int16", nodata=-9999, attrs={"scale_factor": 1e-4})
+    step = Step(name="copy", kernel=_passthrough, outputs=_same_spec, inputs={"x": "src/refl"}, decode=False)
+    out, result = run_on_arrays([step], {"refl": (cube, spec)}, tmp_path, tile=16, valid=valid, raw=True)
+    assert result.ok
+    assert out["copy/output"].dtype == np.int16 and np.array_equal(out["copy/output"], cube)
