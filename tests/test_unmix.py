@@ -392,3 +392,42 @@ def test_jasper_ridge_extracted_endmembers(jasper, method):
     # data README: classical pipelines that also extract the endmembers report 0.1-0.3 (from memory)
     assert 0.085 < rmse < 0.3
     assert angles.max() < 0.35
+
+
+def test_ground_reference_endmembers_are_class_means(rng, tmp_path):
+    from workflows.reference import SampleTable
+    m, x = _scene(rng, rows=32, cols=32)
+    x[:, :4, :6] = m[:, [0]][:, :, None]  # pure patches: the class means are the endmember spectra
+    x[:, 20:24, 20:26] = m[:, [1]][:, :, None]
+    x[:, 28:, :3] = m[:, [2]][:, :, None]
+    rr, cc, lab, split = [], [], [], []
+    for k, (r0, r1, c0, c1) in enumerate([(0, 4, 0, 6), (20, 24, 20, 26), (28, 32, 0, 3)]):
+        for r in range(r0, r1):
+            for c in range(c0, c1):
+                rr.append(r), cc.append(c), lab.append(k + 1), split.append(1)
+    rr.append(10), cc.append(10), lab.append(1), split.append(2)  # a validation sample: never used
+    n = len(rr)
+    table = SampleTable(row=np.array(rr), col=np.array(cc), label=np.array(lab, np.int32),
+                        group=np.arange(n), feature=np.arange(n), split=np.array(split, np.uint8),
+                        class_names=("soil", "grass", "water"))
+    ref = unmix_cube(x, m.astype(np.float32).astype(np.float64), "fully_constrained")
+    outs = []
+    for tile in (8, 32):
+        step = unmix_step("u", "src/cube", samples=table)
+        out, result = run_on_arrays([step], {"cube": x}, tmp_path / f"t{tile}", tile=tile)
+        assert result.ok
+        outs.append(out["u/abundance"])
+    np.testing.assert_allclose(outs[0], outs[1], rtol=1e-6, atol=1e-7)
+    np.testing.assert_allclose(outs[0], ref["abundance"], atol=1e-5)
+
+
+def test_image_endmembers_step_tiled_equals_untiled(rng, tmp_path):
+    m, x = _scene(rng, rows=48, cols=40)
+    outs = []
+    for tile in (8, 16, 48):
+        step = unmix_step("u", "src/cube", image={"method": "nfindr", "n_endmembers": 3, "seed": 2})
+        out, result = run_on_arrays([step], {"cube": x}, tmp_path / f"t{tile}", tile=tile)
+        assert result.ok
+        outs.append(out["u/abundance"])
+    for o in outs[1:]:
+        np.testing.assert_allclose(o, outs[0], rtol=1e-6, atol=1e-7)
