@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from tiles.grid import Grid, Tiling
+from tiles.grid import Tiling
 from tiles.step import Block, InputMeta, OutputSpec
 from tiles.testing import default_grid, run_on_arrays
 from workflows.endmembers import (EndmemberError, EndmemberExtractionConfig, atgp, build_steps, candidate_accumulate,

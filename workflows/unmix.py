@@ -30,6 +30,10 @@ together, with the affine maps gathered by bitmask. It starts from the full-supp
 pixels where that is feasible are optimal at once (so all constraints are inactive), the others start
 from its positive entries. A handful of rounds settles nearly all pixels.
 
+The same rounds exist as a compiled per-pixel loop (``engine="compiled"``, numba, p <= 12), which
+is several times faster; the default ``engine="auto"`` uses it when numba is installed. Both give
+the same abundances (to round-off) and go through the same check.
+
 Optimality is then checked on every pixel with the Karush-Kuhn-Tucker conditions in relative form
 (:func:`kkt_violation`): ``a >= 0``; ``g = G a - b`` (plus the sum-to-one multiplier ``mu``) is zero on
 the support and non-negative off it. Pixels that fail (round-off on ill-conditioned sets, or cycling
@@ -55,6 +59,15 @@ A shade (zero) endmember can be added for the sum-to-one variants. Data in anoth
 components) are unmixed with endmembers moved into that space by the same transform
 (:class:`LinearTransform` or any callable); note that an affine transform (with an offset) keeps the
 linear mixing model only under the sum-to-one constraint.
+
+Step and configuration
+----------------------
+:func:`unmix_step` declares the engine step (outputs ``abundance``: one float32 band per endmember,
+named after it; ``rmse``; ``sum`` for the unconstrained variant). Its fit phase settles the endmember
+matrix in the input's space before any tile is unmixed: from a spectral library (resampled to the
+input's ``wavelength``/``fwhm`` coordinates; a library not covering them is refused), from
+ground-reference class means, extracted from the image (:mod:`workflows.endmembers`), or given.
+:class:`UnmixConfig` is the YAML section and :func:`build_steps` its factory.
 """
 from __future__ import annotations
 
