@@ -431,3 +431,32 @@ def test_image_endmembers_step_tiled_equals_untiled(rng, tmp_path):
         outs.append(out["u/abundance"])
     for o in outs[1:]:
         np.testing.assert_allclose(o, outs[0], rtol=1e-6, atol=1e-7)
+
+
+def test_library_endmembers_on_mnf_components(rng, tmp_path):
+    """Library endmembers moved into component space by the MNF forward transform (mean, eigenvectors
+    of scipy.linalg.eigh(S, N), Green et al. 1988) unmix components of noise-free mixtures exactly."""
+    import scipy.linalg
+    from tiles.step import OutputSpec
+    bands, k = 24, 6
+    wl_cube = np.linspace(450.0, 950.0, bands)
+    lib_wl = np.arange(400.0, 1001.0, 2.0)
+    spectra = np.stack([0.2 + 0.1 * np.sin(lib_wl / 60.0), 0.5 - 0.0003 * (lib_wl - 400),
+                        0.05 + 0.02 * np.cos(lib_wl / 90.0)])
+    lib = SpectralLibrary(("rock", "leaf", "water"), lib_wl, spectra, source="lib.csv")
+    m = np.stack([np.interp(wl_cube, lib_wl, s) for s in spectra], axis=1)  # numpy linear interpolation
+    a = rng.dirichlet(np.ones(3), 400).T
+    x = (m @ a + rng.normal(0, 0.01, (bands, 400))).T
+    used = np.arange(2, bands)  # the transform leaves two bands out
+    s_cov = np.cov(x[:, used].T)
+    w, v = scipy.linalg.eigh(s_cov, 1e-4 * np.eye(used.size))  # MNF with white noise of variance 1e-4
+    model = {"mean": x[:, used].mean(axis=0), "eigenvectors": v[:, ::-1], "band_index": used, "n_components": k}
+    tf = LinearTransform.from_mnf_model(model)
+    comp = tf((m @ a).T).T.reshape(k, 20, 20).astype(np.float32)  # noise-free mixtures, in components
+    step = unmix_step("u", "src/comp", method="fully_constrained", library=lib, transform=tf,
+                      cube_wavelengths=wl_cube)
+    out, result = run_on_arrays([step], {"comp": comp}, tmp_path, tile=10)
+    assert result.ok
+    np.testing.assert_allclose(out["u/abundance"].reshape(3, -1), a, atol=1e-4)  # float32 components
+    with pytest.raises(UnmixError, match="cube wavelengths for a transform that uses 24 bands"):
+        unmix_step("u", "src/comp", library=lib, transform=tf, cube_wavelengths=wl_cube[:10])

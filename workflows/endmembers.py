@@ -224,11 +224,12 @@ def vca(y: np.ndarray, p: int, *, seed: int = 0, snr: float | None = None,
         n, s, o = float(stats["n"]), np.asarray(stats["sum"], np.float64), np.asarray(stats["outer"], np.float64)
     mean = s / n
     corr = o / n
-    w, v = np.linalg.eigh(corr)
-    ud = v[:, ::-1][:, :p]
-    if snr is None:
+    cov = corr - np.outer(mean, mean)
+    if snr is None:  # eq. 13 as computed in the authors' reference code: p principal components
+        wc, vc = np.linalg.eigh(cov)
+        up = vc[:, ::-1][:, :p]
         p_y = float(np.trace(corr))
-        p_x = float(np.trace(ud.T @ corr @ ud))
+        p_x = float(np.trace(up.T @ cov @ up)) + float(mean @ mean)
         if p_y - p_x <= 1e-12 * p_y:
             snr_used = math.inf
         else:
@@ -238,6 +239,8 @@ def vca(y: np.ndarray, p: int, *, seed: int = 0, snr: float | None = None,
         snr_used = float(snr)
     threshold = 15.0 + 10.0 * math.log10(p)
     if snr_used > threshold:
+        w, v = np.linalg.eigh(corr)
+        ud = v[:, ::-1][:, :p]  # first p eigenvectors of the correlation matrix
         xp = y @ ud
         u = mean @ ud
         den = xp @ u
@@ -247,7 +250,6 @@ def vca(y: np.ndarray, p: int, *, seed: int = 0, snr: float | None = None,
         yp = xp / den[:, None]
         projection = "projective"
     else:
-        cov = corr - np.outer(mean, mean)
         wc, vc = np.linalg.eigh(cov)
         ud = vc[:, ::-1][:, : p - 1]
         xp = (y - mean) @ ud

@@ -73,6 +73,7 @@ from __future__ import annotations
 
 import functools
 import hashlib
+import importlib.util
 import math
 import warnings
 from collections import OrderedDict
@@ -130,16 +131,19 @@ class IllConditionedWarning(UserWarning):
 
 @dataclass(frozen=True)
 class LinearTransform:
-    """``y = (x - offset) @ matrix``: spectra (n, bands) to components (n, k), e.g. an MNF forward.
+    """``y = (x[band_index] - offset) @ matrix``: spectra (n, bands) to components (n, k).
 
     Parameters
     ----------
-    offset : (bands,) array subtracted first (e.g. the MNF mean).
-    matrix : (bands, k) array (e.g. the first k MNF eigenvectors as columns).
+    offset : (b,) array subtracted first (e.g. the MNF mean of the bands it uses).
+    matrix : (b, k) array (e.g. the first k MNF eigenvectors as columns).
+    band_index : optional (b,) indices of the bands of the full spectra the transform uses (MNF may
+        leave bands out); None uses all bands.
     """
 
     offset: np.ndarray
     matrix: np.ndarray
+    band_index: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         off = np.asarray(self.offset, dtype=np.float64).ravel()
@@ -149,9 +153,31 @@ class LinearTransform:
                              f"{off.shape} and matrix {mat.shape}")
         object.__setattr__(self, "offset", off)
         object.__setattr__(self, "matrix", mat)
+        if self.band_index is not None:
+            idx = np.asarray(self.band_index, dtype=np.int64).ravel()
+            if idx.size != off.size:
+                raise UnmixError(f"band_index has {idx.size} entries for a transform of {off.size} bands")
+            object.__setattr__(self, "band_index", idx)
+
+    @classmethod
+    def from_mnf_model(cls, model: Mapping[str, Any], k: int | None = None) -> "LinearTransform":
+        """The forward transform of a fitted MNF/PCA model (:mod:`workflows.mnf`): its ``mean``, the
+        first ``k`` columns of ``eigenvectors`` (default ``n_components``) and its ``band_index``."""
+        try:
+            k = int(model["n_components"]) if k is None else int(k)
+            vec = np.asarray(model["eigenvectors"], dtype=np.float64)[:, :k]
+            return cls(np.asarray(model["mean"]), vec, np.asarray(model["band_index"]))
+        except KeyError as exc:
+            raise UnmixError(f"an MNF/PCA model needs 'mean', 'eigenvectors', 'band_index' and "
+                             f"'n_components'; {exc} is missing") from None
 
     def __call__(self, spectra: np.ndarray) -> np.ndarray:
         s = np.asarray(spectra, dtype=np.float64)
+        if self.band_index is not None:
+            if s.shape[-1] <= int(self.band_index.max()):
+                raise UnmixError(f"the transform uses band {int(self.band_index.max()) + 1} but the spectra have "
+                                 f"{s.shape[-1]} bands")
+            s = s[..., self.band_index]
         if s.shape[-1] != self.offset.size:
             raise UnmixError(f"the transform expects spectra of {self.offset.size} bands. Got {s.shape[-1]}")
         return (s - self.offset) @ self.matrix
@@ -532,14 +558,17 @@ def _active_set_loop(b, k_tab, c_tab, gram, sum_to_one, tol_add, max_rounds, a_o
         flag[i] = not settled
 
 
-try:  # compiled when numba is installed; the numpy rounds are used otherwise
-    import numba as _numba
+HAVE_NUMBA = importlib.util.find_spec("numba") is not None
+_COMPILED: list = []
 
-    _active_set_compiled = _numba.njit(cache=True, nogil=True)(_active_set_loop)
-except ImportError:  # pragma: no cover - depends on the environment
-    _active_set_compiled = None
 
-HAVE_NUMBA = _active_set_compiled is not None
+def _active_set_compiled(*args) -> None:
+    """:func:`_active_set_loop` compiled by numba on first use (cached on disk), then called."""
+    if not _COMPILED:
+        import numba
+
+        _COMPILED.append(numba.njit(cache=True, nogil=True)(_active_set_loop))
+    _COMPILED[0](*args)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -909,7 +938,8 @@ def _finalize(acc: Any, params: Mapping[str, Any], meta: Mapping[str, InputMeta]
     transform = None
     if params.get("transform") is not None:
         tf = params["transform"]
-        transform = LinearTransform(np.asarray(tf["offset"]), np.asarray(tf["matrix"]))
+        transform = LinearTransform(np.asarray(tf["offset"]), np.asarray(tf["matrix"]),
+                                    None if tf.get("band_index") is None else np.asarray(tf["band_index"]))
     if params["source"] == "library":
         if transform is not None:
             wl, fwhm = np.asarray(params["cube_wavelengths"], dtype=np.float64), params.get("cube_fwhm")
@@ -1077,10 +1107,13 @@ def unmix_step(name: str, input_ref: str, *, method: str = "fully_constrained",
                              "endmembers are taken from the input itself)")
         if cube_wavelengths is None:
             raise UnmixError(f"step {name!r}: with a transform, give cube_wavelengths (the bands it takes)")
-        if len(cube_wavelengths) != transform.offset.size:
-            raise UnmixError(f"step {name!r}: {len(cube_wavelengths)} cube wavelengths for a transform of "
-                             f"{transform.offset.size} bands")
-        params["transform"] = {"offset": transform.offset.tolist(), "matrix": transform.matrix.tolist()}
+        need = transform.offset.size if transform.band_index is None else int(transform.band_index.max()) + 1
+        if len(cube_wavelengths) < need:
+            raise UnmixError(f"step {name!r}: {len(cube_wavelengths)} cube wavelengths for a transform that uses "
+                             f"{need} bands")
+        params["transform"] = {"offset": transform.offset.tolist(), "matrix": transform.matrix.tolist(),
+                               "band_index": None if transform.band_index is None
+                               else transform.band_index.tolist()}
         params["cube_wavelengths"] = [float(v) for v in cube_wavelengths]
         params["cube_fwhm"] = None if cube_fwhm is None else [float(v) for v in cube_fwhm]
     if source == "library":
