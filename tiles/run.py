@@ -128,6 +128,7 @@ class Run:
         self.lock = RunLock(self.dir / "run.lock")
         self.ledger: Ledger | None = None
         self.invocation = time.strftime("%Y%m%dT%H%M%S") + f"-{time.time_ns() % 10**6:06d}"
+        self.known: dict[str, tuple[Path, str, TileStore]] = {}  # finished steps: (store path, key, store)
 
     # paths -----------------------------------------------------------------------------------------
     def store_path(self, name: str) -> Path:
@@ -170,18 +171,21 @@ class Run:
     # the main loop ---------------------------------------------------------------------------------
     def execute(self, steps: Sequence[Step], executor: Executor | None = None,
                 sources: Mapping[str, Path] | None = None) -> RunResult:
-        """Run ``steps`` in order (each may read earlier steps' outputs and ``sources`` stores)."""
+        """Run ``steps`` in order (each may read earlier steps' outputs and ``sources`` stores).
+
+        Calls may follow each other on one Run: steps of an earlier call are inputs of later ones.
+        """
         if self.ledger is None:
             raise RuntimeError("use the Run as a context manager: `with Run(dir) as run: run.execute(...)`")
         executor = executor or LocalExecutor()
         layout = self.options.layout()
         result = RunResult()
-        known: dict[str, tuple[Path, str, TileStore]] = {}  # step name -> (store path, key, store)
+        known = self.known
         for name, path in (sources or {}).items():
             store = TileStore(Path(path))
             known[name] = (Path(path), _sha("source", (Path(path) / "zarr.json").read_text()), store)
         names = [s.name for s in steps]
-        dup = {n for n in names if names.count(n) > 1}
+        dup = {n for n in names if names.count(n) > 1} | (set(names) & set(known))
         if dup:
             raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
         for step in steps:
@@ -286,6 +290,7 @@ class Run:
                 log.info("removed stale partial write %s", p)
         self.ledger.set_step(step.name, key, len(tiling), {
             "params": dict(step.params), "inputs": dict(step.inputs), "in_keys": in_keys, "model": model_hash,
+            "model_path": model_path,
             "outputs": {k: v.to_dict() for k, v in outputs.items()}, "sources": dict(step.sources),
             "grid": grid.to_dict(), "tile": self.options.tile, "version": version})
 
@@ -321,7 +326,8 @@ class Run:
         executor.map(run_tile, tasks, on_done, on_error)
         self.progress.end(step.name)
         self.ledger.add_timing(step.name, "tiles", time.perf_counter() - t0)
-        known[step.name] = (spath, key, store)
+        if report.complete:
+            known[step.name] = (spath, key, store)
 
         # products --------------------------------------------------------------------------------
         if report.complete and self.options.export:

@@ -11,16 +11,36 @@ import time
 from pathlib import Path
 from typing import Any
 
-from pydantic import Field
+import warnings
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+from pydantic import Field, field_validator
 
 from tiles.executors import make_executor
+from tiles.ops import modal_filter_step
 from tiles.run import ENGINE_VERSION, PlanError, Run, RunOptions, RunResult
 from tiles.step import Step, StepError
+from tiles.store import TileStore
 
+from .calibration import CalibrationConfig, CalibrationSamples
+from .calibration import build_steps as calibration_steps
+from .classify import SamConfig, SffConfig, SvmConfig
+from .classify import build_steps as classify_steps
 from .config import EngineConfig, ExecutionConfig, Strict, config_hash, load_yaml, resolve, validate
+from .endmembers import EndmemberExtractionConfig
+from .endmembers import build_steps as endmember_steps
+from .features import FeaturesConfig
+from .features import build_steps as feature_steps
 from .mnf import MnfConfig, mnf_steps
-from .mosaic import MosaicConfig, build_mosaic_step
+from .mosaic import MosaicConfig, build_mosaic_step, write_footprints
 from .progress import make_progress
+from .reference import GroundReferenceConfig, load_samples
+from .unmix import UnmixConfig
+from .unmix import build_steps as unmix_steps
+
+SPLIT_VALIDATION = 2  # split code of validation samples in workflows.reference
 
 __all__ = ["RunConfig", "InputError", "load_run_config", "build_steps", "run_config", "rebuild_report"]
 
@@ -33,6 +53,50 @@ class InputError(ValueError):
     """Input data is missing or unusable; the message names the file, band, tile or key."""
 
 
+class ModalFilterConfig(Strict):
+    """Majority filter of class maps (its own step per map, with a halo so tiles leave no seam)."""
+
+    size: int = Field(3, ge=1, description="odd window side in pixels")
+    steps: list[str] | None = Field(None, description="class-map steps to filter (default: all)")
+
+    @field_validator("size")
+    @classmethod
+    def _odd(cls, v: int) -> int:
+        if v % 2 == 0:
+            raise ValueError(f"size must be odd. Got {v}")
+        return v
+
+
+class ClassifyConfig(Strict):
+    """Classification steps; each key takes one section or a list of them (distinct ``name`` s)."""
+
+    sam: list[SamConfig] = Field(default_factory=list)
+    sff: list[SffConfig] = Field(default_factory=list)
+    svm: list[SvmConfig] = Field(default_factory=list)
+    modal_filter: ModalFilterConfig | None = None
+
+    @field_validator("sam", "sff", "svm", mode="before")
+    @classmethod
+    def _listify(cls, v: Any) -> Any:
+        return [v] if isinstance(v, dict) else v
+
+
+class CalibrationEntry(CalibrationConfig):
+    """A calibration plus the ground-reference column holding the measured quantity."""
+
+    property: str = Field(..., description="numeric column of the ground reference with the measurements")
+
+
+class AccuracyConfig(Strict):
+    area_unit: Literal["ha", "km2", "m2"] = Field("ha", description="unit of the area estimates")
+    use_unassigned: bool = Field(False, description="also assess on samples with no train/validation split")
+
+
+class ReportConfig(Strict):
+    enabled: bool = True
+    title: str | None = None
+
+
 class RunConfig(Strict):
     """The whole run. Relative paths are relative to the YAML file's folder."""
 
@@ -41,7 +105,16 @@ class RunConfig(Strict):
     execution: ExecutionConfig = ExecutionConfig()
     engine: EngineConfig = EngineConfig()
     mosaic: MosaicConfig
+    reference: GroundReferenceConfig | None = Field(
+        None, description="ground reference: validation samples for accuracy, measurements for calibration")
     mnf: MnfConfig | None = None
+    endmembers: EndmemberExtractionConfig | None = None
+    classify: ClassifyConfig | None = None
+    unmix: UnmixConfig | None = None
+    features: FeaturesConfig | None = None
+    calibrations: list[CalibrationEntry] = Field(default_factory=list)
+    accuracy: AccuracyConfig = AccuracyConfig()
+    report: ReportConfig = ReportConfig()
 
 
 def load_run_config(path: Path) -> tuple[RunConfig, dict]:
@@ -61,12 +134,110 @@ def run_dir_of(cfg: RunConfig, config_path: Path) -> Path:
     return resolve(base, cfg.run_dir) if cfg.run_dir else base / "runs" / cfg.name
 
 
-def build_steps(cfg: RunConfig, base: Path) -> list[Step]:
-    """The steps of a run, in order."""
-    steps: list[Step] = [build_mosaic_step(cfg.mosaic, base)]
+@dataclass
+class Plan:
+    """The steps of a run after the mosaic, and what the accuracy assessment needs to know of them."""
+
+    steps: list[Step]
+    class_maps: list[str]  # "step/output" of every class map
+    abundance_maps: list[str]
+    quantity_maps: dict[str, str]  # "step/output" -> ground-reference property
+    calibrations: list[str]
+
+
+class StoreValid:
+    """valid(rows, cols) -> bool per sample, read from the mosaic store (for ground-reference checks)."""
+
+    def __init__(self, store: TileStore):
+        self.store = store
+
+    def __call__(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        rows, cols = np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64)
+        if rows.size == 0:
+            return np.zeros(0, dtype=bool)
+        inside = (rows >= 0) & (cols >= 0) & (rows < self.store.grid.rows) & (cols < self.store.grid.cols)
+        out = np.zeros(rows.shape, dtype=bool)
+        if inside.any():
+            vals = self.store.array("valid").get_coordinate_selection((rows[inside], cols[inside]))
+            out[inside] = np.asarray(vals).astype(bool)
+        return out
+
+
+def build_mosaic(cfg: RunConfig, base: Path) -> Step:
+    return build_mosaic_step(cfg.mosaic, base)
+
+
+def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Plan:
+    """The steps after the mosaic, in order. Needs the finished mosaic (its grid and valid mask)."""
+    ctx = {"grid": mosaic_store.grid, "base_dir": base, "valid": StoreValid(mosaic_store)}
+    steps: list[Step] = []
+    class_maps: list[str] = []
     if cfg.mnf is not None:
         steps += mnf_steps(cfg.mnf, "mosaic/reflectance")
-    return steps
+    if cfg.endmembers is not None:
+        steps += endmember_steps(cfg.endmembers, ctx)
+    if cfg.classify is not None:
+        cl = cfg.classify
+        made = []
+        for section in [*cl.sam, *cl.sff, *cl.svm]:
+            made += classify_steps(section, ctx)
+        steps += made
+        class_maps += [f"{s.name}/classes" for s in made]
+        if cl.modal_filter is not None:
+            wanted = cl.modal_filter.steps
+            names = [s.name for s in made]
+            unknown = [n for n in (wanted or []) if n not in names]
+            if unknown:
+                raise InputError(f"classify.modal_filter.steps names {unknown}, which are not class-map steps "
+                                 f"of this run ({names})")
+            for s in made:
+                if wanted is None or s.name in wanted:
+                    n_classes = len(s.params["class_names"])
+                    steps.append(modal_filter_step(f"{s.name}_modal", f"{s.name}/classes", cl.modal_filter.size,
+                                                   n_classes=n_classes))
+                    class_maps.append(f"{s.name}_modal/output")
+    abundance_maps: list[str] = []
+    if cfg.unmix is not None:
+        made = unmix_steps(cfg.unmix, ctx)
+        steps += made
+        abundance_maps += [f"{s.name}/abundance" for s in made]
+    if cfg.features is not None:
+        steps += feature_steps(cfg.features, ctx)
+    quantity_maps: dict[str, str] = {}
+    calibrations: list[str] = []
+    for entry in cfg.calibrations:
+        if cfg.reference is None:
+            raise InputError(f"calibrations[{entry.name}] needs the top-level 'reference' section (the "
+                             "ground reference holding the measured values)")
+        samples = calibration_samples(cfg.reference, entry.property, mosaic_store, base)
+        section = CalibrationConfig.model_validate(entry.model_dump(exclude={"property"}))
+        steps += calibration_steps(section, samples)
+        quantity_maps[f"{entry.name}/quantity"] = entry.property
+        calibrations.append(entry.name)
+    return Plan(steps, class_maps, abundance_maps, quantity_maps, calibrations)
+
+
+def calibration_samples(ref: GroundReferenceConfig, prop: str, mosaic_store: TileStore, base: Path) -> CalibrationSamples:
+    """Training samples (split train or unassigned) with a finite value of ``prop``."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table, _issues = load_samples(ref.model_copy(update={"properties": None}), mosaic_store.grid,
+                                      base_dir=base, valid=StoreValid(mosaic_store))
+    if prop not in table.extras:
+        raise InputError(f"ground reference {ref.path}: no numeric column {prop!r} (numeric columns: "
+                         f"{sorted(table.extras)})")
+    values = table.extras[prop]
+    keep = (table.split != SPLIT_VALIDATION) & np.isfinite(values)
+    if not keep.any():
+        raise InputError(f"ground reference {ref.path}: no training sample has a value of {prop!r}")
+    t = table.subset(keep)
+    return CalibrationSamples(rows=t.row, cols=t.col, values=t.extras[prop], groups=t.group,
+                              ids=[f"feature {f}" for f in t.feature])
+
+
+def build_steps(cfg: RunConfig, base: Path) -> list[Step]:
+    """The first phase of a run: the mosaic. Later steps are built once it is finished."""
+    return [build_mosaic(cfg, base)]
 
 
 def _executor(ex: ExecutionConfig):
@@ -98,8 +269,8 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     base = config_path.parent
     run_dir = run_dir_of(cfg, config_path)
     try:
-        steps = build_steps(cfg, base)
-    except (StepError, FileNotFoundError, OSError) as exc:
+        first = build_steps(cfg, base)
+    except (StepError, FileNotFoundError, OSError, ValueError) as exc:
         raise InputError(str(exc)) from None
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
     opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
@@ -115,10 +286,21 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
                 if getattr(ex, "dashboard", None):
                     progress.message(f"dashboard: {ex.dashboard}")
                 try:
-                    result = run.execute(steps, ex)
+                    result = run.execute(first, ex)
+                    plan = None
+                    if result.ok:
+                        write_footprints(first[0], run.dir / "footprints.geojson")
+                        try:
+                            plan = build_later_steps(cfg, base, run.known["mosaic"][2])
+                        except (StepError, FileNotFoundError, OSError, ValueError) as exc:
+                            raise InputError(str(exc)) from None
+                        more = run.execute(plan.steps, ex)
+                        result.steps += more.steps
+                        result.messages += more.messages
+                        result.stopped_at = more.stopped_at
                 except (PlanError, StepError) as exc:
                     raise InputError(str(exc)) from None
-                _after_run(run, cfg, result, base, progress)
+                _after_run(run, cfg, result, plan, base, progress)
             finally:
                 ex.close()
     finally:
@@ -135,13 +317,11 @@ def _freeze_config(run: Run, config_path: Path, cfg: RunConfig) -> None:
         {"config_file": str(config_path), **cfg.model_dump(mode="json")}, indent=2))
 
 
-def _after_run(run: Run, cfg: RunConfig, result: RunResult, base: Path, progress) -> None:
-    """Products gathered into a STAC collection and the report, when the report module exists."""
-    try:
-        from .finish import finish_run
-    except ImportError:
-        return
-    finish_run(run, cfg, result, base, progress)
+def _after_run(run: Run, cfg: RunConfig, result: RunResult, plan: Plan | None, base: Path, progress) -> None:
+    """Accuracy assessment, the STAC collection of the products, and the report."""
+    from .finish import finish_run
+
+    finish_run(run, cfg, result, plan, base, progress)
 
 
 def _summarize(result: RunResult | None, seconds: float, run_dir: Path, out) -> int:

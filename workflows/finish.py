@@ -1,0 +1,303 @@
+"""After the steps of a run: accuracy assessment, the STAC collection, and the report.
+
+Everything here reads the run directory (its resolved configuration, ledger, stores, models and
+products), so ``swathmill report RUN_DIR`` rebuilds the report of a finished or partial run without
+running anything.
+"""
+from __future__ import annotations
+
+import json
+import time
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from tiles.grid import Tiling
+from tiles.ledger import Ledger
+from tiles.step import OutputSpec
+from tiles.store import TileStore, decode
+from tiles.tasks import load_model
+
+from .accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy, confusion_matrix,
+                       regression_metrics)
+from .reference import GroundReferenceConfig, load_samples
+
+__all__ = ["finish_run", "assess_accuracy", "rebuild_report", "gather_collection", "ACCURACY_FILE"]
+
+ACCURACY_FILE = "accuracy.json"
+SPLIT_TRAIN, SPLIT_VALIDATION = 1, 2  # workflows.reference.SPLIT_CODES
+AREA_FACTORS = {"m2": 1.0, "ha": 1e-4, "km2": 1e-6}
+
+
+@dataclass
+class RunView:
+    """What a finished or partial run directory holds, read back from disk."""
+
+    dir: Path
+    config: dict
+    base: Path
+    steps: dict[str, dict]  # name -> ledger row (key, total, info)
+    done: dict[str, int]
+
+    def store(self, name: str) -> TileStore | None:
+        p = self.dir / "stores" / f"{name}.zarr"
+        if not (p / "zarr.json").is_file() or name not in self.steps:
+            return None
+        return TileStore(p)
+
+    def complete(self, name: str) -> bool:
+        s = self.steps.get(name)
+        return bool(s) and self.done.get(name, 0) == (s["total"] or -1)
+
+    def product(self, name: str, output: str) -> Path | None:
+        p = self.dir / "products" / f"{name}__{output}.tif"
+        return p if p.is_file() else None
+
+    def model(self, name: str) -> dict | None:
+        info = self.steps.get(name, {}).get("info", {})
+        mp = info.get("model_path")
+        if not mp or not Path(mp + ".json").is_file():
+            return None
+        return load_model(mp)
+
+    def outputs(self, name: str) -> dict[str, OutputSpec]:
+        info = self.steps.get(name, {}).get("info", {})
+        return {k: OutputSpec.from_dict(v) for k, v in (info.get("outputs") or {}).items()}
+
+
+def open_run(run_dir: Path) -> RunView:
+    run_dir = Path(run_dir).resolve()
+    resolved = run_dir / "config.resolved.json"
+    if not (run_dir / "ledger.sqlite").is_file() or not resolved.is_file():
+        raise FileNotFoundError(f"{run_dir} is not a swathmill run directory (ledger.sqlite or "
+                                "config.resolved.json missing)")
+    config = json.loads(resolved.read_text())
+    ledger = Ledger(run_dir / "ledger.sqlite")
+    try:
+        steps = {s["name"]: s for s in ledger.steps()}
+        done = {n: len(ledger.done(n, s["key"])) for n, s in steps.items()}
+    finally:
+        ledger.close()
+    return RunView(run_dir, config, Path(config["config_file"]).parent, steps, done)
+
+
+# accuracy --------------------------------------------------------------------------------------------
+def _count_classes(store: TileStore, output: str, n_classes: int) -> np.ndarray:
+    """Mapped pixels per class value 0..n (0 = unclassified), valid pixels only, read tile by tile."""
+    counts = np.zeros(n_classes + 1, dtype=np.int64)
+    for t in Tiling(store.grid, store.layout.shard):
+        cls = store.read(output, t.core)[0]
+        valid = store.read_valid(t.core)
+        v = cls[valid].astype(np.int64)
+        counts += np.bincount(np.clip(v, 0, n_classes), minlength=n_classes + 1)[: n_classes + 1]
+    return counts
+
+
+def _values_at(store: TileStore, output: str, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(bands, n) decoded values and (n,) validity at sample pixels."""
+    if rows.size == 0:
+        return np.zeros((len(store.specs[output].bands), 0), np.float32), np.zeros(0, bool)
+    arr = store.array(output)
+    raw = np.stack([np.asarray(arr.get_coordinate_selection((np.full(rows.shape, b), rows, cols)))
+                    for b in range(arr.shape[0])])
+    valid = np.asarray(store.array("valid").get_coordinate_selection((rows, cols))).astype(bool)
+    return decode(raw, store.specs[output]), valid
+
+
+def _samples(view: RunView, ref_cfg: dict, grid, mosaic: TileStore):
+    from .pipeline import StoreValid
+
+    cfg = GroundReferenceConfig.model_validate(ref_cfg)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table, issues = load_samples(cfg, grid, base_dir=view.base, valid=StoreValid(mosaic))
+    del caught
+    return table, issues
+
+
+def assess_accuracy(run_dir: Path) -> dict:
+    """Assess every class, abundance and quantity map of a run against its validation samples.
+
+    Writes and returns ``accuracy.json``. Class maps: confusion matrix (map rows x reference
+    columns), overall, user's, producer's accuracy, F1, kappa, and stratified area estimates with
+    95% confidence intervals (Olofsson et al., 2014) from the mapped pixel counts. Abundance and
+    quantity maps: RMSE, bias and R2 against the reference fractions and measurements.
+    """
+    view = open_run(run_dir)
+    cfg = view.config
+    out: dict[str, Any] = {"created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), "class_maps": {},
+                           "abundance_maps": {}, "quantity_maps": {}, "notes": []}
+    mosaic = view.store("mosaic")
+    if cfg.get("reference") is None or mosaic is None:
+        out["notes"].append("no ground reference in the configuration: no accuracy assessment")
+        return _write(view, out)
+    table, issues = _samples(view, cfg["reference"], mosaic.grid, mosaic)
+    out["reference"] = {"file": cfg["reference"]["path"], "samples": len(table),
+                        "validation": int((table.split == SPLIT_VALIDATION).sum()),
+                        "issues": [str(i) for i in issues]}
+    if issues:
+        out["notes"].append(f"{len(issues)} ground-reference feature(s) could not be used in full "
+                            f"(outside the mosaic or on nodata): see accuracy.json")
+    use = table.split == SPLIT_VALIDATION
+    if cfg.get("accuracy", {}).get("use_unassigned"):
+        use |= table.split == 0
+    val = table.subset(use)
+    if len(val) == 0:
+        out["notes"].append("the ground reference has no validation sample: no accuracy assessment")
+        return _write(view, out)
+    unit = cfg.get("accuracy", {}).get("area_unit", "ha")
+    res = mosaic.grid.res
+    pixel_area = res[0] * res[1] * AREA_FACTORS[unit]
+
+    for name, step in view.steps.items():
+        if not view.complete(name):
+            continue
+        for output, spec in view.outputs(name).items():
+            if not is_class_map(output, spec):
+                continue
+            store = view.store(name)
+            if store is None:
+                continue
+            out["class_maps"][f"{name}/{output}"] = _assess_classes(store, output, spec, val, pixel_area, unit)
+
+    for name in view.steps:
+        if not view.complete(name):
+            continue
+        outs = view.outputs(name)
+        if "abundance" in outs:
+            store = view.store(name)
+            spec = outs["abundance"]
+            wanted = [b for b in spec.bands if f"frac_{b}" in val.extras]
+            if not wanted:
+                out["notes"].append(f"{name}: the ground reference has no frac_<endmember> column for "
+                                    f"{list(spec.bands)}; abundances not assessed")
+                continue
+            est, ok = _values_at(store, "abundance", val.row, val.col)
+            ref = np.stack([val.extras[f"frac_{b}"] for b in wanted], 1)
+            idx = [spec.bands.index(b) for b in wanted]
+            keep = ok & np.all(np.isfinite(ref), 1) & np.all(np.isfinite(est[idx].T), 1)
+            if keep.sum() < 2:
+                continue
+            metrics = abundance_metrics(ref[keep].T, est[idx][:, keep], wanted)
+            out["abundance_maps"][f"{name}/abundance"] = {
+                "names": wanted, "metrics": [_metrics(m) for m in metrics],
+                "observed": ref[keep].tolist(), "predicted": est[idx].T[keep].tolist()}
+    for entry in cfg.get("calibrations", []):
+        name, prop = entry["name"], entry["property"]
+        store = view.store(name)
+        if store is None or not view.complete(name) or prop not in val.extras:
+            continue
+        est, ok = _values_at(store, "quantity", val.row, val.col)
+        obs = val.extras[prop]
+        keep = ok & np.isfinite(obs) & np.isfinite(est[0])
+        if keep.sum() < 2:
+            out["notes"].append(f"{name}: fewer than 2 validation samples with {prop!r}; not assessed")
+            continue
+        m = regression_metrics(obs[keep], est[0][keep])
+        out["quantity_maps"][f"{name}/quantity"] = {"property": prop, "units": entry.get("units", ""),
+                                                    "metrics": _metrics(m), "observed": obs[keep].tolist(),
+                                                    "predicted": est[0][keep].tolist()}
+    return _write(view, out)
+
+
+def is_class_map(output: str, spec: OutputSpec) -> bool:
+    """Class maps: the ``classes`` output of a classifier, or the ``output`` of its modal filter."""
+    return spec.kind == "categorical" and bool(spec.class_names) and output in ("classes", "output")
+
+
+def _metrics(m) -> dict:
+    d = m.to_dict() if hasattr(m, "to_dict") else dict(m.__dict__)
+    return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in d.items()}
+
+
+def _assess_classes(store: TileStore, output: str, spec: OutputSpec, val, pixel_area: float, unit: str) -> dict:
+    map_names = list(spec.class_names)
+    ref_names = list(val.class_names)
+    names = ["unclassified", *map_names] + [n for n in ref_names if n not in map_names]
+    mapped, ok = _values_at(store, output, val.row, val.col)
+    mapped = np.nan_to_num(mapped[0], nan=0).astype(np.int64)
+    ref_codes = np.array([names.index(ref_names[c - 1]) for c in val.label], dtype=np.int64)
+    keep = ok
+    counts_map = _count_classes(store, output, len(map_names))
+    counts = np.zeros(len(names), dtype=np.float64)
+    counts[: len(map_names) + 1] = counts_map
+    present = [i for i in range(len(names)) if counts[i] > 0 or (ref_codes[keep] == i).any()
+               or (mapped[keep] == i).any()]
+    labels = present
+    m = confusion_matrix(mapped[keep], ref_codes[keep], labels=labels)
+    used_names = [names[i] for i in labels]
+    acc = class_accuracy(m, labels=labels, names=used_names)
+    entry: dict[str, Any] = {"labels": labels, "names": used_names, "matrix": m.tolist(),
+                             "mapped_pixels": counts[labels].tolist(), "pixel_area": pixel_area,
+                             "area_unit": unit, "accuracy": acc.to_dict(), "samples": int(keep.sum())}
+    try:
+        areas = area_estimate(m, counts[labels], pixel_area=pixel_area, area_unit=unit, labels=labels,
+                              names=used_names)
+        entry["areas"] = areas.to_dict()
+    except AccuracyError as exc:
+        entry["areas_error"] = str(exc)
+    return entry
+
+
+def _write(view: RunView, out: dict) -> dict:
+    p = view.dir / ACCURACY_FILE
+    tmp = p.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps(out, indent=1, default=_json_default))
+    tmp.replace(p)
+    return out
+
+
+def _json_default(v: Any) -> Any:
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, np.ndarray):
+        return v.tolist()
+    return str(v)
+
+
+# STAC collection ---------------------------------------------------------------------------------------
+def gather_collection(run_dir: Path, name: str) -> Path | None:
+    """Gather the STAC items of the run's products into ``products/collection.json`` (validated)."""
+    import pystac
+
+    from tiles.export import stac_collection, validate_collection_offline
+
+    products = Path(run_dir) / "products"
+    items = [pystac.Item.from_file(str(p)) for p in sorted(products.glob("*.tif.json"))]
+    if not items:
+        return None
+    col = stac_collection(items, products, collection_id=f"{name}-products",
+                          description=f"Map products of the swathmill run {name!r}. {CAUTION_SHORT}")
+    validate_collection_offline(col)
+    return products / "collection.json"
+
+
+CAUTION_SHORT = ("Products are estimates with the accuracy measured in the run's report; confirm them in the "
+                 "field and use them under local rules and licensed practice.")
+
+
+# finishing a run ---------------------------------------------------------------------------------------
+def finish_run(run, cfg, result, plan, base: Path, progress) -> None:
+    """Called by the pipeline after its steps (finished or not)."""
+    t0 = time.perf_counter()
+    try:
+        if result is not None and result.ok and cfg.reference is not None:
+            assess_accuracy(run.dir)
+        if cfg.engine.export:
+            gather_collection(run.dir, cfg.name)
+    finally:
+        run.ledger.add_timing("finish", "accuracy+stac", time.perf_counter() - t0)
+    if cfg.report.enabled:
+        t1 = time.perf_counter()
+        path = rebuild_report(run.dir)
+        run.ledger.add_timing("finish", "report", time.perf_counter() - t1)
+        progress.message(f"report written: {path}")
+
+
+def rebuild_report(run_dir: Path) -> Path:
+    from .report_builder import report_from_run
+
+    return report_from_run(open_run(run_dir))
