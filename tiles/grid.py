@@ -80,8 +80,8 @@ class Grid:
     @property
     def bounds(self) -> tuple[float, float, float, float]:
         """(left, bottom, right, top) in the grid's CRS."""
-        x0, y0 = self.transform * (0, 0)
-        x1, y1 = self.transform * (self.cols, self.rows)
+        x0, y0 = self.transform @ (0, 0)
+        x1, y1 = self.transform @ (self.cols, self.rows)
         return min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1)
 
     @property

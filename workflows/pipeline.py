@@ -275,6 +275,10 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
     opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
                       export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash)
+    try:
+        opts.layout()
+    except ValueError as exc:
+        raise InputError(f"{config_path}: engine: {exc}") from None
     progress = make_progress(force_plain=plain)
     t0 = time.perf_counter()
     result: RunResult | None = None

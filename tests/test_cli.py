@@ -1,0 +1,197 @@
+"""The command line and the configuration: runs, resume, status, bad input, the run lock."""
+from __future__ import annotations
+
+import json
+import os
+import socket
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+import yaml
+from affine import Affine
+
+from tiles.ledger import Ledger
+from workflows.cli import main
+
+CRS = "EPSG:32633"
+BANDS = 24
+WL = np.linspace(420.0, 2450.0, BANDS)
+
+
+def _write_line(path: Path, col0: int, cols: int, rows: int = 40, seed: int = 0, gain: float = 1.0) -> Path:
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:rows, col0:col0 + cols]
+    base = 0.2 + 0.1 * np.sin(xx / 7.0)[None] + 0.05 * np.cos(yy / 5.0)[None]
+    spectra = base * (1.0 + 0.3 * np.sin(WL / 300.0))[:, None, None]
+    data = np.round(gain * spectra * 10000 + rng.normal(0, 20, spectra.shape)).astype("int16")
+    prof = {"driver": "GTiff", "width": cols, "height": rows, "count": BANDS, "dtype": "int16", "crs": CRS,
+            "transform": Affine(10, 0, 400000 + 10 * col0, 0, -10, 5000000), "nodata": -9999}
+    with rasterio.open(path, "w", **prof) as dst:
+        dst.write(data)
+        for b in range(BANDS):
+            dst.update_tags(b + 1, wavelength=f"{WL[b]:.3f}", fwhm="85.0", wavelength_units="nm")
+    return path
+
+
+def _config(tmp: Path, **over) -> Path:
+    lines = tmp / "lines"
+    lines.mkdir(exist_ok=True)
+    _write_line(lines / "a.tif", 0, 40, seed=1)
+    _write_line(lines / "b.tif", 24, 40, seed=2, gain=1.05)
+    cfg = {"name": "clitest", "run_dir": "run",
+           "execution": {"executor": "local"},
+           "engine": {"tile": 16, "chunk": 16},
+           "mosaic": {"lines": ["lines/a.tif", "lines/b.tif"], "brightness_matching": True, "seed": 0},
+           "mnf": {"method": "pca", "components": 4},
+           "report": {"enabled": False}}
+    for k, v in over.items():
+        cfg[k] = v
+    path = tmp / "run.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    return path
+
+
+def _done_tiles(run_dir: Path) -> int:
+    db = run_dir / "ledger.sqlite"
+    if not db.is_file():
+        return 0
+    led = Ledger(db)
+    try:
+        return sum(len(led.done(s["name"], s["key"])) for s in led.steps())
+    finally:
+        led.close()
+
+
+def test_run_resume_and_status(tmp_path, capsys):
+    cfg = _config(tmp_path)
+    assert main(["run", str(cfg), "--plain"]) == 0
+    out = capsys.readouterr().out
+    assert "run directory:" in out
+    run_dir = tmp_path / "run"
+    products = sorted(p.name for p in (run_dir / "products").glob("*.tif"))
+    assert "mosaic__reflectance.tif" in products and "pca__components.tif" in products
+    assert (run_dir / "products" / "collection.json").is_file()
+    # a second run resumes: nothing is recomputed
+    assert main(["run", str(cfg), "--plain"]) == 0
+    out = capsys.readouterr().out
+    assert "resuming" in out and "(12 resumed)" in out
+    assert main(["status", str(run_dir), "--json"]) == 0
+    status = json.loads(capsys.readouterr().out)
+    steps = {s["step"]: s for s in status["steps"]}
+    assert steps["mosaic"]["done"] == steps["mosaic"]["total"] == 12
+    assert steps["pca"]["pending"] == 0 and steps["pca"]["failed"] == 0
+
+
+def test_changed_parameter_says_what_is_recomputed(tmp_path, capsys):
+    cfg = _config(tmp_path)
+    assert main(["run", str(cfg), "--plain"]) == 0
+    capsys.readouterr()
+    cfg = _config(tmp_path, mnf={"method": "pca", "components": 3})
+    assert main(["run", str(cfg), "--plain"]) == 0
+    out = capsys.readouterr().out
+    assert "step 'pca': parameters, inputs or code changed" in out
+    assert "step 'mosaic': resuming, 12 of 12" in out
+
+
+@pytest.mark.parametrize("section, value, expected", [
+    ("mnf", {"method": "pca", "componnts": 4}, "mnf.componnts: unknown key; did you mean 'components'?"),
+    ("engine", {"tile": "big"}, "engine.tile: Input should be a valid integer"),
+    ("execution", {"executor": "cloud"}, "execution.executor: Input should be 'local', 'dask' or 'jobqueue'"),
+])
+def test_config_errors_name_the_key(tmp_path, capsys, section, value, expected):
+    cfg = _config(tmp_path, **{section: value})
+    assert main(["run", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    assert expected in err and str(cfg) in err
+    assert not (tmp_path / "run").exists()
+
+
+def test_unknown_top_level_key(tmp_path, capsys):
+    cfg = _config(tmp_path, mosiac={})
+    assert main(["run", str(cfg)]) == 2
+    assert "mosiac: unknown key; did you mean 'mosaic'?" in capsys.readouterr().err
+
+
+def test_missing_config_and_missing_line(tmp_path, capsys):
+    assert main(["run", str(tmp_path / "nope.yaml")]) == 2
+    assert "nope.yaml does not exist" in capsys.readouterr().err
+    cfg = _config(tmp_path, mosaic={"lines": ["lines/a.tif", "lines/missing.tif"]})
+    assert main(["run", str(cfg)]) == 2
+    assert "missing.tif" in capsys.readouterr().err
+    assert _done_tiles(tmp_path / "run") == 0
+
+
+def test_unreadable_raster(tmp_path, capsys):
+    cfg = _config(tmp_path)
+    (tmp_path / "lines" / "b.tif").write_bytes(b"this is not a raster")
+    assert main(["run", str(cfg)]) == 2
+    assert "b.tif" in capsys.readouterr().err
+    assert _done_tiles(tmp_path / "run") == 0
+
+
+def test_tile_not_aligned_with_chunk(tmp_path, capsys):
+    cfg = _config(tmp_path, engine={"tile": 24, "chunk": 16})
+    assert main(["run", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    assert "tile size 24 px is not a multiple of the chunk size 16 px" in err
+    assert _done_tiles(tmp_path / "run") == 0
+
+
+def test_halo_larger_than_tile(tmp_path, capsys):
+    lib = tmp_path / "lib.csv"
+    lib.write_text("wavelength_nm,dark,bright\n" + "\n".join(f"{w},{0.1},{0.4}" for w in np.linspace(400, 2500, 30)))
+    cfg = _config(tmp_path, engine={"tile": 16, "chunk": 16},
+                  classify={"sam": {"references": {"library": "lib.csv"}, "threshold": None},
+                            "modal_filter": {"size": 35}})
+    assert main(["run", str(cfg)]) == 2
+    err = capsys.readouterr().err
+    assert "halo of 17 px is larger than the tile size of 16 px" in err
+    # the mosaic finished before the bad step was planned; no tile of the bad step is recorded
+    led = Ledger(tmp_path / "run" / "ledger.sqlite")
+    try:
+        assert "sam_modal" not in {s["name"] for s in led.steps()}
+    finally:
+        led.close()
+
+
+def test_second_process_is_refused(tmp_path, capsys):
+    cfg = _config(tmp_path)
+    run_dir = tmp_path / "run"
+    run_dir.mkdir()
+    # a live holder: this very process, on this host
+    (run_dir / "run.lock").write_text(json.dumps({"host": socket.gethostname(), "pid": os.getpid(),
+                                                  "token": "x", "started": "now"}))
+    assert main(["run", str(cfg)]) == 3
+    err = capsys.readouterr().err
+    assert f"in use by process {os.getpid()} on host {socket.gethostname()}" in err
+
+
+def test_failed_tiles_give_nonzero_exit_and_are_listed(tmp_path):
+    import io
+
+    from tiles.run import RunResult, StepReport
+    from workflows.pipeline import _summarize
+
+    rep = StepReport("sam", "k", total=4, done_before=1, computed=2, failed={(1, 0): "step 'sam', tile(1, 0): boom"})
+    out = io.StringIO()
+    code = _summarize(RunResult(steps=[rep], stopped_at="sam"), 1.0, tmp_path, out)
+    assert code == 1
+    text = out.getvalue()
+    assert "1 tile(s) failed" in text and "sam tile (1, 0): step 'sam', tile(1, 0): boom" in text
+
+
+def test_status_of_a_non_run(tmp_path, capsys):
+    assert main(["status", str(tmp_path)]) == 2
+    assert "not a run directory" in capsys.readouterr().err
+
+
+def test_console_script_runs(tmp_path):
+    exe = Path(sys.executable).with_name("swathmill")
+    if not exe.exists():
+        pytest.skip("the swathmill console script is not installed next to this Python")
+    r = subprocess.run([str(exe), "--version"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0 and r.stdout.startswith("swathmill ")
