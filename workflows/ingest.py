@@ -277,6 +277,7 @@ class LineInfo:
     footprint: Any = field(repr=False)
     valid_pixels: int = 0
     fingerprint: str = ""
+    scale_source: str = ""
 
     @property
     def res(self) -> tuple[float, float]:
@@ -398,7 +399,7 @@ def inspect_line(
             wl, fw, src = meta
         _check_increasing(wl, label)
         nd = ds.nodata if ds.nodata is not None else nodata
-        s, o, _ = _scales(ds, scale, offset)
+        s, o, scale_src = _scales(ds, scale, offset)
         if footprint_band is None:
             footprint_band = ds.count // 2 + 1
         if not 1 <= footprint_band <= ds.count:
@@ -425,7 +426,7 @@ def inspect_line(
             transform=tuple(ds.transform)[:6], width=ds.width, height=ds.height, count=ds.count,
             dtype=ds.dtypes[0], nodata=None if nd is None else float(nd), scale=s, offset=o,
             wavelength=wl, fwhm=fw, wavelength_source=src, footprint=fp, valid_pixels=nvalid,
-            fingerprint=fingerprint_file(p) if Path(p).exists() else "",
+            fingerprint=fingerprint_file(p) if Path(p).exists() else "", scale_source=scale_src,
         )
     return info
 
@@ -585,39 +586,40 @@ def _seg_dist2(px: np.ndarray, py: np.ndarray, s: np.ndarray) -> np.ndarray:
     return ex * ex + ey * ey
 
 
-def edge_distance(segments: np.ndarray, window: Window, yscale: float = 1.0) -> np.ndarray:
+def edge_distance(segments: np.ndarray, window: Window, yscale: float = 1.0, block: int = 64) -> np.ndarray:
     """Distance (in x pixels) from each pixel centre of ``window`` to the nearest footprint edge.
 
     ``segments`` are in the grid's pixel coordinates as made by :func:`footprint_to_grid` (rows
     scaled by ``yscale = res_y / res_x``). The result does not depend on how the grid is tiled:
-    each pixel's distance is computed from the same global segments. Segments that cannot be the
-    nearest for any pixel of the window are skipped (a pruning that does not change the result).
+    each pixel's distance is the minimum over the same global segments, computed by the same
+    formula. Work is done in blocks of ``block`` pixels; for each block, segments that cannot be the
+    nearest for any of its pixels are skipped (an exact pruning: it does not change the result).
     """
     rows, cols = window.shape
-    out = np.full((rows, cols), np.inf)
-    if len(segments) == 0 or rows == 0 or cols == 0:
-        return out.astype(np.float32)
-    c = window.col + 0.5 + np.arange(cols, dtype=np.float64)
-    r = (window.row + 0.5 + np.arange(rows, dtype=np.float64)) * yscale
-    # pruning: bound each segment's distance to the window's rectangle of pixel centres
-    wx0, wx1, wy0, wy1 = c[0], c[-1], r[0], r[-1]
-    s = np.asarray(segments, dtype=np.float64)
-    corners = np.array([[wx0, wy0], [wx1, wy0], [wx0, wy1], [wx1, wy1]])
-    dmax = np.zeros(len(s))
-    for cx, cy in corners:  # the distance to a segment is convex, so its maximum is at a corner
-        dmax = np.maximum(dmax, np.sqrt(_seg_dist2(np.array([cx]), np.array([cy]), s.T)))
+    out = np.full((rows, cols), np.inf, dtype=np.float32)
+    s = np.asarray(segments, dtype=np.float64).reshape(-1, 4)
+    if len(s) == 0 or rows == 0 or cols == 0:
+        return out
     sx0, sx1 = np.minimum(s[:, 0], s[:, 2]), np.maximum(s[:, 0], s[:, 2])
     sy0, sy1 = np.minimum(s[:, 1], s[:, 3]), np.maximum(s[:, 1], s[:, 3])
-    gapx = np.maximum(0.0, np.maximum(sx0 - wx1, wx0 - sx1))
-    gapy = np.maximum(0.0, np.maximum(sy0 - wy1, wy0 - sy1))
-    dmin = np.hypot(gapx, gapy)  # the segment's bounding box to the window: a lower bound
-    keep = dmin <= dmax.min() + 1e-9
-    px = c[None, :]
-    py = r[:, None]
-    best = out
-    for seg in s[keep]:
-        np.minimum(best, _seg_dist2(px, py, seg), out=best)
-    return np.sqrt(best).astype(np.float32)
+    for i in range(0, rows, block):
+        for j in range(0, cols, block):
+            c = window.col + j + 0.5 + np.arange(min(block, cols - j), dtype=np.float64)
+            r = (window.row + i + 0.5 + np.arange(min(block, rows - i), dtype=np.float64)) * yscale
+            wx0, wx1, wy0, wy1 = c[0], c[-1], r[0], r[-1]
+            dmax = np.zeros(len(s))
+            for cx, cy in ((wx0, wy0), (wx1, wy0), (wx0, wy1), (wx1, wy1)):
+                # the distance to a segment is convex, so over the block it peaks at a corner
+                dmax = np.maximum(dmax, np.sqrt(_seg_dist2(np.array([cx]), np.array([cy]), s.T)))
+            gapx = np.maximum(0.0, np.maximum(sx0 - wx1, wx0 - sx1))
+            gapy = np.maximum(0.0, np.maximum(sy0 - wy1, wy0 - sy1))
+            keep = np.hypot(gapx, gapy) <= dmax.min() + 1e-9  # bounding-box distance: a lower bound
+            best = np.full((r.size, c.size), np.inf)
+            px, py = c[None, :], r[:, None]
+            for seg in s[keep]:
+                np.minimum(best, _seg_dist2(px, py, seg), out=best)
+            out[i:i + r.size, j:j + c.size] = np.sqrt(best)
+    return out
 
 
 # ---------------------------------------------------------------------------------------------
@@ -654,13 +656,17 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
     offset = np.asarray(line["offset"], dtype=np.float32)[:, None, None]
     nodata = line["nodata"]
     opts = dict(dst_transform=grid.transform, dst_crs=grid.crs, tolerance=0.0,
-                XSCALE=line["xscale"], YSCALE=line["yscale"], num_threads=1)
+                XSCALE=line["xscale"], YSCALE=line["yscale"], num_threads=1, warp_mem_limit=256)
+    shift = _aligned_shift(line, grid) if resampling == "nearest" else None
     try:
         with rasterio.open(line["path"]) as ds:
             src = rasterio.band(ds, bands)
             dtype = np.dtype(ds.dtypes[0])
             integer = np.issubdtype(dtype, np.integer)
-            if resampling == "nearest" and integer and nodata is not None and _in_range(nodata, dtype):
+            if shift is not None:
+                # the grid is the line's own pixel lattice: nearest-neighbour warping is a window copy
+                out = _read_aligned(ds, bands, shift, grid.rows, grid.cols, nodata)
+            elif resampling == "nearest" and integer and nodata is not None and _in_range(nodata, dtype):
                 # nearest on the stored integers, decoded after: exact, and half the memory of float32
                 dst = np.empty((len(bands), grid.rows, grid.cols), dtype=dtype)
                 reproject(src, dst, src_nodata=nodata, dst_nodata=nodata, resampling=Resampling.nearest, **opts)
@@ -678,6 +684,38 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
     out *= scale
     if np.any(offset):
         out += offset
+    return out
+
+
+def _aligned_shift(line: Mapping[str, Any], grid: Grid) -> tuple[int, int] | None:
+    """(row, col) of the grid's first pixel in the line's raster when both share one pixel lattice."""
+    if not line["same_crs"]:
+        return None
+    a, b, c, d, e, f = line["transform"][:6]
+    g = grid.transform
+    if b != 0 or d != 0 or g.b != 0 or g.d != 0 or a != g.a or e != g.e:
+        return None
+    col, row = (g.c - c) / a, (g.f - f) / e
+    if abs(col - round(col)) > 1e-6 or abs(row - round(row)) > 1e-6:
+        return None
+    return int(round(row)), int(round(col))
+
+
+def _read_aligned(ds: Any, bands: list[int], shift: tuple[int, int], rows: int, cols: int,
+                  nodata: float | None) -> np.ndarray:
+    """The grid's window of a line on the same lattice: float32 stored values, NaN outside or at nodata."""
+    from rasterio.windows import Window as RWindow
+
+    out = np.full((len(bands), rows, cols), np.nan, dtype=np.float32)
+    r0, c0 = shift
+    rr0, cc0 = max(r0, 0), max(c0, 0)
+    rr1, cc1 = min(r0 + rows, ds.height), min(c0 + cols, ds.width)
+    if rr1 <= rr0 or cc1 <= cc0:
+        return out
+    raw = ds.read(bands, window=RWindow(cc0, rr0, cc1 - cc0, rr1 - rr0))
+    part = out[:, rr0 - r0:rr1 - r0, cc0 - c0:cc1 - c0]
+    part[...] = raw
+    part[~_valid_stored(raw, nodata)] = np.nan
     return out
 
 
@@ -753,6 +791,8 @@ def footprints_geojson(lines: Sequence[LineInfo], grid: Grid | None = None,
             "line": ln.number, "name": ln.name, "file": Path(ln.path).name, "valid_pixels": ln.valid_pixels,
             "bands": ln.count, "wavelength_min_nm": float(ln.wavelength.min()),
             "wavelength_max_nm": float(ln.wavelength.max()), "wavelengths_from": ln.wavelength_source,
+            "scale_factor": float(ln.scale[0]) if np.all(ln.scale == ln.scale[0]) else "per band",
+            "scale_from": ln.scale_source,
         }
         if grid is not None:
             props["area"] = float(_geom_to_crs(ln.footprint, ln.crs, grid.crs, 2 * max(ln.res)).area)

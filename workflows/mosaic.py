@@ -372,75 +372,79 @@ def resolve_overlaps(
     offset: np.ndarray | None = None,
     shape: tuple[int, int, int] | None = None,
     source_dtype: str = "uint8",
+    check_data: bool = True,
+    in_place: bool = False,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Combine overlapping lines into one cube.
 
     Parameters
     ----------
     lines : line number (1-based) -> float32 (bands, rows, cols) reflectance, NaN where no data.
-    edges : line number -> (rows, cols) distance to that line's footprint edge in pixels.
+    edges : line number -> (rows, cols) distance to that line's footprint edge in pixels, NaN where
+        the line has no data.
     policy : "nearest_centre" (largest edge distance wins; ties go to the lower line number),
         "first" / "last" (lowest / highest line number with data), "feather" (weights
         ``min(edge / blend_width, 1)``, weighted mean of the lines with data).
     gain, offset : (n_lines, bands) brightness corrections applied as ``gain * x + offset`` before
         combining (row k-1 for line k); None for none.
     shape : (bands, rows, cols) of the output when ``lines`` is empty.
+    check_data : also treat pixels with a NaN in any band as having no data (False when the edges
+        already carry NaN there, as the mosaic's reader guarantees).
+    in_place : allow the line arrays to be overwritten (saves a copy of each).
 
     Returns
     -------
     reflectance float32 (bands, rows, cols) NaN where no line has data; source (rows, cols) line
     number (for feather: the line with the largest edge distance), 0 where none; valid (rows, cols).
     """
+    if policy not in ("nearest_centre", "first", "last", "feather"):
+        raise ValueError(f"overlap policy must be nearest_centre, first, last or feather. Got {policy!r}")
     if shape is None:
         if not lines:
             raise ValueError("resolve_overlaps needs the output shape when no line meets the window")
         shape = next(iter(lines.values())).shape  # type: ignore[assignment]
     nb, rows, cols = shape  # type: ignore[misc]
-    out = np.full((nb, rows, cols), np.nan, dtype=np.float32)
+    feather = policy == "feather"
+    out = np.zeros((nb, rows, cols), np.float32) if feather else np.full((nb, rows, cols), np.nan, np.float32)
     source = np.zeros((rows, cols), dtype=source_dtype)
     best = np.full((rows, cols), -np.inf, dtype=np.float32)
-    wsum = np.zeros((rows, cols), dtype=np.float32) if policy == "feather" else None
-    if policy == "feather":
-        out[:] = 0.0
-    if policy not in ("nearest_centre", "first", "last", "feather"):
-        raise ValueError(f"overlap policy must be nearest_centre, first, last or feather. Got {policy!r}")
-
-    def corrected(k: int, x: np.ndarray) -> np.ndarray:
-        if gain is None:
-            return x
-        g = np.asarray(gain[k - 1], dtype=np.float32)[:, None]
-        o = np.asarray(offset[k - 1], dtype=np.float32)[:, None] if offset is not None else 0.0
-        return x * g + o
-
+    wsum = np.zeros((rows, cols), dtype=np.float32)
     for k in sorted(lines):
         x = lines[k]
         if x.shape != (nb, rows, cols):
             raise ValueError(f"line {k} has shape {x.shape}; expected {(nb, rows, cols)}")
         e = np.asarray(edges[k], dtype=np.float32).reshape(rows, cols)
-        ok = np.all(np.isfinite(x), axis=0) & np.isfinite(e)
+        ok = np.isfinite(e)
+        if check_data:
+            ok &= np.all(np.isfinite(x), axis=0)
         if policy == "first":
             sel = ok & (source == 0)
         elif policy == "last":
             sel = ok
         else:
             sel = ok & (e > best)
-        if policy == "feather":
-            w = np.clip(e / np.float32(blend_width), 0.0, 1.0)
-            w[~ok] = 0.0
-            has = w > 0
-            out[:, has] += corrected(k, x[:, has]) * w[has]
+        if not ok.any():
+            continue
+        xc = x if in_place else x.copy()
+        if gain is not None:
+            xc *= np.asarray(gain[k - 1], dtype=np.float32)[:, None, None]
+            if offset is not None:
+                xc += np.asarray(offset[k - 1], dtype=np.float32)[:, None, None]
+        if feather:
+            w = np.where(ok, np.clip(e / np.float32(blend_width), 0.0, 1.0), 0.0).astype(np.float32)
+            xc[:, ~ok] = 0.0
+            xc *= w
+            out += xc
             wsum += w
-        elif sel.any():
-            out[:, sel] = corrected(k, x[:, sel])
+        else:
+            np.copyto(out, xc, where=sel[None])
         source[sel] = k
         best[sel] = e[sel]
-    if policy == "feather":
-        assert wsum is not None
+    if feather:
         has = wsum > 0
-        out[:, has] /= wsum[has]
-        out[:, ~has] = np.nan
+        np.divide(out, wsum, out=out, where=has[None])
+        np.copyto(out, np.float32(np.nan), where=~has[None])
     valid = source > 0
-    out[:, ~valid] = np.nan
     return out, source, valid
 
 
@@ -462,9 +466,10 @@ def mosaic_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np
     if model is not None and "gain" in model:
         gain, offset = np.asarray(model["gain"]), np.asarray(model["offset"])
     rows, cols = block.valid.shape
+    # the reader marks a line's missing pixels with NaN edges, and its arrays are this tile's own
     refl, source, valid = resolve_overlaps(
         lines, edges, p["policy"], float(p["blend_width"]), gain, offset, shape=(int(p["n_bands"]), rows, cols),
-        source_dtype="uint8" if int(p["n_lines"]) <= 255 else "uint16")
+        source_dtype="uint8" if int(p["n_lines"]) <= 255 else "uint16", check_data=False, in_place=True)
     return {"reflectance": refl, "source": source[None], "valid": valid}
 
 
