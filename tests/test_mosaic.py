@@ -204,6 +204,36 @@ def test_tiled_mosaic_equals_whole_line_rasterio_warp(tmp_path, rng, resampling)
         np.testing.assert_allclose(got[both], expected[both], rtol=0, atol=1.5e-4)
 
 
+def test_lines_on_the_grid_lattice_equal_gdal_warp(tmp_path, rng):
+    """Lines on the mosaic's own pixel lattice are copied window by window: the same as GDAL's warp."""
+    from workflows.ingest import _aligned_shift, warp_window
+
+    nb = 4
+    wl = np.linspace(450, 2300, nb)
+    paths = []
+    for k, (c0, r0, h, w) in enumerate([(0, 0, 30, 40), (25, 12, 33, 29)]):
+        data = rng.integers(-300, 9000, size=(nb, h, w)).astype(np.int16)
+        data[:, :2, :] = -9999
+        paths.append(write_line(tmp_path / f"g{k}.tif", data, T0 @ Affine.translation(c0, r0), wl))
+    step = build_mosaic_step(MosaicConfig(lines=[str(p) for p in paths], brightness_matching=False))
+    grid = step.grid
+    for line in step.params["lines"]:
+        assert _aligned_shift(line, grid) is not None  # the window-copy path is the one under test
+        with rasterio.open(line["path"]) as ds:
+            whole = np.full((nb, grid.rows, grid.cols), -9999, np.int16)
+            reproject(rasterio.band(ds, line["bands"]), whole, dst_transform=grid.transform, dst_crs=grid.crs,
+                      src_nodata=-9999, dst_nodata=-9999, resampling=Resampling.nearest, tolerance=0.0)
+        expected = np.where(whole == -9999, np.nan, whole.astype(np.float32) * np.float32(1e-4))
+        from tiles.grid import Tiling
+
+        for tile in Tiling(grid, 13, 2):  # odd tiles with a halo, reaching past the line's raster
+            got = warp_window(line, grid.window(tile.padded))
+            if got is None:
+                assert np.all(np.isnan(expected[(slice(None), *tile.padded.slices)]))
+                continue
+            np.testing.assert_array_equal(got, expected[(slice(None), *tile.padded.slices)])
+
+
 # --------------------------------------------------------------------------------- brightness matching
 
 
