@@ -460,3 +460,14 @@ def test_library_endmembers_on_mnf_components(rng, tmp_path):
     np.testing.assert_allclose(out["u/abundance"].reshape(3, -1), a, atol=1e-4)  # float32 components
     with pytest.raises(UnmixError, match="cube wavelengths for a transform that uses 24 bands"):
         unmix_step("u", "src/comp", library=lib, transform=tf, cube_wavelengths=wl_cube[:10])
+
+
+@pytest.mark.skipif(not HAVE_NUMBA, reason="numba is not installed")
+def test_compiled_kkt_check_equals_numpy(rng):
+    m, _a, x = random_problem(rng, n=300)
+    g, b = m.T @ m, m.T @ x
+    for method in um.METHODS:
+        a = unmix(x, m, method).abundances
+        for cand in (a, a + rng.normal(0, 1e-3, a.shape), np.abs(a)):
+            np.testing.assert_allclose(um.kkt_violation_compiled(g, b, cand, method), kkt_violation(g, b, cand, method),
+                                       rtol=1e-10, atol=1e-15)

@@ -102,6 +102,7 @@ __all__ = [
     "condition_number",
     "check_endmembers",
     "kkt_violation",
+    "kkt_violation_compiled",
     "fcls_pixel",
     "unmix",
     "unmix_cube",
@@ -558,17 +559,71 @@ def _active_set_loop(b, k_tab, c_tab, gram, sum_to_one, tol_add, max_rounds, a_o
         flag[i] = not settled
 
 
+def _kkt_loop(gram, b, a, nonnegative, sum_to_one, out):  # pragma: no cover - compiled by numba
+    """:func:`kkt_violation`, pixel by pixel (compiled by numba); writes out (n,)."""
+    p, n = b.shape
+    gmax = np.abs(gram).max()
+    g = np.empty(p)
+    for i in range(n):
+        bmax = 0.0
+        asum = 0.0
+        tot = 0.0
+        for q in range(p):
+            acc = -b[q, i]
+            for r in range(p):
+                acc += gram[q, r] * a[r, i]
+            g[q] = acc
+            bmax = max(bmax, abs(b[q, i]))
+            asum += abs(a[q, i])
+            tot += a[q, i]
+        scale = bmax + gmax * asum + 2.2250738585072014e-308
+        mu = 0.0
+        if sum_to_one:
+            cnt = 0
+            for q in range(p):
+                if (not nonnegative) or a[q, i] > 0.0:
+                    mu -= g[q]
+                    cnt += 1
+            mu /= max(cnt, 1)
+        v = 0.0
+        for q in range(p):
+            lam = g[q] + mu
+            if (not nonnegative) or a[q, i] > 0.0:
+                v = max(v, abs(lam))
+            else:
+                v = max(v, -lam)
+        v /= scale
+        if nonnegative:
+            for q in range(p):
+                v = max(v, -a[q, i] * gmax / scale)
+        if sum_to_one:
+            v = max(v, abs(tot - 1.0))
+        out[i] = v
+
+
 HAVE_NUMBA = importlib.util.find_spec("numba") is not None
-_COMPILED: list = []
+_COMPILED: dict = {}
+
+
+def _compiled(fn):
+    """``fn`` compiled by numba on first use (cached on disk)."""
+    if fn.__name__ not in _COMPILED:
+        import numba
+
+        _COMPILED[fn.__name__] = numba.njit(cache=True, nogil=True)(fn)
+    return _COMPILED[fn.__name__]
 
 
 def _active_set_compiled(*args) -> None:
-    """:func:`_active_set_loop` compiled by numba on first use (cached on disk), then called."""
-    if not _COMPILED:
-        import numba
+    _compiled(_active_set_loop)(*args)
 
-        _COMPILED.append(numba.njit(cache=True, nogil=True)(_active_set_loop))
-    _COMPILED[0](*args)
+
+def kkt_violation_compiled(gram: np.ndarray, b: np.ndarray, a: np.ndarray, method: str) -> np.ndarray:
+    """:func:`kkt_violation` by a loop compiled with numba (the same conditions and scale)."""
+    out = np.empty(b.shape[1])
+    _compiled(_kkt_loop)(np.ascontiguousarray(gram, dtype=np.float64), np.ascontiguousarray(b, dtype=np.float64),
+                         np.ascontiguousarray(a, dtype=np.float64), method in NONNEGATIVE, method in SUM_TO_ONE, out)
+    return out
 
 
 # --------------------------------------------------------------------------------------------------
@@ -662,7 +717,7 @@ class Unmixer:
             flag = np.empty(n, dtype=bool)
             _active_set_compiled(b, self._k_rows, self._c_rows, self.gram, self.sum_to_one,
                                  0.1 * self.kkt_rtol, self.max_rounds, a, flag)
-            flag |= ~(kkt_violation(self.gram, b, a, self.method) <= self.kkt_rtol)
+            flag |= ~(kkt_violation_compiled(self.gram, b, a, self.method) <= self.kkt_rtol)
             return a, flag
         s = self._supports.solve_full(b)
         if not self.nonnegative:
@@ -758,10 +813,8 @@ class Unmixer:
             np.matmul(self._mt, xc, out=b[:, lo:hi])
             np.einsum("ij,ij->j", xc, xc, out=xx[lo:hi])
         ok = np.isfinite(xx) & np.all(np.isfinite(b), axis=0)
-        out_a = np.full((p, n), np.nan)
-        out_r = np.full(n, np.nan)
         if not ok.any():
-            return UnmixResult(out_a, out_r, 0, 0)
+            return UnmixResult(np.full((p, n), np.nan), np.full(n, np.nan), 0, 0)
         okx = None if ok.all() else np.flatnonzero(ok)
         bs = b if okx is None else b[:, okx]
         xxs = xx if okx is None else xx[okx]
@@ -780,6 +833,7 @@ class Unmixer:
         if okx is None:
             out_a, out_r = a, rm
         else:
+            out_a, out_r = np.full((p, n), np.nan), np.full(n, np.nan)
             out_a[:, okx] = a
             out_r[okx] = rm
         return UnmixResult(out_a, out_r, int(fb.size), int(cols.size))
