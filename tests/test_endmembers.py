@@ -207,7 +207,7 @@ def test_products_library_and_points(rng, tmp_path):
     np.testing.assert_allclose(lib.wavelengths, wl)
     pts = endmember_points(model)
     for f, r, c in zip(pts["features"], model["rows"], model["cols"]):
-        xy = grid.transform * (c + 0.5, r + 0.5)  # pixel centre by the affine transform
+        xy = grid.transform @ (c + 0.5, r + 0.5)  # pixel centre by the affine transform
         assert f["geometry"]["coordinates"] == pytest.approx(list(xy))
         assert (f["properties"]["row"], f["properties"]["col"]) == (r, c)
     paths = write_endmember_products(model, tmp_path / "products", "em")
@@ -225,3 +225,17 @@ def test_config_builds_the_step():
         EndmemberExtractionConfig.model_validate({"input": "mnf"})
     with pytest.raises(ValueError):
         EndmemberExtractionConfig.model_validate({"n_endmembers": 1})
+
+
+def test_extraction_on_reflectance_warns(rng):
+    x, _red, _pure, _m = simplex_scene(rng, rows=16, cols=16)
+    from workflows.endmembers import candidate_accumulate as acc_fn, extraction_finalize
+    grid = default_grid(16, 16)
+    spec = OutputSpec(tuple(f"b{i}" for i in range(x.shape[0])), "float32", float("nan"),
+                      coords={"wavelength": tuple(np.linspace(400, 900, x.shape[0]))})
+    meta = {"reduced": InputMeta("mosaic/reflectance", grid, spec)}
+    params = extraction_params("atgp", 4)
+    block = Block(data={"reduced": x}, valid=np.ones((16, 16), bool), tile=Tiling(grid, 16)[0, 0], grid=grid,
+                  params=params, static={}, meta=meta)
+    with pytest.warns(UserWarning, match="looks like reflectance, not reduced data"):
+        extraction_finalize(acc_fn(block), params, meta)

@@ -471,6 +471,10 @@ def extraction_finalize(acc: dict | None, params: Mapping[str, Any], meta: Mappi
     params = params.get("extraction", params)
     p, dims, info = _resolve_counts(params, meta)
     method = params["method"]
+    if "wavelength" in meta["reduced"].spec.coords:
+        warnings.warn(f"endmember extraction runs on the first {dims} bands of {meta['reduced'].ref!r}, which has "
+                      "wavelengths: it looks like reflectance, not reduced data; give MNF or PCA components",
+                      UserWarning, stacklevel=2)
     if acc is None or acc["cand_key"].size < p:
         got = 0 if acc is None else int(acc["cand_key"].size)
         raise EndmemberError(f"endmember extraction found {got} candidate pixel(s) for {p} endmembers: too few "

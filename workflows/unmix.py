@@ -520,7 +520,7 @@ def _active_set_loop(b, k_tab, c_tab, gram, sum_to_one, tol_add, max_rounds, a_o
                                 g += gram[q, r] * s[r]
                             mu -= g
                             cnt += 1
-                    mu /= cnt
+                    mu /= max(cnt, 1)
                 jmin = -1
                 lmin = 0.0
                 for q in range(p):
