@@ -87,9 +87,10 @@ def test_each_method_finds_the_pure_pixels(rng, method):
 
 @pytest.mark.parametrize("method", METHODS)
 def test_same_seed_same_endmembers_whatever_the_tiling(rng, tmp_path, method):
-    x, red, pure, _m = simplex_scene(rng, noise=0.01, rows=64, cols=48)
+    x, red, pure, _m = simplex_scene(rng, noise=0.01, rows=48, cols=40)
+    red[:, 20:23, 30:34] = np.nan  # nodata
     models = []
-    for tile in (8, 16, 64):
+    for tile in (8, 24):
         step = endmember_fit_step("em", "src/red", "src/cube", method=method, n_endmembers=4, seed=7)
         out, result = run_on_arrays([step], {"red": red, "cube": x}, tmp_path / f"t{tile}", tile=tile)
         assert result.ok
@@ -101,6 +102,7 @@ def test_same_seed_same_endmembers_whatever_the_tiling(rng, tmp_path, method):
             assert loc[r, c] == i + 1
         assert np.count_nonzero(np.nan_to_num(loc)) == 4
     whole = extract_endmembers(red, x, method=method, n_endmembers=4, seed=7)
+    assert sorted(zip(whole["rows"].tolist(), whole["cols"].tolist())) == pure
     for mdl in models:
         assert mdl["rows"].tolist() == whole["rows"].tolist()
         assert mdl["cols"].tolist() == whole["cols"].tolist()
