@@ -315,7 +315,7 @@ def pixel_sample_mask(rows: np.ndarray, cols: np.ndarray, seed: int, fraction: f
         return np.ones(np.broadcast_shapes(np.shape(rows), np.shape(cols)), dtype=bool)
     r = np.asarray(rows, dtype=np.uint64)
     c = np.asarray(cols, dtype=np.uint64)
-    z = (r << np.uint64(32)) ^ c ^ (np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15))
+    z = (r << np.uint64(32)) ^ c ^ np.uint64((int(seed) * 0x9E3779B97F4A7C15) % 2**64)  # wraps as uint64 would
     z = z + np.uint64(0x9E3779B97F4A7C15)
     z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
     z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
