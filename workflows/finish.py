@@ -25,7 +25,8 @@ from .accuracy import (AccuracyError, abundance_metrics, area_estimate, class_ac
                        regression_metrics)
 from .reference import GroundReferenceConfig, load_samples
 
-__all__ = ["finish_run", "assess_accuracy", "rebuild_report", "gather_collection", "ACCURACY_FILE"]
+__all__ = ["finish_run", "assess_accuracy", "rebuild_report", "gather_collection", "write_endmember_tables",
+           "ACCURACY_FILE"]
 
 ACCURACY_FILE = "accuracy.json"
 SPLIT_TRAIN, SPLIT_VALIDATION = 1, 2  # workflows.reference.SPLIT_CODES
@@ -284,6 +285,7 @@ def finish_run(run, cfg, result, plan, base: Path, progress) -> None:
     """Called by the pipeline after its steps (finished or not)."""
     t0 = time.perf_counter()
     try:
+        write_endmember_tables(run.dir)
         if result is not None and result.ok and cfg.reference is not None:
             assess_accuracy(run.dir)
         if cfg.engine.export:
@@ -295,6 +297,19 @@ def finish_run(run, cfg, result, plan, base: Path, progress) -> None:
         path = rebuild_report(run.dir)
         run.ledger.add_timing("finish", "report", time.perf_counter() - t1)
         progress.message(f"report written: {path}")
+
+
+def write_endmember_tables(run_dir: Path) -> list[Path]:
+    """Endmembers found in the image: a library table and a point layer per extraction step, in products/."""
+    from .endmembers import write_endmember_products
+
+    view = open_run(run_dir)
+    written: list[Path] = []
+    for name in view.steps:
+        model = view.model(name) if view.complete(name) else None
+        if model is not None and "rows" in model and "cols" in model and "names" in model and "spectra" in model:
+            written += write_endmember_products(model, view.dir / "products", name)
+    return written
 
 
 def rebuild_report(run_dir: Path) -> Path:
