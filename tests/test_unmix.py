@@ -424,13 +424,37 @@ def test_ground_reference_endmembers_are_class_means(rng, tmp_path):
 def test_image_endmembers_step_tiled_equals_untiled(rng, tmp_path):
     m, x = _scene(rng, rows=48, cols=40)
     outs = []
+    from tiles.step import OutputSpec
+    from tiles.tasks import load_model
+    from workflows.endmembers import endmember_library, endmember_points
+    wl = np.linspace(400.0, 1000.0, x.shape[0])
+    spec = OutputSpec(tuple(f"b{i + 1:03d}" for i in range(x.shape[0])), "float32", float("nan"),
+                      coords={"wavelength": tuple(wl)})
+    red = _pca(x, 2)
     for tile in (8, 48):
-        step = unmix_step("u", "src/cube", image={"method": "nfindr", "n_endmembers": 3, "seed": 2})
-        out, result = run_on_arrays([step], {"cube": x}, tmp_path / f"t{tile}", tile=tile)
+        step = unmix_step("u", "src/cube", image={"method": "nfindr", "n_endmembers": 3, "seed": 2},
+                          reduced_ref="src/red", shade=True)
+        out, result = run_on_arrays([step], {"cube": (x, spec), "red": red}, tmp_path / f"t{tile}", tile=tile)
         assert result.ok
         outs.append(out["u/abundance"])
     for o in outs[1:]:
         np.testing.assert_allclose(o, outs[0], rtol=1e-6, atol=1e-7)
+    model = load_model(next((tmp_path / "t48" / "run" / "models").glob("u-*.json")).with_suffix(""))
+    assert list(model["names"]) == ["em_1", "em_2", "em_3", "shade"]
+    lib = endmember_library(model)
+    for i, (r, c) in enumerate(zip(model["rows"], model["cols"])):
+        np.testing.assert_array_equal(lib.spectra[i], x[:, r, c])  # the cube's spectra at the chosen pixels
+    assert len(endmember_points(model)["features"]) == 3
+
+
+def _pca(x: np.ndarray, k: int) -> np.ndarray:
+    """First k principal components (numpy eigh of the covariance), NaN pixels kept NaN."""
+    flat = x.reshape(x.shape[0], -1).T.astype(np.float64)
+    ok = np.isfinite(flat).all(axis=1)
+    w, v = np.linalg.eigh(np.cov(flat[ok].T))
+    out = np.full((flat.shape[0], k), np.nan)
+    out[ok] = (flat[ok] - flat[ok].mean(axis=0)) @ v[:, ::-1][:, :k]
+    return out.T.reshape((k,) + x.shape[1:]).astype(np.float32)
 
 
 def test_library_endmembers_on_mnf_components(rng, tmp_path):

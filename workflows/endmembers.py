@@ -582,11 +582,13 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
 
 def endmember_library(model: Mapping[str, Any], *, source: str = "image endmembers") -> SpectralLibrary:
     """The extracted endmembers' spectra as a :class:`SpectralLibrary` (needs a ``spectra`` input
-    with a wavelength coordinate)."""
+    with a wavelength coordinate). Takes the model of :func:`endmember_fit_step` or of an unmixing
+    step with image endmembers (:func:`workflows.unmix.unmix_step`)."""
     if "spectra" not in model or "wavelengths" not in model:
         raise EndmemberError("the extraction has no spectra with wavelengths: give the fit a 'spectra' input "
                              "(the reflectance cube) to write the endmembers as a library")
-    return SpectralLibrary(tuple(model["names"]), np.asarray(model["wavelengths"], dtype=np.float64),
+    names = model.get("extracted_names", model["names"])  # an unmixing model may add a shade endmember
+    return SpectralLibrary(tuple(names), np.asarray(model["wavelengths"], dtype=np.float64),
                            np.asarray(model["spectra"], dtype=np.float64), source=source)
 
 
@@ -594,7 +596,7 @@ def endmember_points(model: Mapping[str, Any]) -> dict:
     """The endmembers' pixel centres as a GeoJSON FeatureCollection (coordinates in the grid's CRS,
     named in a ``crs`` member as the 2008 GeoJSON draft did; RFC 7946 readers assume WGS 84)."""
     feats = []
-    for i, name in enumerate(model["names"]):
+    for i, name in enumerate(model.get("extracted_names", model["names"])):
         feats.append({"type": "Feature",
                       "geometry": {"type": "Point", "coordinates": [float(model["x"][i]), float(model["y"][i])]},
                       "properties": {"name": name, "order": i + 1, "row": int(model["rows"][i]),

@@ -1036,8 +1036,11 @@ def _finalize(acc: Any, params: Mapping[str, Any], meta: Mapping[str, InputMeta]
         m = np.asarray(ext["spectra"], dtype=np.float64).T
         names = list(ext["names"])
         model["extraction"] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in ext.items()
-                               if k not in ("spectra", "reduced")}
-        model["rows"], model["cols"] = ext["rows"], ext["cols"]
+                               if k not in ("spectra", "reduced", "wavelengths")}
+        # what workflows.endmembers.endmember_library / endmember_points read
+        model.update({k: ext[k] for k in ("rows", "cols", "x", "y", "crs", "method", "spectra", "wavelengths")
+                      if k in ext})
+        model["extracted_names"] = list(ext["names"])
         transform = None
     else:
         m = np.asarray(given["endmembers"], dtype=np.float64)
