@@ -195,3 +195,21 @@ def test_console_script_runs(tmp_path):
         pytest.skip("the swathmill console script is not installed next to this Python")
     r = subprocess.run([str(exe), "--version"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0 and r.stdout.startswith("swathmill ")
+
+
+def test_shipped_configs_and_profiles_validate(tmp_path):
+    from workflows.config import ExecutionConfig, load_yaml, validate
+    from workflows.pipeline import load_run_config
+
+    root = Path(__file__).resolve().parents[1] / "configs"
+    cfg, _ = load_run_config(root / "example-campaign.yaml")
+    assert cfg.mnf.components == 20 and cfg.classify.sam[0].threshold == 0.1
+    for prof in ("laptop", "shared-server", "existing-scheduler", "batch-cluster"):
+        ex = validate(ExecutionConfig, load_yaml(root / f"{prof}.yaml")["execution"], root / f"{prof}.yaml")
+        assert ex.dashboard is None or ex.dashboard.startswith("127.0.0.1")
+    # a run configuration may name a profile file instead of an execution mapping
+    run = tmp_path / "r.yaml"
+    run.write_text(yaml.safe_dump({"name": "p", "execution": str(root / "laptop.yaml"),
+                                   "mosaic": {"lines": ["x.tif"]}}))
+    cfg, _ = load_run_config(run)
+    assert cfg.execution.workers == 2 and cfg.execution.memory_limit == "3GiB"
