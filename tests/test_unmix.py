@@ -495,3 +495,17 @@ def test_compiled_kkt_check_equals_numpy(rng):
         for cand in (a, a + rng.normal(0, 1e-3, a.shape), np.abs(a)):
             np.testing.assert_allclose(um.kkt_violation_compiled(g, b, cand, method), kkt_violation(g, b, cand, method),
                                        rtol=1e-10, atol=1e-15)
+
+
+def test_step_warns_and_refuses(rng, tmp_path):
+    m, x = _scene(rng, rows=16, cols=16)
+    near = np.c_[m, m[:, 0] + 1e-6]
+    with pytest.warns(IllConditionedWarning, match="condition number"):  # warned when the step is fitted
+        out, result = run_on_arrays([unmix_step("u", "src/cube", endmembers=near)], {"cube": x}, tmp_path, tile=16)
+    assert result.ok
+    with pytest.raises(UnmixError, match="exactly one endmember source"):
+        unmix_step("u", "src/cube", endmembers=m, image={"method": "atgp", "n_endmembers": 3})
+    with pytest.raises(UnmixError, match="unknown unmixing method 'lsq'"):
+        unmix_step("u", "src/cube", method="lsq", endmembers=m)
+    with pytest.raises(UnmixError, match="endmembers have 23 bands but input 'src/cube' has 24"):
+        run_on_arrays([unmix_step("v", "src/cube", endmembers=m[:-1])], {"cube": x}, tmp_path / "b", tile=16)
