@@ -16,7 +16,8 @@ Methods (pure functions on a pixel matrix, pixels as rows)
     volume wins.
 :func:`vca`
     Vertex component analysis (Nascimento and Bioucas-Dias, 2005, IEEE TGRS 43(4):898-910): the SNR is
-    estimated from the data's correlation matrix; above ``15 + 10 log10(p)`` dB the data are projected
+    estimated from the data's power and its power in p principal components (the paper's eq. 13 as
+    its authors' code computes it); above ``15 + 10 log10(p)`` dB the data are projected
     on the first p eigenvectors of the correlation matrix and scaled projectively (``y / (y'u)``),
     below it on the first p-1 principal components plus a constant coordinate; then p times: a random
     direction ``f = (I - A A^+) w`` orthogonal to the endmembers found so far, and the pixel of
@@ -47,7 +48,9 @@ brightest; ties go to the smaller (row, col). This is associative and commutativ
 set equals the one computed on the whole mosaic in one piece, so the selection (run in ``finalize``
 on the candidates sorted by position, from the seed) gives the same endmembers whatever the tiling.
 With enough directions every vertex of a simplex-shaped cloud is found (a vertex is extreme along
-every direction of its normal cone, about 1/p of the sphere for a regular simplex).
+every direction of its normal cone, about 1/p of the sphere for a regular simplex). What is exact
+is the independence from the tiling; that the candidates hold the very pixel a method would pick on
+all pixels is likely, not certain, and grows more likely with ``n_directions``.
 
 Number of endmembers (:func:`suggest_endmember_count`)
 ------------------------------------------------------
