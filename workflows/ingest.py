@@ -670,10 +670,10 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
                 # nearest on the stored integers, decoded after: exact, and half the memory of float32
                 dst = np.empty((len(bands), grid.rows, grid.cols), dtype=dtype)
                 reproject(src, dst, src_nodata=nodata, dst_nodata=nodata, resampling=Resampling.nearest, **opts)
-                ok = dst != np.asarray(nodata).astype(dtype)
+                bad = np.any(dst == np.asarray(nodata).astype(dtype), axis=0)
                 out = dst.astype(np.float32)
                 del dst
-                out[~np.broadcast_to(ok, out.shape)] = np.nan
+                np.copyto(out, np.float32(np.nan), where=bad[None])
             else:
                 out = np.empty((len(bands), grid.rows, grid.cols), dtype=np.float32)
                 src_nodata = nodata if nodata is not None else (np.nan if not integer else None)
@@ -714,8 +714,11 @@ def _read_aligned(ds: Any, bands: list[int], shift: tuple[int, int], rows: int, 
         return out
     raw = ds.read(bands, window=RWindow(cc0, rr0, cc1 - cc0, rr1 - rr0))
     part = out[:, rr0 - r0:rr1 - r0, cc0 - c0:cc1 - c0]
-    part[...] = raw
-    part[~_valid_stored(raw, nodata)] = np.nan
+    np.copyto(part, raw, casting="unsafe")
+    bad = ~_valid_stored(raw, nodata)
+    del raw
+    # a pixel with nodata in any band has no data (the reader drops it whole anyway)
+    np.copyto(part, np.float32(np.nan), where=bad.any(axis=0)[None])
     return out
 
 
@@ -753,7 +756,7 @@ def read_lines(grid: Grid, tile: Tile, params: Mapping[str, Any], static: Mappin
         ok = np.all(np.isfinite(arr), axis=0)
         if not ok.any():
             continue
-        arr[:, ~ok] = np.nan
+        np.copyto(arr, np.float32(np.nan), where=~ok[None])
         edge = edge_distance(np.asarray(static[f"segments_{k}"]), win, yscale)
         edge[~ok] = np.nan
         data[f"line_{k}"] = arr
