@@ -74,7 +74,18 @@ Policy = Literal["nearest_centre", "first", "last", "feather"]
 class MosaicConfig(BaseModel):
     """The ``mosaic`` section of a run's YAML.
 
-    Paths are relative to the config file's folder (``base_dir``).
+    Paths are relative to the config file's folder (``base_dir``). Example::
+
+        mosaic:
+          lines: [lines/line01.tif, lines/line02.tif, lines/line03.tif]
+          wavelength_table: lines/wavelengths.csv     # optional; else band tags / descriptions
+          bad_bands: [[1340, 1460], [1790, 1960]]     # nm, dropped everywhere
+          overlap: nearest_centre                     # or first, last, feather (blend_width px)
+          resampling: nearest                         # or bilinear
+          brightness_matching: true                   # sample_size blocks of match_block px per pair
+          spectral_tolerance: 1.0                     # nm; on_mismatch: resample | refuse
+          crs: EPSG:32612                             # default: the first line's CRS
+          resolution: 5.0                             # default: the finest line's
     """
 
     model_config = ConfigDict(extra="forbid")
