@@ -125,6 +125,21 @@ def test_netcdf_line_reads_like_geotiff(tmp_path, rng):
     b = inspect_line(nc)
     assert np.allclose(a.wavelength, b.wavelength) and a.valid_pixels == b.valid_pixels
     assert a.footprint.equals(b.footprint)
+    # a GDAL dataset name (driver:"file":variable) in the config reaches GDAL unchanged
+    plan = plan_mosaic(MosaicConfig(lines=[f'NETCDF:"{nc}":reflectance'], brightness_matching=False))
+    assert plan.lines[0].name == "line.nc_reflectance" and plan.lines[0].fingerprint
+    assert plan.lines[0].path == f'NETCDF:"{nc}":reflectance'
+    from tiles.grid import Tiling
+    from workflows.ingest import read_lines
+
+    got = []
+    for line in (f'NETCDF:"{nc}":reflectance', str(tif)):
+        step = build_mosaic_step(MosaicConfig(lines=[line], brightness_matching=False))
+        tile = Tiling(step.grid, 4096)[0, 0]
+        data, valid = read_lines(step.grid, tile, step.params, step.static)
+        got.append((data["line_1"], valid))
+    np.testing.assert_array_equal(got[0][0], got[1][0])  # the NetCDF line reads as the GeoTIFF one
+    np.testing.assert_array_equal(got[0][1], got[1][1])
 
 
 def test_bad_band_windows_are_closed_intervals():

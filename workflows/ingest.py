@@ -46,6 +46,7 @@ __all__ = [
     "inspect_line",
     "bad_band_mask",
     "fingerprint_file",
+    "is_gdal_name",
     "target_grid",
     "footprint_to_grid",
     "segments_of",
@@ -285,6 +286,26 @@ class LineInfo:
         return math.hypot(a, d), math.hypot(b, e)
 
 
+_GDAL_NAME = re.compile(r"^(?:[A-Za-z][A-Za-z0-9_]+:|/vsi)")
+
+
+def is_gdal_name(path: str) -> bool:
+    """True for GDAL dataset names that are not plain paths (``NETCDF:"f.nc":var``, ``HDF5:...``, ``/vsi...``)."""
+    return bool(_GDAL_NAME.match(str(path))) and not re.match(r"^[A-Za-z]:[\\/]", str(path))
+
+
+def _file_of(path: str) -> Path | None:
+    """The file a dataset name refers to: the path itself, or the quoted / colon-separated part that exists."""
+    p = Path(path)
+    if p.is_file():
+        return p
+    for part in re.split(r":(?!//)", str(path)):
+        q = Path(part.strip('"'))
+        if part and q.is_file():
+            return q
+    return None
+
+
 def fingerprint_file(path: str | Path, blocks: int = 16, block_size: int = 1 << 16) -> str:
     """A cheap content fingerprint: size plus SHA-256 of ``blocks`` evenly spaced 64 KiB blocks.
 
@@ -422,11 +443,11 @@ def inspect_line(
         res = math.hypot(ds.transform.a, ds.transform.d)
         fp = _footprint(valid, ds.transform, res)
         info = LineInfo(
-            path=os.path.abspath(p), name=name or Path(p).stem, number=int(number), crs=ds.crs.to_wkt(),
+            path=p if is_gdal_name(p) else os.path.abspath(p), name=name or Path(p).stem, number=int(number), crs=ds.crs.to_wkt(),
             transform=tuple(ds.transform)[:6], width=ds.width, height=ds.height, count=ds.count,
             dtype=ds.dtypes[0], nodata=None if nd is None else float(nd), scale=s, offset=o,
             wavelength=wl, fwhm=fw, wavelength_source=src, footprint=fp, valid_pixels=nvalid,
-            fingerprint=fingerprint_file(p) if Path(p).exists() else "", scale_source=scale_src,
+            fingerprint=fingerprint_file(f) if (f := _file_of(p)) is not None else "", scale_source=scale_src,
         )
     return info
 

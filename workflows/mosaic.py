@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, Mapping, Sequence
@@ -39,6 +40,7 @@ from .ingest import (
     footprint_to_grid,
     footprints_geojson,
     inspect_line,
+    is_gdal_name,
     read_lines,
     segments_of,
     target_grid,
@@ -170,6 +172,14 @@ def _table_for(cfg: MosaicConfig, path: Path, base: Path) -> Path | None:
     return None
 
 
+def _default_name(path: str) -> str:
+    """A line's default name: the file stem, or for a GDAL dataset name its last parts, sanitised."""
+    if not is_gdal_name(path):
+        return Path(path).stem
+    tail = "_".join(x for x in re.split(r"[:/\\\"]+", path)[-2:] if x)
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", Path(tail).name if "/" in tail else tail).strip("_") or "line"
+
+
 def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     """Inspect the lines, choose the bands and the grid, and describe each line for the reader.
 
@@ -178,13 +188,16 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     from .spectra import SpectralCoverageError, resample
 
     base = Path(base_dir)
-    paths = [(base / p).resolve() if not Path(p).is_absolute() else Path(p) for p in cfg.lines]
-    names = cfg.names or [p.stem for p in paths]
+    # plain paths are relative to the config's folder; GDAL dataset names (NETCDF:..., HDF5:..., /vsi...)
+    # are passed to GDAL as written
+    paths = [Path(p) if is_gdal_name(p) or Path(p).is_absolute() else (base / p).resolve() for p in cfg.lines]
+    names = cfg.names or [_default_name(str(p)) for p in paths]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise IngestError(f"line names must be unique; repeated: {dup}. Set 'names' in the mosaic config")
     lines = [
-        inspect_line(p, number=k + 1, name=names[k], wavelength_table=_table_for(cfg, p, base),
+        inspect_line(cfg.lines[k] if is_gdal_name(cfg.lines[k]) else p, number=k + 1, name=names[k],
+                     wavelength_table=_table_for(cfg, p, base),
                      wavelength_unit=cfg.wavelength_unit, nodata=cfg.nodata, scale=cfg.scale_factor,
                      offset=cfg.add_offset)
         for k, p in enumerate(paths)
