@@ -125,7 +125,8 @@ def cli_cluster(tmp_path_factory: pytest.TempPathFactory):
     work = tmp_path_factory.mktemp("cli-cluster")
     port = _free_port()
     address = f"tcp://127.0.0.1:{port}"
-    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(TESTS), os.environ.get("PYTHONPATH", "")])}
+    path = [str(TESTS), *filter(None, os.environ.get("PYTHONPATH", "").split(os.pathsep))]
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(path)}
     procs: list[subprocess.Popen] = []
     logs = [open(work / "scheduler.log", "w"), open(work / "worker.log", "w")]
     try:

@@ -14,12 +14,12 @@ end, and measures in the same run:
     both peaks (and the idle cluster's) and their ratio (4x / 1x).
 (c) resume: the wall time of a second invocation (a new process: start-up, cluster, the remaining
     tiles) after the first was killed with SIGKILL at about half its tiles, against an uninterrupted
-    invocation in a new process, on the 4x cube (``--resume-on 1x`` for the small one). Printed: both
-    times and their ratio (resumed / uninterrupted).
+    invocation in a new process (the memory run of (b)), on the 4x cube (``--resume-on 1x`` for the
+    small one). Printed: both times and their ratio (resumed / uninterrupted).
 
 Run::
 
-    .venv/bin/python tests/benchmarks/bench_engine.py            # full size (a few minutes on 2 cores)
+    .venv/bin/python tests/benchmarks/bench_engine.py            # full size (10-20 min on 2 cores)
     .venv/bin/python tests/benchmarks/bench_engine.py --quick    # 150 x 1024 x 1024, tiles of 256 px
     .venv/bin/python tests/benchmarks/bench_engine.py --bands 160 --size 2304 --tile 512 --dir /scratch
 
@@ -254,8 +254,9 @@ def _timed_child(run_dir: Path, src: Path, tile: int, workers: int) -> tuple[flo
     return wall, json.loads(out.strip().splitlines()[-1])
 
 
-def measure_resume(tmp: Path, src: Path, tile: int, workers: int, total: int) -> dict:
-    full_wall, full = _timed_child(tmp / "resume-full", src, tile, workers)
+def measure_resume(tmp: Path, src: Path, tile: int, workers: int, total: int, full_wall: float,
+                   full: dict) -> dict:
+    """Kill an invocation at half its tiles, time the next one; ``full``: an uninterrupted one."""
     run_dir = tmp / "resume-cut"
     proc = _start_child(run_dir, src, tile, workers)
     half = total // 2
@@ -344,8 +345,8 @@ def main(argv: list[str] | None = None) -> int:
               f"{te / td:.2f}", flush=True)
 
         # (b) memory: each cube in a fresh process with a fresh cluster ------------------------------
-        _w1, m1 = _timed_child(tmp / "memory-1x", src1, a.tile, a.workers)
-        _w4, m4 = _timed_child(tmp / "memory-4x", src4, a.tile, a.workers)
+        w1, m1 = _timed_child(tmp / "memory-1x", src1, a.tile, a.workers)
+        w4, m4 = _timed_child(tmp / "memory-4x", src4, a.tile, a.workers)
         for d in ("memory-1x", "memory-4x"):
             shutil.rmtree(tmp / d)
         print(f"(b) peak resident memory, all processes: 1x {_gb(m1['peak_rss'])} (idle cluster "
@@ -356,7 +357,9 @@ def main(argv: list[str] | None = None) -> int:
         # (c) resume --------------------------------------------------------------------------------
         src = src4 if a.resume_on == "4x" else src1
         total = ((2 if a.resume_on == "4x" else 1) * a.size // a.tile) ** 2
-        r = measure_resume(tmp, src, a.tile, a.workers, total)
+        # the uninterrupted invocation is the memory run of the same cube (a fresh process as well)
+        full = (w4, m4) if a.resume_on == "4x" else (w1, m1)
+        r = measure_resume(tmp, src, a.tile, a.workers, total, *full)
         print(f"(c) resume on the {a.resume_on} cube ({total} tiles): uninterrupted invocation {r['full_wall']:.1f} s "
               f"(execute {r['full_execute']:.1f} s); killed after {r['killed_after']:.1f} s with "
               f"{r['done_at_kill']} tiles recorded; second invocation {r['resumed_wall']:.1f} s (execute "
