@@ -559,9 +559,12 @@ def _active_set_loop(b, k_tab, c_tab, gram, sum_to_one, tol_add, max_rounds, a_o
         flag[i] = not settled
 
 
-def _kkt_loop(gram, b, a, nonnegative, sum_to_one, out):  # pragma: no cover - compiled by numba
-    """:func:`kkt_violation`, pixel by pixel (compiled by numba); writes out (n,)."""
+def _kkt_loop(gram, b, a, xx, nonnegative, sum_to_one, out, rss):  # pragma: no cover - compiled by numba
+    """:func:`kkt_violation`, pixel by pixel (compiled by numba); writes out (n,). With ``xx`` (n,)
+    = x'x given (non-empty), also the residual ``rss = x'x - 2 a'b + a'G a`` (n,) from the same
+    gradient, ``a'(G a - b) - a'b``."""
     p, n = b.shape
+    with_rss = xx.size == n
     gmax = np.abs(gram).max()
     g = np.empty(p)
     for i in range(n):
@@ -577,6 +580,13 @@ def _kkt_loop(gram, b, a, nonnegative, sum_to_one, out):  # pragma: no cover - c
             asum += abs(a[q, i])
             tot += a[q, i]
         scale = bmax + gmax * asum + 2.2250738585072014e-308
+        if with_rss:
+            ag = 0.0
+            ab = 0.0
+            for q in range(p):
+                ag += a[q, i] * g[q]
+                ab += a[q, i] * b[q, i]
+            rss[i] = xx[i] + ag - ab
         mu = 0.0
         if sum_to_one:
             cnt = 0
@@ -622,7 +632,8 @@ def kkt_violation_compiled(gram: np.ndarray, b: np.ndarray, a: np.ndarray, metho
     """:func:`kkt_violation` by a loop compiled with numba (the same conditions and scale)."""
     out = np.empty(b.shape[1])
     _compiled(_kkt_loop)(np.ascontiguousarray(gram, dtype=np.float64), np.ascontiguousarray(b, dtype=np.float64),
-                         np.ascontiguousarray(a, dtype=np.float64), method in NONNEGATIVE, method in SUM_TO_ONE, out)
+                         np.ascontiguousarray(a, dtype=np.float64), np.empty(0), method in NONNEGATIVE,
+                         method in SUM_TO_ONE, out, np.empty(0))
     return out
 
 
@@ -710,6 +721,12 @@ class Unmixer:
         method for the others (see the module notes). Flagged pixels either failed the KKT check
         or did not settle within ``max_rounds``.
         """
+        a, flag, _rss = self._solve_normal(b)
+        return a, flag
+
+    def _solve_normal(self, b: np.ndarray, xx: np.ndarray | None = None
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """:meth:`solve_normal`; the compiled engine also returns the residuals when ``xx`` is given."""
         b = np.ascontiguousarray(b, dtype=np.float64)
         p, n = b.shape
         if self.nonnegative and self.engine == "compiled":
@@ -717,11 +734,15 @@ class Unmixer:
             flag = np.empty(n, dtype=bool)
             _active_set_compiled(b, self._k_rows, self._c_rows, self.gram, self.sum_to_one,
                                  0.1 * self.kkt_rtol, self.max_rounds, a, flag)
-            flag |= ~(kkt_violation_compiled(self.gram, b, a, self.method) <= self.kkt_rtol)
-            return a, flag
+            viol = np.empty(n)
+            rss = np.empty(n) if xx is not None else np.empty(0)
+            _compiled(_kkt_loop)(self.gram, b, a, np.empty(0) if xx is None else np.ascontiguousarray(xx),
+                                 True, self.sum_to_one, viol, rss)
+            flag |= ~(viol <= self.kkt_rtol)
+            return a, flag, (rss if xx is not None else None)
         s = self._supports.solve_full(b)
         if not self.nonnegative:
-            return s, np.zeros(n, dtype=bool)
+            return s, np.zeros(n, dtype=bool), None
         done = np.all(s >= 0.0, axis=0)  # the full-support optimum is feasible: it is the optimum
         a = np.where(done, s, 0.0)
         todo = np.flatnonzero(~done)
@@ -750,7 +771,7 @@ class Unmixer:
                 flag[widx] = True
         viol = kkt_violation(self.gram, b, a, self.method)
         flag |= ~(viol <= self.kkt_rtol)
-        return a, flag
+        return a, flag, None
 
     def _round(self, b: np.ndarray, a: np.ndarray, mask: np.ndarray, scale: np.ndarray) -> np.ndarray:
         """One round of the active-set method on a working set (updated in place); returns finished."""
@@ -818,12 +839,16 @@ class Unmixer:
         okx = None if ok.all() else np.flatnonzero(ok)
         bs = b if okx is None else b[:, okx]
         xxs = xx if okx is None else xx[okx]
-        a, flag = self.solve_normal(bs)
+        a, flag, rss = self._solve_normal(bs, xxs)
         cols = np.arange(n) if okx is None else okx
         fb = np.flatnonzero(flag)
         for k in fb:
             a[:, k] = self._exact_pixel(np.asarray(x[:, cols[k]], dtype=np.float64))
-        rss = xxs - 2.0 * np.einsum("ij,ij->j", a, bs) + np.einsum("ij,ij->j", self.gram @ a, a)
+        if rss is None:
+            rss = xxs - 2.0 * np.einsum("ij,ij->j", a, bs) + np.einsum("ij,ij->j", self.gram @ a, a)
+        elif fb.size:
+            af, bf = a[:, fb], bs[:, fb]
+            rss[fb] = xxs[fb] - 2.0 * np.einsum("ij,ij->j", af, bf) + np.einsum("ij,ij->j", self.gram @ af, af)
         weak = np.flatnonzero(~(rss > 1e-6 * xxs))
         for lo in range(0, weak.size, self.chunk):
             w = weak[lo:lo + self.chunk]
