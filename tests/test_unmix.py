@@ -194,9 +194,10 @@ def test_kkt_violation_detects_non_optimal_points(rng):
 def test_engines_agree(rng):
     m, _a, x = random_problem(rng, n=3000)
     for method in ("nonnegative", "fully_constrained"):
-        a = Unmixer(m, method, engine="numpy").solve(x).abundances
-        b = Unmixer(m, method, engine="compiled").solve(x).abundances
-        np.testing.assert_allclose(a, b, atol=1e-12)
+        a = Unmixer(m, method, engine="numpy").solve(x)
+        b = Unmixer(m, method, engine="compiled").solve(x)
+        np.testing.assert_allclose(a.abundances, b.abundances, atol=1e-12)
+        np.testing.assert_allclose(a.rmse, b.rmse, rtol=1e-10)
 
 
 def test_fcls_pixel_is_exact(rng):
