@@ -98,6 +98,7 @@ __all__ = [
     "candidate_merge",
     "extraction_finalize",
     "extraction_fit",
+    "extraction_params",
     "extract_endmembers",
     "endmember_library",
     "endmember_points",

@@ -103,6 +103,7 @@ __all__ = [
     "check_endmembers",
     "kkt_violation",
     "kkt_violation_compiled",
+    "HAVE_NUMBA",
     "fcls_pixel",
     "unmix",
     "unmix_cube",
