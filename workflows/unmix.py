@@ -612,7 +612,14 @@ def _kkt_loop(gram, b, a, xx, nonnegative, sum_to_one, out, rss):  # pragma: no 
         out[i] = v
 
 
-HAVE_NUMBA = importlib.util.find_spec("numba") is not None
+def _have_numba() -> bool:
+    try:
+        return importlib.util.find_spec("numba") is not None
+    except (ImportError, ValueError):  # ValueError: a blocked or broken entry in sys.modules
+        return False
+
+
+HAVE_NUMBA = _have_numba()
 _COMPILED: dict = {}
 
 
