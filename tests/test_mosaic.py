@@ -379,6 +379,35 @@ def test_fit_is_the_same_for_any_tiling(tmp_path, rng, block):
         assert abs(n - rate * units) <= 5 * np.sqrt(units * rate * (1 - rate)) + 1 + units * 0.1 * (block > 1)
 
 
+def test_fit_tile_selection_loses_nothing(tmp_path, rng):
+    """Accumulating over the selected tiles only gives the same sums as over every tile."""
+    from tiles.grid import Tiling
+    from tiles.step import Block
+    from workflows.ingest import read_lines
+    from workflows.mosaic import accumulate_overlaps, select_overlap_tiles
+
+    paths, *_ = _brightness_lines(tmp_path, rng, 0.003)
+    step = build_mosaic_step(MosaicConfig(lines=[str(p) for p in paths], sample_size=200, seed=2))
+    tiling = Tiling(step.grid, 16, step.fit.halo)
+    tiles = list(tiling)
+    chosen = select_overlap_tiles(tiles, step.params)
+    assert 0 < len(chosen) < len(tiles)
+
+    def acc(ts):
+        total = None
+        for t in ts:
+            sub = step.grid.window(t.padded)
+            data, valid = read_lines(sub, t, step.params, step.static)
+            total = merge_overlaps(total, accumulate_overlaps(Block(data, valid, t, sub, step.params,
+                                                                    step.static, {})))
+        return total
+
+    a, b = acc(tiles), acc(chosen)
+    assert a.keys() == b.keys() == {"1-2", "2-3"}
+    for k in a:
+        np.testing.assert_array_equal(a[k], b[k])
+
+
 def test_sample_mask_depends_only_on_global_pixel(rng):
     rows, cols = np.arange(100, 160), np.arange(30, 110)
     whole = sample_mask(rows, cols, 0.2, 5)

@@ -149,6 +149,7 @@ class MosaicPlan:
     segments: dict[int, np.ndarray]
     overlaps: list[dict]
     notes: list[str] = field(default_factory=list)
+    overlap_shapes: dict[str, str] = field(default_factory=dict)
 
     @property
     def band_names(self) -> tuple[str, ...]:
@@ -273,13 +274,18 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
             "xscale": xs, "yscale": ys, "bbox_px": bbox,
         })
     overlaps = []
+    shapes: dict[str, str] = {}
     for i in range(len(lines)):
         for j in range(i + 1, len(lines)):
-            a = fps_px[i + 1].intersection(fps_px[j + 1]).area / yscale
+            inter = fps_px[i + 1].intersection(fps_px[j + 1])
+            a = inter.area / yscale
             if a >= 1.0:
                 overlaps.append({"pair": [i + 1, j + 1], "pixels": int(round(a)),
                                  "names": [lines[i].name, lines[j].name]})
-    return MosaicPlan(cfg, lines, grid, reference, wl, fw, line_params, spectral, segments, overlaps, notes)
+                # where the fit must look (grown by a pixel: the footprints are simplified by half a pixel)
+                shapes[f"{i + 1}-{j + 1}"] = inter.buffer(1.0, join_style="mitre").simplify(0.5).wkt
+    return MosaicPlan(cfg, lines, grid, reference, wl, fw, line_params, spectral, segments, overlaps, notes,
+                      overlap_shapes=shapes)
 
 
 def _scale_ratio(ln: LineInfo, grid: Grid, same_crs: bool) -> tuple[float, float]:
@@ -342,6 +348,7 @@ def mosaic_step(plan: MosaicPlan) -> Step:
         "sample_rates": rates,
         "seed": int(cfg.seed),
         "match_block": int(cfg.match_block),
+        "overlap_shapes": plan.overlap_shapes,
         "grid_shape": [plan.grid.rows, plan.grid.cols],
     }
     static: dict[str, Any] = {f"segments_{k}": v for k, v in plan.segments.items()}
@@ -730,13 +737,20 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[st
 
 
 def select_overlap_tiles(tiles: Sequence[Tile], params: Mapping[str, Any]) -> list[Tile]:
-    """The tiles whose window meets the footprint boxes of both lines of at least one overlapping pair."""
-    boxes = {int(ln["number"]): ln["bbox_px"] for ln in params["lines"]}
+    """The tiles whose core meets the overlap of at least one pair of lines (the fit reads only those).
+
+    Overlaps are the intersections of the footprints in the grid's pixel coordinates, grown by one
+    pixel; a sampled block belongs to the tile holding its first pixel, and a block lies wholly in an
+    overlap, so no tile left out could contribute.
+    """
+    import shapely
+
+    yscale = float(params.get("yscale", 1.0))
+    shapes = [shapely.from_wkt(w) for w in (params.get("overlap_shapes") or {}).values()]
     out = []
     for t in tiles:
         w = t.core
-        meets = {k for k, (c0, r0, c1, r1) in boxes.items()
-                 if c0 < w.col + w.cols and c1 > w.col and r0 < w.row + w.rows and r1 > w.row}
-        if any(i in meets and j in meets for i, j in params["pairs"]):
+        box = shapely.box(w.col, w.row * yscale, w.col + w.cols, (w.row + w.rows) * yscale)
+        if any(g.intersects(box) for g in shapes):
             out.append(t)
     return out
