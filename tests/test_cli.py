@@ -213,3 +213,27 @@ def test_shipped_configs_and_profiles_validate(tmp_path):
                                    "mosaic": {"lines": ["x.tif"]}}))
     cfg, _ = load_run_config(run)
     assert cfg.execution.workers == 2 and cfg.execution.memory_limit == "3GiB"
+
+
+def test_library_unmixing_on_components_equals_unmixing_on_reflectance(tmp_path, capsys):
+    """Sum-to-one unmixing is invariant to an orthonormal rotation about the mean (PCA with all
+    components), so library endmembers transformed like the cube give the reflectance-space answer
+    (least squares algebra; common practice)."""
+    lib = tmp_path / "lib.csv"
+    wl = np.linspace(400, 2500, 60)
+    a = 0.15 + 0.1 * np.sin(wl / 250.0)
+    b = 0.35 + 0.05 * np.cos(wl / 400.0)
+    c = 0.25 + 0.2 * (wl - 400) / 2100
+    lib.write_text("wavelength_nm,a,b,c\n" + "\n".join(f"{w},{x},{y},{z}" for w, x, y, z in zip(wl, a, b, c)))
+    unmix = {"method": "sum_to_one", "endmembers": {"library": "lib.csv"}}
+    cfg = _config(tmp_path, mnf={"method": "pca"}, unmix={**unmix, "input": "pca/components"})
+    assert main(["run", str(cfg), "--plain"]) == 0
+    cfg2 = _config(tmp_path, run_dir="run2", mnf={"method": "pca"}, unmix={**unmix, "input": "mosaic/reflectance"})
+    assert main(["run", str(cfg2), "--plain"]) == 0
+    from tiles.testing import read_output
+
+    on_pc = read_output(tmp_path / "run", "unmix/abundance")
+    on_refl = read_output(tmp_path / "run2", "unmix/abundance")
+    ok = np.isfinite(on_refl)
+    assert ok.mean() > 0.9
+    np.testing.assert_allclose(on_pc[ok], on_refl[ok], atol=2e-4)
