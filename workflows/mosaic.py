@@ -571,10 +571,12 @@ def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
     if R0 + nr * b > pad.row + pad.rows or C0 + nc * b > pad.col + pad.cols:
         raise ValueError(f"the fit's halo is too small for blocks of {b} px on {block.tile.name}")
     r0, c0 = R0 - pad.row, C0 - pad.col
-    ok = {k: block_means(np.all(np.isfinite(v), axis=0).astype(np.float32), r0, c0, nr, nc, b) == 1.0
-          for k, v in lines.items()}
+    # a line's pixel has data where its edge distance is finite (the reader's NaN marks the rest)
+    ok = {k: block_means(np.isfinite(block.data[f"edge_{k}"][0]).astype(np.float32), r0, c0, nr, nc, b) == 1.0
+          for k in lines}
     brow = np.arange(R0 // b, R0 // b + nr)
     bcol = np.arange(C0 // b, C0 // b + nc)
+    off = np.arange(b)
     for i, j in p["pairs"]:
         if i not in lines or j not in lines:
             continue
@@ -584,8 +586,11 @@ def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
         both &= sample_mask(brow, bcol, float(p["sample_rates"][f"{i}-{j}"]), int(p["seed"]) + 7919 * i + j)
         if not both.any():
             continue
-        xi = block_means(lines[i], r0, c0, nr, nc, b)[:, both]
-        xj = block_means(lines[j], r0, c0, nr, nc, b)[:, both]
+        bi, bj = np.nonzero(both)  # gather only the sampled blocks: (bands, n, b, b) -> means (bands, n)
+        rr = (r0 + bi * b)[:, None, None] + off[None, :, None]
+        cc = (c0 + bj * b)[:, None, None] + off[None, None, :]
+        xi = lines[i][:, rr, cc].mean(axis=(2, 3), dtype=np.float64)
+        xj = lines[j][:, rr, cc].mean(axis=(2, 3), dtype=np.float64)
         acc[f"{i}-{j}"] = pair_sums(xi, xj)
     return acc
 
