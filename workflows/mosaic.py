@@ -282,8 +282,10 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
             if a >= 1.0:
                 overlaps.append({"pair": [i + 1, j + 1], "pixels": int(round(a)),
                                  "names": [lines[i].name, lines[j].name]})
-                # where the fit must look (grown by a pixel: the footprints are simplified by half a pixel)
-                shapes[f"{i + 1}-{j + 1}"] = inter.buffer(1.0, join_style="mitre").simplify(0.5).wkt
+                # where the fit must look, grown by a pixel plus the footprints' simplification
+                # (half a line pixel each, in grid pixels)
+                grow = 1.0 + 0.5 * (max(lines[i].res) + max(lines[j].res)) / grid.res[0]
+                shapes[f"{i + 1}-{j + 1}"] = inter.buffer(grow, join_style="mitre").wkt
     return MosaicPlan(cfg, lines, grid, reference, wl, fw, line_params, spectral, segments, overlaps, notes,
                       overlap_shapes=shapes)
 
