@@ -23,7 +23,7 @@ from .executors import Executor, LocalExecutor
 from .grid import Grid, Tiling
 from .ledger import Ledger
 from .lock import RunLock
-from .step import InputMeta, OutputSpec, Step, StepError, canonical_json
+from .step import InputMeta, OutputSpec, Step, canonical_json
 from .store import StoreLayout, TileStore, create_store
 from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 

@@ -13,7 +13,7 @@ from typing import Any, Callable, Literal, Mapping, Protocol
 
 import numpy as np
 
-from .grid import Grid, Tile, Window
+from .grid import Grid, Tile
 
 __all__ = ["OutputSpec", "InputMeta", "Block", "Fit", "Step", "Model", "StepError", "canonical_json"]
 

@@ -21,7 +21,7 @@ from typing import Mapping
 
 import numpy as np
 import zarr
-from zarr.codecs import BytesCodec, ZstdCodec
+from zarr.codecs import ZstdCodec
 
 from .grid import Grid, Window
 from .step import OutputSpec

@@ -51,6 +51,7 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from tiles.samples import in_core
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from .accuracy import regression_metrics
@@ -417,15 +418,9 @@ def _select_bands(meta: InputMeta, params: Mapping[str, Any], where: str) -> tup
 
 
 def _accumulate(block: Block) -> tuple[np.ndarray, np.ndarray]:
-    rows = np.asarray(block.static["sample_rows"])
-    cols = np.asarray(block.static["sample_cols"])
-    core, pad = block.tile.core, block.tile.padded
-    inside = ((rows >= core.row) & (rows < core.row + core.rows)
-              & (cols >= core.col) & (cols < core.col + core.cols))
-    idx = np.flatnonzero(inside)
-    data = block.data[_ALIAS]
-    X = data[:, rows[idx] - pad.row, cols[idx] - pad.col].T.astype(np.float64)
-    X[~block.valid[rows[idx] - pad.row, cols[idx] - pad.col]] = np.nan
+    idx, rr, cc = in_core(block.tile, np.asarray(block.static["sample_rows"]), np.asarray(block.static["sample_cols"]))
+    X = block.data[_ALIAS][:, rr, cc].T.astype(np.float64)
+    X[~block.valid[rr, cc]] = np.nan
     return idx.astype(np.int64), X
 
 

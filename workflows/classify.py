@@ -71,6 +71,7 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from .continuum import continuum_removed, range_mask
@@ -531,41 +532,9 @@ def _band_names(names: Sequence[str]) -> tuple[str, ...]:
 
 
 # shared fit: references and training samples ----------------------------------------------------
-def _select_none(tiles, params):
-    return []
-
-
-def _select_sample_tiles(tiles, params, *, rows: np.ndarray, cols: np.ndarray):
-    out = []
-    for t in tiles:
-        w = t.core
-        if np.any((rows >= w.row) & (rows < w.row + w.rows) & (cols >= w.col) & (cols < w.col + w.cols)):
-            out.append(t)
-    return out
-
-
 def _accumulate_samples(block: Block) -> dict:
     """Spectra at the sample pixels inside this tile's core (each sample counted once)."""
-    st = block.static
-    rows, cols = np.asarray(st["samples.row"]), np.asarray(st["samples.col"])
-    core, pad = block.tile.core, block.tile.padded
-    sel = np.flatnonzero((rows >= core.row) & (rows < core.row + core.rows)
-                         & (cols >= core.col) & (cols < core.col + core.cols))
-    x = block.data["x"]
-    rr, cc = rows[sel] - pad.row, cols[sel] - pad.col
-    X = x[:, rr, cc].T
-    ok = block.valid[rr, cc] & np.all(np.isfinite(X), axis=1)
-    return {"idx": sel[ok].astype(np.int64), "X": np.ascontiguousarray(X[ok], dtype=np.float32),
-            "bad": sel[~ok].astype(np.int64)}
-
-
-def _merge_samples(a: dict | None, b: dict | None) -> dict | None:
-    if a is None:
-        return b
-    if b is None:
-        return a
-    return {"idx": np.concatenate([a["idx"], b["idx"]]), "X": np.concatenate([a["X"], b["X"]]),
-            "bad": np.concatenate([a["bad"], b["bad"]])}
+    return gather(block, "x", block.static["samples.row"], block.static["samples.col"], np.float32)
 
 
 def _gathered(acc: dict | None, table: SampleTable, n_bands: int, step: str) -> tuple[np.ndarray, np.ndarray, dict]:
@@ -761,7 +730,7 @@ def _reference_setup(library: SpectralLibrary | None, samples: SampleTable | Non
         static = _library_static(library)
         libd = {"names": list(library.names), "wavelengths": library.wavelengths, "spectra": library.spectra,
                 "source": library.source}
-        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples, select=_select_none,
+        fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered, select=select_no_tiles,
                   finalize=functools.partial(_finalize_references, library=libd, table=None))
         return params, static, fit, libd
     assert samples is not None
@@ -770,8 +739,8 @@ def _reference_setup(library: SpectralLibrary | None, samples: SampleTable | Non
     names = list(samples.class_names)
     params = {"names": names, "class_names": names, "ref_class": list(range(1, len(names) + 1)), "colors": None}
     static = samples.to_static()
-    fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples,
-              select=functools.partial(_select_sample_tiles, rows=samples.row, cols=samples.col),
+    fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered,
+              select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_references, library=None, table=samples))
     return params, static, fit, {}
 
@@ -861,8 +830,8 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable,
               "C": [float(c) for c in C], "gamma": [g if isinstance(g, str) else float(g) for g in gamma],
               "folds": int(folds), "scoring": scoring, "probability": bool(probability), "seed": int(seed),
               "max_per_class": max_per_class, "chunk": int(chunk)}
-    fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples,
-              select=functools.partial(_select_sample_tiles, rows=samples.row, cols=samples.col),
+    fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered,
+              select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_svm, table=samples))
     return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref}, params=params,
                 fit=fit, static=samples.to_static())

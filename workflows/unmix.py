@@ -85,6 +85,7 @@ import numpy as np
 import scipy.optimize
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
 from . import endmembers as _em
@@ -957,35 +958,9 @@ X = "x"  # input alias of the data to unmix
 _UNMIXERS: "OrderedDict[str, Unmixer]" = OrderedDict()
 
 
-def _select_none(tiles, params):
-    return []
-
-
-def _select_sample_tiles(tiles, params, *, rows: np.ndarray, cols: np.ndarray):
-    out = []
-    for t in tiles:
-        w = t.core
-        if np.any((rows >= w.row) & (rows < w.row + w.rows) & (cols >= w.col) & (cols < w.col + w.cols)):
-            out.append(t)
-    return out
-
-
 def _accumulate_samples(block: Block) -> dict:
     """Spectra of the input at the sample pixels inside this tile's core (each sample counted once)."""
-    rows, cols = np.asarray(block.static["samples.row"]), np.asarray(block.static["samples.col"])
-    core, pad = block.tile.core, block.tile.padded
-    sel = np.flatnonzero((rows >= core.row) & (rows < core.row + core.rows)
-                         & (cols >= core.col) & (cols < core.col + core.cols))
-    x = block.data[X][:, rows[sel] - pad.row, cols[sel] - pad.col].T
-    ok = block.valid[rows[sel] - pad.row, cols[sel] - pad.col] & np.all(np.isfinite(x), axis=1)
-    return {"idx": sel[ok].astype(np.int64), "X": np.asarray(x[ok], dtype=np.float64),
-            "bad": sel[~ok].astype(np.int64)}
-
-
-def _merge_samples(a: dict | None, b: dict | None) -> dict | None:
-    if a is None or b is None:
-        return a if b is None else b
-    return {k: np.concatenate([a[k], b[k]]) for k in ("idx", "X", "bad")}
+    return gather(block, X, block.static["samples.row"], block.static["samples.col"], np.float64)
 
 
 def _image_block(block: Block) -> Block:
@@ -1211,15 +1186,15 @@ def unmix_step(name: str, input_ref: str, *, method: str = "fully_constrained",
         libd = _library_dict(library)
         static.update({"library.wavelengths": libd["wavelengths"], "library.spectra": libd["spectra"],
                        "library.names": libd["names"], "library.source": libd["source"]})
-        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples, select=_select_none,
+        fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered, select=select_no_tiles,
                   finalize=functools.partial(_finalize, library=libd))
     elif source == "samples":
         assert samples is not None
         if len(samples) == 0:
             raise UnmixError(f"step {name!r}: the ground reference has no sample on the grid")
         static.update(samples.to_static())
-        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples,
-                  select=functools.partial(_select_sample_tiles, rows=samples.row, cols=samples.col),
+        fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered,
+                  select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
                   finalize=functools.partial(_finalize, table=samples))
     elif source == "image":
         params["extraction"] = _em.extraction_params(**dict(image))
@@ -1234,7 +1209,7 @@ def unmix_step(name: str, input_ref: str, *, method: str = "fully_constrained",
         if len(nm) != m.shape[1]:
             raise UnmixError(f"step {name!r}: {len(nm)} names for {m.shape[1]} endmembers")
         static.update({"endmembers": m, "endmember_names": nm})
-        fit = Fit(accumulate=_accumulate_samples, merge=_merge_samples, select=_select_none,
+        fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered, select=select_no_tiles,
                   finalize=functools.partial(_finalize, given={"endmembers": m, "names": nm}))
     return Step(name=name, kernel=_unmix_kernel, outputs=_unmix_outputs, inputs=inputs, params=params,
                 fit=fit, static=static)
