@@ -6,8 +6,10 @@ end, and measures in the same run:
 
 (a) overhead: a pass-through step (``decode=False``, the kernel returns its input) over the cube with
     the Dask executor on ``--workers`` worker processes, against ``dask.array.from_zarr(...).to_zarr(...)``
-    into the same layout and codec, on the same cluster; best of ``--repeat`` alternating runs each.
-    Printed: both times, throughput, and their ratio (engine / dask).
+    into the same layout and codec, on the same cluster; ``--repeat`` repetitions in alternating order,
+    each run after an ``os.sync()`` (the run before it leaves gigabytes of dirty pages).
+    Printed: the median times, throughput, and their ratio (engine / dask); also the ratio of the best
+    times and that of the CPU time used by all processes (steadier than wall time on a busy machine).
 (b) memory: peak resident memory summed over a process and all its children (the Dask nanny and
     worker processes), sampled every 50 ms by a thread with psutil, for the pass-through over a cube
     of 4x the pixels against the 1x cube, each run in a fresh process with a fresh cluster. Printed:
@@ -188,6 +190,21 @@ class PeakRSS:
         self._thread.join()
 
 
+def cpu_seconds() -> float:
+    """User + system CPU time of this process and its live descendants (the cluster), psutil."""
+    import psutil
+
+    me = psutil.Process()
+    tot = 0.0
+    for p in [me, *me.children(recursive=True)]:
+        try:
+            t = p.cpu_times()
+            tot += t.user + t.system
+        except (psutil.NoSuchProcess, psutil.AccessDenied):
+            pass
+    return tot
+
+
 def _cluster(workers: int):
     from tiles.executors import DaskExecutor
 
@@ -292,7 +309,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--size", type=int, default=2048, help="rows = cols of the 1x cube (px)")
     ap.add_argument("--tile", type=int, default=512)
     ap.add_argument("--workers", type=int, default=2)
-    ap.add_argument("--repeat", type=int, default=2, help="alternating repetitions of (a)")
+    ap.add_argument("--repeat", type=int, default=4, help="repetitions of (a), in alternating order (even)")
     ap.add_argument("--resume-on", choices=("1x", "4x"), default="4x")
     ap.add_argument("--quick", action="store_true", help="150 bands x 1024 x 1024, tiles of 256 px")
     ap.add_argument("--dir", type=Path, default=None, help="parent folder of the temporary folder")
@@ -324,25 +341,36 @@ def main(argv: list[str] | None = None) -> int:
             t = build_cube(src1, a.size, a.bands, a.tile, ex)
             print(f"built the 1x cube in {t:.1f} s ({nbytes / t / 1e9:.2f} GB/s raw)", flush=True)
             engine_times, dask_times = [], []
-            for k in range(a.repeat):
-                te, res = run_engine(tmp / f"engine-{k}", src1, ex, a.tile)
-                if not res.ok:
-                    raise RuntimeError(f"the pass-through run failed: {res.steps[0].failed}")
-                _check_copy(src1, tmp / f"engine-{k}" / "stores" / "copy.zarr", rng)
-                td = run_dask_copy(src1, tmp / f"dask-{k}.zarr", a.tile)
+            engine_cpu, dask_cpu = [], []
+            for k in range(a.repeat):  # alternate the order, so that neither side always goes first
+                for side in (("engine", "dask") if k % 2 == 0 else ("dask", "engine")):
+                    os.sync()  # the previous run's dirty pages are not flushed on this run's time
+                    c0 = cpu_seconds()
+                    if side == "engine":
+                        te, res = run_engine(tmp / f"engine-{k}", src1, ex, a.tile)
+                        engine_cpu.append(cpu_seconds() - c0)
+                        if not res.ok:
+                            raise RuntimeError(f"the pass-through run failed: {res.steps[0].failed}")
+                        _check_copy(src1, tmp / f"engine-{k}" / "stores" / "copy.zarr", rng)
+                        shutil.rmtree(tmp / f"engine-{k}")
+                    else:
+                        td = run_dask_copy(src1, tmp / f"dask-{k}.zarr", a.tile)
+                        dask_cpu.append(cpu_seconds() - c0)
+                        shutil.rmtree(tmp / f"dask-{k}.zarr")
                 engine_times.append(te)
                 dask_times.append(td)
-                print(f"  repetition {k + 1}: engine {te:.1f} s, dask copy {td:.1f} s", flush=True)
-                shutil.rmtree(tmp / f"engine-{k}")
-                shutil.rmtree(tmp / f"dask-{k}.zarr")
+                print(f"  repetition {k + 1}: engine {te:.1f} s ({engine_cpu[-1]:.1f} CPU s), dask copy {td:.1f} s "
+                      f"({dask_cpu[-1]:.1f} CPU s)", flush=True)
             t = build_cube(src4, 2 * a.size, a.bands, a.tile, ex)
             print(f"built the 4x cube in {t:.1f} s ({4 * nbytes / t / 1e9:.2f} GB/s raw)", flush=True)
         finally:
             ex.close()
-        te, td = min(engine_times), min(dask_times)
-        print(f"(a) pass-through over {_gb(nbytes)}: engine {te:.1f} s ({nbytes / te / 1e9:.2f} GB/s), "
-              f"dask from_zarr/to_zarr {td:.1f} s ({nbytes / td / 1e9:.2f} GB/s); ratio engine/dask = "
-              f"{te / td:.2f}", flush=True)
+        te, td = float(np.median(engine_times)), float(np.median(dask_times))
+        print(f"(a) pass-through over {_gb(nbytes)}, median of {a.repeat}: engine {te:.1f} s "
+              f"({nbytes / te / 1e9:.2f} GB/s), dask from_zarr/to_zarr {td:.1f} s ({nbytes / td / 1e9:.2f} GB/s); "
+              f"ratio engine/dask = {te / td:.2f} (of the best times: {min(engine_times) / min(dask_times):.2f}; "
+              f"of the median CPU seconds of all processes: {np.median(engine_cpu) / np.median(dask_cpu):.2f})",
+              flush=True)
 
         # (b) memory: each cube in a fresh process with a fresh cluster ------------------------------
         w1, m1 = _timed_child(tmp / "memory-1x", src1, a.tile, a.workers)
