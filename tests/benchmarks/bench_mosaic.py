@@ -16,7 +16,9 @@ over 2200 x 2200 pixels, a cube of 1.65 GB as int16 with every band kept. Then, 
    whole process tree (client and workers, sampled every 0.1 s) to see whether it grows with the
    number of lines.
 
-It prints the measured ratio (mosaic time / sum of the warps) and the peak memory per line count.
+It prints the measured ratios (mosaic / sum of the warps), in wall time and in CPU time (the
+workers' CPU against the baseline's; on a machine shared with other work the CPU ratio is the steadier
+figure), and the peak memory per line count.
 """
 from __future__ import annotations
 
@@ -33,7 +35,11 @@ import numpy as np
 
 
 class PeakMemory:
-    """Peak total RSS of this process and all its children, sampled in a thread."""
+    """Peak total RSS of this process and all its children, and their CPU time, sampled in a thread.
+
+    ``child_cpu`` is the CPU time (user + system) the child processes (Dask nannies and workers)
+    used while the meter ran: their last sample minus their first (0 for a process born inside).
+    """
 
     def __init__(self, interval: float = 0.1):
         import psutil
@@ -42,40 +48,57 @@ class PeakMemory:
         self.interval = interval
         self.peak = 0
         self.peak_worker = 0
+        self._cpu_first: dict[int, float] = {}
+        self._cpu_last: dict[int, float] = {}
         self._stop = threading.Event()
         self._t = threading.Thread(target=self._run, daemon=True)
 
-    def _run(self) -> None:
+    @property
+    def child_cpu(self) -> float:
+        return sum(self._cpu_last[p] - self._cpu_first.get(p, 0.0) for p in self._cpu_last)
+
+    def _sample(self, first: bool = False) -> None:
         import psutil
 
-        while not self._stop.is_set():
-            total, worst = 0, 0
+        total, worst = 0, 0
+        try:
+            children = self.proc.children(recursive=True)
+        except psutil.Error:
+            children = []
+        for p in [self.proc, *children]:
             try:
-                procs = [self.proc, *self.proc.children(recursive=True)]
-                for p in procs:
-                    try:
-                        rss = p.memory_info().rss
-                    except psutil.Error:
-                        continue
-                    total += rss
-                    if p.pid != self.proc.pid:
-                        worst = max(worst, rss)
-            except Exception:  # noqa: BLE001 - a process may vanish while sampled
-                pass
-            self.peak = max(self.peak, total)
-            self.peak_worker = max(self.peak_worker, worst)
+                rss = p.memory_info().rss
+                if p.pid != self.proc.pid:
+                    t = p.cpu_times()
+                    cpu = t.user + t.system
+                    if first:
+                        self._cpu_first[p.pid] = cpu
+                    self._cpu_last[p.pid] = cpu
+            except psutil.Error:  # a process may vanish while sampled
+                continue
+            total += rss
+            if p.pid != self.proc.pid:
+                worst = max(worst, rss)
+        self.peak = max(self.peak, total)
+        self.peak_worker = max(self.peak_worker, worst)
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            self._sample()
             self._stop.wait(self.interval)
 
     def __enter__(self) -> "PeakMemory":
+        self._sample(first=True)
         self._t.start()
         return self
 
     def __exit__(self, *exc) -> None:
         self._stop.set()
         self._t.join()
+        self._sample()
 
 
-def baseline(step, lines: list[dict]) -> tuple[float, list[float]]:
+def baseline(step, lines: list[dict]) -> tuple[float, list[float], float]:
     """Each line warped whole onto the step's grid with rasterio (nearest, exact transformer)."""
     import rasterio
     from rasterio.enums import Resampling
@@ -83,6 +106,7 @@ def baseline(step, lines: list[dict]) -> tuple[float, list[float]]:
 
     grid = step.grid
     times = []
+    cpu0 = time.process_time()
     for ln in lines:
         t0 = time.perf_counter()
         with rasterio.open(ln["path"]) as ds:
@@ -92,10 +116,10 @@ def baseline(step, lines: list[dict]) -> tuple[float, list[float]]:
                       tolerance=0.0, num_threads=1)
         del dst
         times.append(time.perf_counter() - t0)
-    return sum(times), times
+    return sum(times), times, time.process_time() - cpu0
 
 
-def run_mosaic(step, run_dir: Path, workers: int, tile: int) -> tuple[float, int, int, bool]:
+def run_mosaic(step, run_dir: Path, workers: int, tile: int) -> tuple[float, int, int, bool, float]:
     from tiles.executors import make_executor
     from tiles.run import Run, RunOptions
 
@@ -109,7 +133,7 @@ def run_mosaic(step, run_dir: Path, workers: int, tile: int) -> tuple[float, int
             dt = time.perf_counter() - t0
     finally:
         ex.close()
-    return dt, mem.peak, mem.peak_worker, result.ok
+    return dt, mem.peak, mem.peak_worker, result.ok, mem.child_cpu
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -147,26 +171,32 @@ def main(argv: list[str] | None = None) -> int:
     # baseline and mosaic alternate, --repeat times; the fastest of each is the least disturbed by
     # other work on the machine, and the ratio uses those
     base_best, mos_best = float("inf"), {False: float("inf"), True: float("inf")}
+    base_cpu_best, mos_cpu_best = float("inf"), {False: float("inf"), True: float("inf")}
     for rep in range(args.repeat):
-        base_total, base_each = baseline(full, full.params["lines"])
-        base_best = min(base_best, base_total)
-        print(f"[{rep + 1}] baseline, plain whole-line warps: {base_total:.1f} s "
+        base_total, base_each, base_cpu = baseline(full, full.params["lines"])
+        base_best, base_cpu_best = min(base_best, base_total), min(base_cpu_best, base_cpu)
+        print(f"[{rep + 1}] baseline, plain whole-line warps: {base_total:.1f} s, {base_cpu:.1f} CPU s "
               f"({', '.join(f'{t:.1f}' for t in base_each)})")
         for matching in (False, True):
-            dt, peak, peak_w, ok = run_mosaic(step_for(len(lines), matching), args.work / "run", args.workers,
-                                              args.tile)
+            dt, peak, peak_w, ok, cpu = run_mosaic(step_for(len(lines), matching), args.work / "run",
+                                                   args.workers, args.tile)
             mos_best[matching] = min(mos_best[matching], dt)
+            mos_cpu_best[matching] = min(mos_cpu_best[matching], cpu)
             print(f"[{rep + 1}] mosaic ({args.workers} workers, tile {args.tile}, brightness matching "
-                  f"{'on' if matching else 'off'}): {dt:.1f} s, ok={ok}, "
+                  f"{'on' if matching else 'off'}): {dt:.1f} s, workers' CPU {cpu:.1f} s, ok={ok}, "
                   f"peak RSS {peak / 2**30:.2f} GiB (largest worker {peak_w / 2**30:.2f} GiB)")
     for matching in (False, True):
-        print(f"ratio, mosaic with brightness matching {'on' if matching else 'off'} / sum of the warps "
-              f"(fastest of {args.repeat}): {mos_best[matching]:.1f} s / {base_best:.1f} s = "
-              f"{mos_best[matching] / base_best:.2f}")
+        on = "on" if matching else "off"
+        print(f"ratio, mosaic with brightness matching {on} / sum of the warps (fastest of {args.repeat}): "
+              f"wall {mos_best[matching]:.1f} s / {base_best:.1f} s = {mos_best[matching] / base_best:.2f}; "
+              f"CPU {mos_cpu_best[matching]:.1f} s / {base_cpu_best:.1f} s = "
+              f"{mos_cpu_best[matching] / base_cpu_best:.2f}, i.e. about "
+              f"{mos_cpu_best[matching] / args.workers / base_cpu_best:.2f} in wall time on "
+              f"{args.workers} otherwise idle cores")
     print("peak memory against the number of lines (matching off):")
     for n in range(3, len(lines) + 1):
         step = step_for(n, False)
-        dt, peak, peak_w, ok = run_mosaic(step, args.work / "run", args.workers, args.tile)
+        dt, peak, peak_w, ok, _cpu = run_mosaic(step, args.work / "run", args.workers, args.tile)
         gb = step.grid.rows * step.grid.cols * nb * 2 / 1e9
         print(f"  {n} lines: cube {gb:.2f} GB, {dt:.1f} s, peak RSS {peak / 2**30:.2f} GiB, "
               f"largest worker {peak_w / 2**30:.2f} GiB, ok={ok}")
