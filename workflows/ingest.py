@@ -36,6 +36,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 
 from tiles.grid import Grid, Tile, Window
+from tiles.step import StepError
 
 __all__ = [
     "IngestError",
@@ -65,8 +66,12 @@ _DESC_UNIT_RE = re.compile(
 _DESC_NUMBER_RE = re.compile(r"^\s*([0-9]+(?:\.[0-9]*)?)\s*$")
 
 
-class IngestError(ValueError):
-    """A flight line or its metadata cannot be used; the message names the file (and band) at fault."""
+class IngestError(StepError):
+    """A flight line or its metadata cannot be used; the message names the file (and band) at fault.
+
+    A :class:`~tiles.step.StepError` (a ``ValueError``): the mosaic step cannot be declared from
+    these inputs, and nothing has run.
+    """
 
 
 # ---------------------------------------------------------------------------------------------
