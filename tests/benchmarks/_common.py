@@ -45,6 +45,8 @@ __all__ = [
     "read_pass_tiles",
     "write_pass",
     "PeakRSS",
+    "CpuMeter",
+    "cpu_snapshot",
     "step_timings",
     "best_of",
     "tile_seconds",
@@ -262,14 +264,46 @@ def write_pass(out: Path, grid, bands: int, tile: int, executor) -> float:
     return time.perf_counter() - t0
 
 
-# memory -------------------------------------------------------------------------------------------
+# memory and CPU time ------------------------------------------------------------------------------
+def cpu_snapshot() -> dict[int, float]:
+    """User + system CPU seconds of this process and each of its descendants, by pid."""
+    import psutil
+
+    me = psutil.Process()
+    out = {}
+    for p in [me, *me.children(recursive=True)]:
+        try:
+            t = p.cpu_times()
+        except psutil.Error:
+            continue
+        out[p.pid] = t.user + t.system
+    return out
+
+
+class CpuMeter:
+    """CPU seconds used by this process and its descendants inside a ``with`` block.
+
+    Less disturbed by other jobs on the machine than wall time: it counts the work done, not the
+    waiting for a core. Processes that end inside the block are not counted.
+    """
+
+    def __enter__(self) -> "CpuMeter":
+        self._start = cpu_snapshot()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        end = cpu_snapshot()
+        self.seconds = sum(v - self._start.get(pid, 0.0) for pid, v in end.items())
+
+
 class PeakRSS:
     """Peak resident memory summed over a process and all its descendants, sampled by a thread.
 
     ``pid`` defaults to this process. ``peak`` is the largest sum seen; ``baseline`` the sum when
     sampling started; ``peak_max_process`` the largest single process seen; ``sum_of_peaks`` the
     sum over processes of each one's own largest sample (an upper bound of the true peak sum, which
-    sampling may miss between two samples).
+    sampling may miss between two samples); ``cpu_seconds`` the CPU time (user + system) the
+    processes used while sampled.
     """
 
     def __init__(self, pid: int | None = None, interval: float = 0.05):
@@ -282,6 +316,8 @@ class PeakRSS:
         self.peak_max_process = 0
         self.baseline = 0
         self._per_pid: dict[int, int] = {}
+        self._cpu_first: dict[int, float] = {}
+        self._cpu_last: dict[int, float] = {}
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, daemon=True)
 
@@ -294,8 +330,11 @@ class PeakRSS:
         for p in procs:
             try:
                 rss = p.memory_info().rss
+                t = p.cpu_times()
             except self._psutil.Error:
                 continue
+            self._cpu_first.setdefault(p.pid, t.user + t.system)
+            self._cpu_last[p.pid] = t.user + t.system
             tot += rss
             worst = max(worst, rss)
             self._per_pid[p.pid] = max(self._per_pid.get(p.pid, 0), rss)
@@ -304,6 +343,11 @@ class PeakRSS:
     @property
     def sum_of_peaks(self) -> int:
         return sum(self._per_pid.values())
+
+    @property
+    def cpu_seconds(self) -> float:
+        """CPU seconds used by the sampled processes between their first and last sample."""
+        return sum(v - self._cpu_first[pid] for pid, v in self._cpu_last.items())
 
     def _loop(self) -> None:
         while not self._stop.is_set():
@@ -314,22 +358,24 @@ class PeakRSS:
 
     def __enter__(self) -> "PeakRSS":
         self.baseline = self.sample()[0]
-        self._per_pid.clear()
+        self._per_pid.clear()  # CPU times keep their first sample: counted from here
         self._thread.start()
         return self
 
     def __exit__(self, *exc) -> None:
         self._stop.set()
         self._thread.join()
+        self.sample()  # the last CPU times
 
 
 # timings ------------------------------------------------------------------------------------------
 def step_timings(run_dir: Path) -> dict[str, dict[str, float]]:
-    """{step: {phase: seconds}} from a run's ledger (phases: fit, tiles, export), summed."""
+    """{step: {phase: seconds}} of the latest invocation, from a run's ledger (phases: fit, tiles, export)."""
     db = sqlite3.connect(f"file:{Path(run_dir) / 'ledger.sqlite'}?mode=ro", uri=True)
     try:
         out: dict[str, dict[str, float]] = {}
-        for name, phase, sec in db.execute("SELECT name, phase, seconds FROM timings"):
+        last = "(SELECT invocation FROM timings ORDER BY time DESC LIMIT 1)"
+        for name, phase, sec in db.execute(f"SELECT name, phase, seconds FROM timings WHERE invocation = {last}"):
             out.setdefault(name, {})
             out[name][phase] = out[name].get(phase, 0.0) + float(sec)
         return out

@@ -28,11 +28,15 @@ engine source store in a temporary folder under /tmp that it deletes at the end,
     (ours summed over the client and all cluster processes, sampled every 50 ms; the in-memory one
     sampled and from the kernel's ``ru_maxrss``), their ratios, and how far the eigenvalues agree.
     ``--inmem np.cov`` uses ``numpy.cov`` in float64 instead (about twice the memory).
+    CPU seconds (user + system, summed over the processes) are printed beside the wall times in
+    (a) and (c): they count the work done rather than the waiting for a core, so they move less when
+    other jobs load the machine.
 
 Run::
 
     .venv/bin/python tests/benchmarks/bench_mnf.py            # full size (several minutes on 2 cores)
     .venv/bin/python tests/benchmarks/bench_mnf.py --quick    # 160 bands x 1024 x 1024 (0.34 GB)
+    .venv/bin/python tests/benchmarks/bench_mnf.py --skip a --inmem np.cov   # only (c), numpy.cov variant
 
 It prints measured figures and ratios, and the load average at the start and the end (other jobs on
 the machine slow the runs unevenly; the ratios compare runs made in the same period).
@@ -96,7 +100,7 @@ def child_run(run_dir: Path, src: Path, tile: int, workers: int, components: int
     finally:
         ex.close()
     C.print_json({**res, "cluster_start": start, "peak_rss": mem.peak, "sum_of_peaks": mem.sum_of_peaks,
-                  "idle_rss": mem.baseline, "peak_max_process": mem.peak_max_process})
+                  "idle_rss": mem.baseline, "peak_max_process": mem.peak_max_process, "cpu": mem.cpu_seconds})
     return 0
 
 
@@ -149,7 +153,8 @@ def child_inmem(src: Path, components: int, variant: str) -> int:
     with C.PeakRSS() as mem:
         res = in_memory_mnf(src, components, variant)
     maxrss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # kB on Linux
-    C.print_json({**res, "peak_rss": mem.peak, "ru_maxrss": maxrss, "idle_rss": mem.baseline})
+    C.print_json({**res, "peak_rss": mem.peak, "ru_maxrss": maxrss, "idle_rss": mem.baseline,
+                  "cpu": mem.cpu_seconds})
     return 0
 
 
@@ -159,6 +164,55 @@ def _child(args: list[str]) -> dict:
     if proc.returncode != 0:
         raise RuntimeError(f"child {args[0]} failed ({proc.returncode}):\n{proc.stderr[-4000:]}")
     return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbytes: int) -> None:
+    """Print the summary of (a), then measure and print (b)."""
+    import _common as C
+
+    read = min(reads)
+    write = min(writes)
+    print(f"(a) I/O floor, best figures: read pass {read:.1f} s ({nbytes / read / 1e9:.2f} GB/s; from_zarr "
+          f"{min(reads[0::2]):.1f} s, tile loop {min(reads[1::2]):.1f} s), write of {a.components} float32 bands "
+          f"{write:.1f} s; floor = 2 x read + write = {2 * read + write:.1f} s", flush=True)
+    for label in ("full", "sampled"):
+        rs = runs[label]
+        best = min(rs, key=lambda r: r["seconds"])
+        sel = best["selection"]
+        what = ("whole fit (every valid pixel, the default)" if label == "full" else
+                f"sampled fit (pixel_fraction {sel['pixel_fraction']:g}, seed {sel['seed']}, recorded in the "
+                "model's selection)")
+        ratios = [r["seconds"] / r["floor"] for r in rs]
+        cratios = [r["cpu"] / r["cpu_floor"] for r in rs]
+        print(f"    MNF fit + forward to {a.components} components, {what}: best {best['seconds']:.1f} s (fit "
+              f"{best['fit']:.1f} s on {best['n_pixels']} px, forward tiles {best['tiles']:.1f} s); ratio to the "
+              f"floor measured just before, per repetition: {', '.join(f'{x:.2f}' for x in ratios)} (median "
+              f"{float(np.median(ratios)):.2f}); best time / best floor = {best['seconds'] / (2 * read + write):.2f}; "
+              f"CPU-time ratio per repetition: {', '.join(f'{x:.2f}' for x in cratios)}", flush=True)
+    full = min(runs["full"], key=lambda r: r["seconds"])
+    samp = min(runs["sampled"], key=lambda r: r["seconds"])
+    rel = np.max(np.abs(np.array(samp["eigenvalues"]) / np.array(full["eigenvalues"]) - 1))
+    print(f"    sampled vs whole fit: largest relative difference of the first {a.components} eigenvalues "
+          f"{rel:.2e}", flush=True)
+
+    # (b) ---------------------------------------------------------------------------------------
+    from workflows.mnf import MnfConfig, mnf_steps
+
+    run_dir = tmp / f"run-full-{a.repeat - 1}"
+    n = a.size // a.tile
+    index = (1, 1) if n > 2 else (0, 0)
+    step = mnf_steps(MnfConfig(components=a.components), "src/refl")[0]
+    bd = C.tile_breakdown(step, src, run_dir / "stores" / "mnf.zarr", C.model_base(run_dir, "mnf"), a.tile,
+                          index, tmp / "scratch.zarr")
+    print(f"(b) one tile {index} in one process, one BLAS thread, seconds wall (CPU): whole-fit accumulate "
+          f"{C.format_breakdown(bd, ['fit_read', 'fit_decode', 'fit_accumulate'])}; forward "
+          f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
+    busy_share = full["tile_busy"] / a.workers
+    print(f"    forward tile phase of the best whole-fit run: wall {full['tiles']:.1f} s, inside tile tasks "
+          f"{full['tile_busy']:.1f} s over {a.workers} workers = {busy_share:.1f} s each; scheduling and "
+          f"client share {full['tiles'] - busy_share:.1f} s", flush=True)
+    shutil.rmtree(tmp / "scratch.zarr", ignore_errors=True)
+    shutil.rmtree(run_dir, ignore_errors=True)
 
 
 # main ---------------------------------------------------------------------------------------------------------
@@ -174,8 +228,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--components", type=int, default=20)
     ap.add_argument("--sample", type=float, default=0.25, help="pixel_fraction of the sampled fit")
     ap.add_argument("--repeat", type=int, default=2, help="alternating repetitions of (a)")
-    ap.add_argument("--inmem", choices=("float32", "np.cov", "none"), default="float32",
-                    help="in-memory approach of (c), or none to skip (c)")
+    ap.add_argument("--inmem", choices=("float32", "np.cov"), default="float32", help="in-memory approach of (c)")
+    ap.add_argument("--skip", choices=("a", "c"), action="append", default=[],
+                    help="skip a part: a (the floor and the runs, and b) or c (in memory); repeatable")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
     ap.add_argument("--child-run", nargs=2, type=Path, metavar=("RUN_DIR", "SRC"), help=argparse.SUPPRESS)
     ap.add_argument("--child-inmem", type=Path, metavar="SRC", help=argparse.SUPPRESS)
@@ -188,6 +243,8 @@ def main(argv: list[str] | None = None) -> int:
         a.bands, a.size = 160, 1024
     if a.size % a.tile:
         ap.error(f"--size must be a multiple of --tile. Got {a.size} and {a.tile}")
+    if a.repeat < 1:
+        ap.error(f"--repeat must be at least 1 (use --skip a to leave out part a). Got {a.repeat}")
 
     import dask
     import psutil
@@ -206,85 +263,54 @@ def main(argv: list[str] | None = None) -> int:
     tmp = Path(tempfile.mkdtemp(prefix="bench-mnf-", dir=a.dir))
     src = tmp / "cube.zarr"
     try:
-        # (a) ---------------------------------------------------------------------------------------
         ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1)
         try:
             info = C.build_cube(src, a.size, a.bands, a.tile, ex)
             print(f"built the cube in {info['seconds']:.1f} s ({C.gb(info['disk'])} on disk)", flush=True)
             grid = default_grid(a.size, a.size)
             reads, writes, runs = [], [], {"full": [], "sampled": []}
-            for k in range(a.repeat):
+            # (a) -----------------------------------------------------------------------------------
+            for k in range(0 if "a" in a.skip else a.repeat):
                 line = []
                 for label, frac in (("full", 1.0), ("sampled", a.sample)):
                     # the floor just before each run, so that both see the same load
                     rd = C.read_pass_dask(src, "refl", a.tile, ex.client)
-                    rt = C.read_pass_tiles(src, "refl", a.tile, ex)
-                    w = C.write_pass(tmp / "floor.zarr", grid, a.components, a.tile, ex)
+                    with C.CpuMeter() as cpu_read:
+                        rt = C.read_pass_tiles(src, "refl", a.tile, ex)
+                    with C.CpuMeter() as cpu_write:
+                        w = C.write_pass(tmp / "floor.zarr", grid, a.components, a.tile, ex)
                     shutil.rmtree(tmp / "floor.zarr")
                     reads += [rd, rt]
                     writes.append(w)
                     floor = 2 * min(rd, rt) + w
                     run_dir = tmp / f"run-{label}-{k}"
-                    r = mnf_run(run_dir, src, ex, a.tile, a.components, frac)
+                    with C.CpuMeter() as cpu_run:
+                        r = mnf_run(run_dir, src, ex, a.tile, a.components, frac)
                     r["floor"] = floor
+                    r["cpu"] = cpu_run.seconds
+                    r["cpu_floor"] = 2 * cpu_read.seconds + cpu_write.seconds
                     runs[label].append(r)
                     line.append(f"floor {floor:.1f} s (read from_zarr {rd:.1f}, tile loop {rt:.1f}, write {w:.1f}) "
                                 f"then MNF {label} fit {r['seconds']:.1f} s (fit {r['fit']:.1f} + tiles "
-                                f"{r['tiles']:.1f}): ratio {r['seconds'] / floor:.2f}")
+                                f"{r['tiles']:.1f}): ratio {r['seconds'] / floor:.2f}; CPU seconds {r['cpu']:.1f} "
+                                f"against {r['cpu_floor']:.1f} for the floor (tile-loop reads): ratio "
+                                f"{r['cpu'] / r['cpu_floor']:.2f}")
                     if k < a.repeat - 1 or label != "full":
                         shutil.rmtree(run_dir)
                 print(f"  repetition {k + 1} (load {C.loadavg()}): " + "; ".join(line), flush=True)
         finally:
             ex.close()
-        read = min(reads)
-        write = min(writes)
-        print(f"(a) I/O floor, best figures: read pass {read:.1f} s ({nbytes / read / 1e9:.2f} GB/s; from_zarr "
-              f"{min(reads[0::2]):.1f} s, tile loop {min(reads[1::2]):.1f} s), write of {a.components} float32 bands "
-              f"{write:.1f} s; floor = 2 x read + write = {2 * read + write:.1f} s", flush=True)
-        for label in ("full", "sampled"):
-            rs = runs[label]
-            best = min(rs, key=lambda r: r["seconds"])
-            sel = best["selection"]
-            what = ("whole fit (every valid pixel, the default)" if label == "full" else
-                    f"sampled fit (pixel_fraction {sel['pixel_fraction']:g}, seed {sel['seed']}, recorded in the "
-                    "model's selection)")
-            ratios = [r["seconds"] / r["floor"] for r in rs]
-            print(f"    MNF fit + forward to {a.components} components, {what}: best {best['seconds']:.1f} s (fit "
-                  f"{best['fit']:.1f} s on {best['n_pixels']} px, forward tiles {best['tiles']:.1f} s); ratio to the "
-                  f"floor measured just before, per repetition: {', '.join(f'{x:.2f}' for x in ratios)} (median "
-                  f"{float(np.median(ratios)):.2f}); best time / best floor = {best['seconds'] / (2 * read + write):.2f}",
-                  flush=True)
-        full = min(runs["full"], key=lambda r: r["seconds"])
-        samp = min(runs["sampled"], key=lambda r: r["seconds"])
-        rel = np.max(np.abs(np.array(samp["eigenvalues"]) / np.array(full["eigenvalues"]) - 1))
-        print(f"    sampled vs whole fit: largest relative difference of the first {a.components} eigenvalues "
-              f"{rel:.2e}", flush=True)
-
-        # (b) ---------------------------------------------------------------------------------------
-        from workflows.mnf import MnfConfig, mnf_steps
-
-        run_dir = tmp / f"run-full-{a.repeat - 1}"
-        n = a.size // a.tile
-        index = (1, 1) if n > 2 else (0, 0)
-        step = mnf_steps(MnfConfig(components=a.components), "src/refl")[0]
-        bd = C.tile_breakdown(step, src, run_dir / "stores" / "mnf.zarr", C.model_base(run_dir, "mnf"), a.tile,
-                              index, tmp / "scratch.zarr")
-        print(f"(b) one tile {index} in one process, one BLAS thread, seconds wall (CPU): whole-fit accumulate "
-              f"{C.format_breakdown(bd, ['fit_read', 'fit_decode', 'fit_accumulate'])}; forward "
-              f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
-        busy_share = full["tile_busy"] / a.workers
-        print(f"    forward tile phase of the best whole-fit run: wall {full['tiles']:.1f} s, inside tile tasks "
-              f"{full['tile_busy']:.1f} s over {a.workers} workers = {busy_share:.1f} s each; scheduling and "
-              f"client share {full['tiles'] - busy_share:.1f} s", flush=True)
-        shutil.rmtree(tmp / "scratch.zarr", ignore_errors=True)
-        shutil.rmtree(run_dir, ignore_errors=True)
+        if "a" not in a.skip:
+            part_ab(a, src, tmp, reads, writes, runs, nbytes)
 
         # (c) ---------------------------------------------------------------------------------------
         need = (16 if a.inmem == "np.cov" else 8) * a.bands * a.size * a.size  # bytes at the peak, roughly
-        if a.inmem != "none" and psutil.virtual_memory().available < 1.25 * need:
+        if "c" in a.skip:
+            pass
+        elif psutil.virtual_memory().available < 1.25 * need:
             print(f"(c) skipped: the in-memory approach ({a.inmem}) needs about {C.gb(need)}; "
                   f"{C.gb(psutil.virtual_memory().available)} available", flush=True)
-        elif a.inmem != "none":
+        else:
             print(f"    load average before (c): {C.loadavg()}", flush=True)
             ours = _child(["--child-run", str(tmp / "run-mem"), str(src), "--tile", str(a.tile), "--workers",
                            str(a.workers), "--components", str(a.components)])
@@ -299,6 +325,8 @@ def main(argv: list[str] | None = None) -> int:
                   f"client and cluster {C.gb(ours['peak_rss'])} (idle cluster {C.gb(ours['idle_rss'])}, largest "
                   f"process {C.gb(ours['peak_max_process'])}, sum of per-process peaks {C.gb(ours['sum_of_peaks'])})",
                   flush=True)
+            print(f"    CPU seconds: ours {ours['cpu']:.1f} (all processes), in memory {mem['cpu']:.1f} (BLAS on "
+                  f"every core); ratio {ours['cpu'] / mem['cpu']:.2f}", flush=True)
             print(f"    ratios ours / in memory: time {ours['seconds'] / mem['seconds']:.2f} (speed-up "
                   f"{mem['seconds'] / ours['seconds']:.2f}x), peak memory {ours['peak_rss'] / mem_peak:.2f} "
                   f"(with the sum of per-process peaks {ours['sum_of_peaks'] / mem_peak:.2f})", flush=True)
