@@ -237,3 +237,14 @@ def test_library_unmixing_on_components_equals_unmixing_on_reflectance(tmp_path,
     ok = np.isfinite(on_refl)
     assert ok.mean() > 0.9
     np.testing.assert_allclose(on_pc[ok], on_refl[ok], atol=2e-4)
+
+
+def test_dashboard_must_stay_on_this_machine(tmp_path, capsys):
+    cfg = _config(tmp_path, execution={"executor": "dask", "dashboard": "0.0.0.0:8787"})
+    assert main(["run", str(cfg)]) == 2
+    assert "dashboard must be bound to this machine" in capsys.readouterr().err
+    from tiles.executors import _local_dashboard
+
+    assert _local_dashboard(None) == "127.0.0.1:0" and _local_dashboard("localhost:8787") == "localhost:8787"
+    with pytest.raises(ValueError, match="bound to this machine"):
+        _local_dashboard(":8787")

@@ -94,6 +94,7 @@ class DaskExecutor:
             if cluster is None:
                 n = n_workers or max(1, (os.cpu_count() or 1) // threads_per_worker)
                 net = {"host": "127.0.0.1"} if processes else {}
+                dashboard_address = _local_dashboard(dashboard_address)
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
                                        memory_limit=memory_limit, dashboard_address=dashboard_address, **net)
                 self._own_cluster = cluster
@@ -208,6 +209,17 @@ class DaskExecutor:
         finally:
             if self._own_cluster is not None:
                 self._own_cluster.close()
+
+
+def _local_dashboard(address: str | None) -> str:
+    """The dashboard stays on this machine: only 127.0.0.1, localhost or ::1 are accepted."""
+    if not address:
+        return "127.0.0.1:0"
+    host = address.rsplit(":", 1)[0].strip("[]") if ":" in address else address
+    if host not in ("127.0.0.1", "localhost", "::1"):
+        raise ValueError(f"the dashboard must be bound to this machine (127.0.0.1, localhost or ::1). "
+                         f"Got {address!r}; reach it from elsewhere through an SSH tunnel")
+    return address
 
 
 def make_executor(kind: str = "local", **opts) -> Executor:

@@ -56,6 +56,11 @@ class ExecutionConfig(Strict):
 
     @model_validator(mode="after")
     def _check(self) -> "ExecutionConfig":
+        if self.dashboard:
+            host = self.dashboard.rsplit(":", 1)[0].strip("[]") if ":" in self.dashboard else self.dashboard
+            if host not in ("127.0.0.1", "localhost", "::1"):
+                raise ValueError(f"dashboard must be bound to this machine (127.0.0.1, localhost or ::1). Got "
+                                 f"{self.dashboard!r}; reach it from elsewhere through an SSH tunnel")
         if self.executor == "jobqueue" and self.jobqueue is None:
             raise ValueError("executor 'jobqueue' needs a 'jobqueue' section")
         return self
