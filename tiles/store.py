@@ -138,34 +138,49 @@ def encode(values: np.ndarray, spec: OutputSpec, valid: np.ndarray, physical: bo
     """Physical values to the stored dtype; nodata wherever ``valid`` is False or the value is not finite.
 
     ``physical=False``: the values are already stored values (a step with ``decode=False``), so the
-    CF scale_factor/add_offset are not applied again.
+    CF scale_factor/add_offset are not applied again. Works band by band with one reused float64
+    buffer, so a tile of hundreds of bands needs no tile-sized temporaries.
     """
     dt = np.dtype(spec.dtype)
     v = np.asarray(values)
     scale = spec.attrs.get("scale_factor") if physical else None
     offset = spec.attrs.get("add_offset") if physical else None
-    if scale is not None or offset:
-        v = v.astype(np.float64)
-        if offset:
-            v = v - offset
-        if scale is not None:
-            v = v / scale
     nodata = np.asarray(spec.nodata).astype(dt)
-    bad = None  # per-value mask of non-finite values (float inputs only)
-    if np.issubdtype(dt, np.floating):
-        out = v.astype(dt)
-        bad = ~np.isfinite(out)
-    elif np.issubdtype(v.dtype, np.floating):
-        bad = ~np.isfinite(v)
-        info = np.iinfo(dt)
-        out = np.clip(np.rint(np.where(bad, 0, v)), info.min, info.max).astype(dt)
-    else:
-        out = v.astype(dt)  # integers: no per-value mask (band-sized temporaries cost ~15% of a tile)
-    if bad is not None and bad.any():
-        out[bad] = nodata
     invalid = ~np.asarray(valid, dtype=bool)
-    if invalid.any():
-        out[..., invalid] = nodata  # a (rows, cols) mask applies to every band
+    any_invalid = bool(invalid.any())
+    if not np.issubdtype(v.dtype, np.floating) and scale is None and not offset:
+        out = v.astype(dt)  # integers to integers: no per-value mask
+        if any_invalid:
+            out[..., invalid] = nodata
+        return out
+    out = np.empty(v.shape, dtype=dt)
+    flat_in = v.reshape((-1,) + v.shape[-2:]) if v.ndim >= 2 else v.reshape(1, 1, -1)
+    flat_out = out.reshape(flat_in.shape)
+    buf = np.empty(flat_in.shape[1:], dtype=np.float64)
+    is_int = not np.issubdtype(dt, np.floating)
+    info = np.iinfo(dt) if is_int else None
+    for b in range(flat_in.shape[0]):
+        np.copyto(buf, flat_in[b], casting="unsafe")
+        if offset:
+            buf -= offset
+        if scale is not None:
+            buf /= scale
+        bad = ~np.isfinite(buf)
+        if is_int:
+            buf[bad] = 0
+            np.rint(buf, out=buf)
+            np.clip(buf, info.min, info.max, out=buf)
+        with np.errstate(over="ignore", invalid="ignore"):
+            np.copyto(flat_out[b], buf, casting="unsafe")
+        if bad.any():
+            flat_out[b][bad] = nodata
+        if any_invalid:
+            flat_out[b][invalid] = nodata
+    if not is_int:
+        # values finite in float64 but not in the stored float dtype (overflow) are nodata too
+        over = ~np.isfinite(out)
+        if over.any():
+            out[over] = nodata
     return out
 
 
