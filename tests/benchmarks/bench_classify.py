@@ -12,8 +12,9 @@ It works in a temporary folder under /tmp that it deletes at the end, on
     cluster just before each run: one read pass of the cube (the faster of ``dask.array.from_zarr(
     ...).sum()`` and a tile loop reading each shard with zarr); ``--repeat`` repetitions.
 (b) Where the time of one interior tile of the spectral angle step goes (zarr read, decoding,
-    kernel, encoding, zarr write; wall and CPU seconds), in this process with one BLAS thread, and
-    the scheduling share of the tile phase.
+    kernel, encoding, zarr write; wall and CPU seconds) with one BLAS thread, in this process and
+    again on a Dask worker (whose environment, e.g. Dask's ``MALLOC_TRIM_THRESHOLD_``, changes how
+    memory is mapped), and the scheduling share of the tile phase.
 (c) SVM prediction. A store of 20 float32 bands shaped like MNF components (default 2048 x 2048 =
     4.2 million pixels; six classes in smooth patches, class means that shrink with the component
     index, smooth within-class variation and unit noise), a sample table of labelled pixels in
@@ -165,7 +166,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=2, help="alternating repetitions of (a)")
     ap.add_argument("--skip", choices=("sam", "svm"), action="append", default=[], help="skip a part")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
+    ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
+                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_=67108864")
     a = ap.parse_args(argv)
+    env = C.set_worker_env(a.worker_env)
     if a.quick:
         a.bands, a.size, a.svm_size = 160, 1024, 1024
     for s in (a.size, a.svm_size):
@@ -185,6 +189,7 @@ def main(argv: list[str] | None = None) -> int:
           f"{a.tile} px; {a.workers} Dask worker processes x 1 thread; {os.cpu_count()} CPUs; zarr "
           f"{zarr.__version__}, dask {dask.__version__}", flush=True)
     print(f"load average at start: {C.loadavg()}", flush=True)
+    print(f"worker environment: {env}", flush=True)
     tmp = Path(tempfile.mkdtemp(prefix="bench-classify-", dir=a.dir))
     ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1)
     try:
@@ -230,15 +235,18 @@ def main(argv: list[str] | None = None) -> int:
             n = a.size // a.tile
             index = (1, 1) if n > 2 else (0, 0)
             step = sam_step("sam", "src/refl", library=lib, threshold=0.1)
-            bd = C.tile_breakdown(step, src, run_dir / "stores" / "sam.zarr", C.model_base(run_dir, "sam"), a.tile,
-                                  index, tmp / "scratch.zarr")
+            args = (step, src, run_dir / "stores" / "sam.zarr", C.model_base(run_dir, "sam"), a.tile, index)
+            for where, bd in (("in this process", C.tile_breakdown(*args, tmp / "scratch.zarr")),
+                              ("on a Dask worker", ex.client.submit(C.tile_breakdown, *args, tmp / "scratch-w.zarr",
+                                                                    pure=False).result())):
+                print(f"(b) one tile {index} {where}, one BLAS thread, seconds wall (CPU): "
+                      f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
             last = sams[-1]
-            print(f"(b) one tile {index} in one process, one BLAS thread, seconds wall (CPU): "
-                  f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
             print(f"    tile phase of the last run: wall {last['tiles']:.1f} s, inside tile tasks {last['busy']:.1f} s "
                   f"over {a.workers} workers = {last['busy'] / a.workers:.1f} s each; scheduling and client share "
                   f"{last['tiles'] - last['busy'] / a.workers:.1f} s", flush=True)
             shutil.rmtree(tmp / "scratch.zarr", ignore_errors=True)
+            shutil.rmtree(tmp / "scratch-w.zarr", ignore_errors=True)
             shutil.rmtree(run_dir, ignore_errors=True)
             shutil.rmtree(src, ignore_errors=True)
 

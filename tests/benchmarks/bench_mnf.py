@@ -7,16 +7,18 @@ engine source store in a temporary folder under /tmp that it deletes at the end,
 
 (a) the MNF step (``workflows.mnf.mnf_steps(MnfConfig(components=20))``: fit on every pixel, then the
     forward transform written as 20 float32 bands) through ``tiles.run.Run(...).execute`` on
-    ``DaskExecutor(n_workers=2, threads_per_worker=1)``, with the whole fit (the default) and with a
-    pixel-sampled fit (``pixel_fraction``, default 0.25: a documented option, recorded in the model's
-    provenance under ``selection``), against the I/O floor measured on the same cluster in the same
+    ``DaskExecutor(n_workers=2, threads_per_worker=1)``, with the whole fit (the default), a
+    pixel-sampled fit (``pixel_fraction``, default 0.25) and a tile-sampled fit (``tile_fraction``,
+    default 0.25; both documented options, recorded in the model's provenance under
+    ``selection``), against the I/O floor measured on the same cluster in the same
     run: two full read passes of the cube (the faster of ``dask.array.from_zarr(...).sum()`` and a
     tile loop reading each shard with zarr) plus writing a float32 array of the output's size (20
     bands) with the same layout and codec. The floor is measured again just before each MNF run, and
     each run's ratio uses that floor (other jobs on the machine change the speed from minute to
     minute); ``--repeat`` repetitions.
-(b) where the time goes in one interior tile, in this process with one BLAS thread, wall and CPU
-    seconds: zarr read of the padded window (the fit reads a one-pixel halo), decoding, the
+(b) where the time goes in one interior tile, with one BLAS thread, in this process and again on a
+    Dask worker (whose environment, e.g. Dask's ``MALLOC_TRIM_THRESHOLD_``, changes how memory is
+    mapped), wall and CPU seconds: zarr read of the padded window (the fit reads a one-pixel halo), decoding, the
     accumulator, then the forward read, kernel, encoding and write; and the scheduling share of
     the tile phase (wall time minus the time spent inside tile tasks, divided over the workers).
 (c) against the in-memory approach a user would otherwise write, each in a fresh process: load the
@@ -57,16 +59,19 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
+VARIANTS = ("full", "pixels", "tiles")  # whole fit, pixel-sampled fit, tile-sampled fit
+NAMES = {"full": "whole", "pixels": "pixel-sampled", "tiles": "tile-sampled"}
 
 
-def mnf_run(run_dir: Path, src: Path, executor, tile: int, components: int, pixel_fraction: float) -> dict:
+def mnf_run(run_dir: Path, src: Path, executor, tile: int, components: int, pixel_fraction: float = 1.0,
+            tile_fraction: float = 1.0) -> dict:
     """The MNF step (fit + forward) through the engine; wall time of ``execute`` and its phases."""
     import _common as C
 
     from tiles.run import Run, RunOptions
     from workflows.mnf import MnfConfig, mnf_steps
 
-    cfg = MnfConfig(components=components, pixel_fraction=pixel_fraction)
+    cfg = MnfConfig(components=components, pixel_fraction=pixel_fraction, tile_fraction=tile_fraction)
     steps = mnf_steps(cfg, "src/refl")
     with Run(run_dir, RunOptions(tile=tile, export=False)) as run:
         t0 = time.perf_counter()
@@ -96,7 +101,7 @@ def child_run(run_dir: Path, src: Path, tile: int, workers: int, components: int
     start = time.perf_counter() - t0
     try:
         with C.PeakRSS() as mem:
-            res = mnf_run(run_dir, src, ex, tile, components, 1.0)
+            res = mnf_run(run_dir, src, ex, tile, components)
     finally:
         ex.close()
     C.print_json({**res, "cluster_start": start, "peak_rss": mem.peak, "sum_of_peaks": mem.sum_of_peaks,
@@ -166,7 +171,7 @@ def _child(args: list[str]) -> dict:
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
-def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbytes: int) -> None:
+def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbytes: int, ex) -> None:
     """Print the summary of (a), then measure and print (b)."""
     import _common as C
 
@@ -175,13 +180,15 @@ def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbyt
     print(f"(a) I/O floor, best figures: read pass {read:.1f} s ({nbytes / read / 1e9:.2f} GB/s; from_zarr "
           f"{min(reads[0::2]):.1f} s, tile loop {min(reads[1::2]):.1f} s), write of {a.components} float32 bands "
           f"{write:.1f} s; floor = 2 x read + write = {2 * read + write:.1f} s", flush=True)
-    for label in ("full", "sampled"):
+    for label in VARIANTS:
         rs = runs[label]
         best = min(rs, key=lambda r: r["seconds"])
         sel = best["selection"]
-        what = ("whole fit (every valid pixel, the default)" if label == "full" else
-                f"sampled fit (pixel_fraction {sel['pixel_fraction']:g}, seed {sel['seed']}, recorded in the "
-                "model's selection)")
+        what = {"full": "whole fit (every valid pixel, the default)",
+                "pixels": f"pixel-sampled fit (pixel_fraction {sel['pixel_fraction']:g}, seed {sel['seed']}, recorded "
+                          "in the model's selection)",
+                "tiles": f"tile-sampled fit (tile_fraction {sel['tile_fraction']:g}: {sel['n_tiles']} tiles, seed "
+                         f"{sel['seed']}, recorded in the model's selection)"}[label]
         ratios = [r["seconds"] / r["floor"] for r in rs]
         cratios = [r["cpu"] / r["cpu_floor"] for r in rs]
         print(f"    MNF fit + forward to {a.components} components, {what}: best {best['seconds']:.1f} s (fit "
@@ -190,10 +197,11 @@ def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbyt
               f"{float(np.median(ratios)):.2f}); best time / best floor = {best['seconds'] / (2 * read + write):.2f}; "
               f"CPU-time ratio per repetition: {', '.join(f'{x:.2f}' for x in cratios)}", flush=True)
     full = min(runs["full"], key=lambda r: r["seconds"])
-    samp = min(runs["sampled"], key=lambda r: r["seconds"])
-    rel = np.max(np.abs(np.array(samp["eigenvalues"]) / np.array(full["eigenvalues"]) - 1))
-    print(f"    sampled vs whole fit: largest relative difference of the first {a.components} eigenvalues "
-          f"{rel:.2e}", flush=True)
+    for label in ("pixels", "tiles"):
+        samp = min(runs[label], key=lambda r: r["seconds"])
+        rel = np.max(np.abs(np.array(samp["eigenvalues"]) / np.array(full["eigenvalues"]) - 1))
+        print(f"    {label}-sampled vs whole fit: largest relative difference of the first {a.components} eigenvalues "
+              f"{rel:.2e}", flush=True)
 
     # (b) ---------------------------------------------------------------------------------------
     from workflows.mnf import MnfConfig, mnf_steps
@@ -202,16 +210,19 @@ def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbyt
     n = a.size // a.tile
     index = (1, 1) if n > 2 else (0, 0)
     step = mnf_steps(MnfConfig(components=a.components), "src/refl")[0]
-    bd = C.tile_breakdown(step, src, run_dir / "stores" / "mnf.zarr", C.model_base(run_dir, "mnf"), a.tile,
-                          index, tmp / "scratch.zarr")
-    print(f"(b) one tile {index} in one process, one BLAS thread, seconds wall (CPU): whole-fit accumulate "
-          f"{C.format_breakdown(bd, ['fit_read', 'fit_decode', 'fit_accumulate'])}; forward "
-          f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
+    args = (step, src, run_dir / "stores" / "mnf.zarr", C.model_base(run_dir, "mnf"), a.tile, index)
+    for where, bd in (("in this process", C.tile_breakdown(*args, tmp / "scratch.zarr")),
+                      ("on a Dask worker", ex.client.submit(C.tile_breakdown, *args, tmp / "scratch-w.zarr",
+                                                            pure=False).result())):
+        print(f"(b) one tile {index} {where}, one BLAS thread, seconds wall (CPU): whole-fit accumulate "
+              f"{C.format_breakdown(bd, ['fit_read', 'fit_decode', 'fit_accumulate'])}; forward "
+              f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
     busy_share = full["tile_busy"] / a.workers
     print(f"    forward tile phase of the best whole-fit run: wall {full['tiles']:.1f} s, inside tile tasks "
           f"{full['tile_busy']:.1f} s over {a.workers} workers = {busy_share:.1f} s each; scheduling and "
           f"client share {full['tiles'] - busy_share:.1f} s", flush=True)
     shutil.rmtree(tmp / "scratch.zarr", ignore_errors=True)
+    shutil.rmtree(tmp / "scratch-w.zarr", ignore_errors=True)
     shutil.rmtree(run_dir, ignore_errors=True)
 
 
@@ -226,15 +237,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--tile", type=int, default=512)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--components", type=int, default=20)
-    ap.add_argument("--sample", type=float, default=0.25, help="pixel_fraction of the sampled fit")
+    ap.add_argument("--sample", type=float, default=0.25, help="pixel_fraction of the pixel-sampled fit")
+    ap.add_argument("--tile-sample", type=float, default=0.25, help="tile_fraction of the tile-sampled fit")
     ap.add_argument("--repeat", type=int, default=2, help="alternating repetitions of (a)")
     ap.add_argument("--inmem", choices=("float32", "np.cov"), default="float32", help="in-memory approach of (c)")
     ap.add_argument("--skip", choices=("a", "c"), action="append", default=[],
                     help="skip a part: a (the floor and the runs, and b) or c (in memory); repeatable")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
+    ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
+                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_=67108864")
     ap.add_argument("--child-run", nargs=2, type=Path, metavar=("RUN_DIR", "SRC"), help=argparse.SUPPRESS)
     ap.add_argument("--child-inmem", type=Path, metavar="SRC", help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
+    env = C.set_worker_env(a.worker_env)
     if a.child_run:
         return child_run(a.child_run[0], a.child_run[1], a.tile, a.workers, a.components)
     if a.child_inmem:
@@ -260,6 +275,7 @@ def main(argv: list[str] | None = None) -> int:
           f"{C.gb(out_bytes)}; {a.workers} Dask worker processes x 1 thread; {os.cpu_count()} CPUs; "
           f"zarr {zarr.__version__}, dask {dask.__version__}", flush=True)
     print(f"load average at start: {C.loadavg()}", flush=True)
+    print(f"worker environment: {env}", flush=True)
     tmp = Path(tempfile.mkdtemp(prefix="bench-mnf-", dir=a.dir))
     src = tmp / "cube.zarr"
     try:
@@ -268,11 +284,12 @@ def main(argv: list[str] | None = None) -> int:
             info = C.build_cube(src, a.size, a.bands, a.tile, ex)
             print(f"built the cube in {info['seconds']:.1f} s ({C.gb(info['disk'])} on disk)", flush=True)
             grid = default_grid(a.size, a.size)
-            reads, writes, runs = [], [], {"full": [], "sampled": []}
+            reads, writes, runs = [], [], {v: [] for v in VARIANTS}
             # (a) -----------------------------------------------------------------------------------
             for k in range(0 if "a" in a.skip else a.repeat):
                 line = []
-                for label, frac in (("full", 1.0), ("sampled", a.sample)):
+                fractions = {"full": (1.0, 1.0), "pixels": (a.sample, 1.0), "tiles": (1.0, a.tile_sample)}
+                for label, (pfrac, tfrac) in fractions.items():
                     # the floor just before each run, so that both see the same load
                     rd = C.read_pass_dask(src, "refl", a.tile, ex.client)
                     with C.CpuMeter() as cpu_read:
@@ -285,23 +302,23 @@ def main(argv: list[str] | None = None) -> int:
                     floor = 2 * min(rd, rt) + w
                     run_dir = tmp / f"run-{label}-{k}"
                     with C.CpuMeter() as cpu_run:
-                        r = mnf_run(run_dir, src, ex, a.tile, a.components, frac)
+                        r = mnf_run(run_dir, src, ex, a.tile, a.components, pfrac, tfrac)
                     r["floor"] = floor
                     r["cpu"] = cpu_run.seconds
                     r["cpu_floor"] = 2 * cpu_read.seconds + cpu_write.seconds
                     runs[label].append(r)
                     line.append(f"floor {floor:.1f} s (read from_zarr {rd:.1f}, tile loop {rt:.1f}, write {w:.1f}) "
-                                f"then MNF {label} fit {r['seconds']:.1f} s (fit {r['fit']:.1f} + tiles "
+                                f"then MNF, {NAMES[label]} fit {r['seconds']:.1f} s (fit {r['fit']:.1f} + tiles "
                                 f"{r['tiles']:.1f}): ratio {r['seconds'] / floor:.2f}; CPU seconds {r['cpu']:.1f} "
                                 f"against {r['cpu_floor']:.1f} for the floor (tile-loop reads): ratio "
                                 f"{r['cpu'] / r['cpu_floor']:.2f}")
                     if k < a.repeat - 1 or label != "full":
                         shutil.rmtree(run_dir)
                 print(f"  repetition {k + 1} (load {C.loadavg()}): " + "; ".join(line), flush=True)
+            if "a" not in a.skip:
+                part_ab(a, src, tmp, reads, writes, runs, nbytes, ex)
         finally:
             ex.close()
-        if "a" not in a.skip:
-            part_ab(a, src, tmp, reads, writes, runs, nbytes)
 
         # (c) ---------------------------------------------------------------------------------------
         need = (16 if a.inmem == "np.cov" else 8) * a.bands * a.size * a.size  # bytes at the peak, roughly
@@ -313,7 +330,8 @@ def main(argv: list[str] | None = None) -> int:
         else:
             print(f"    load average before (c): {C.loadavg()}", flush=True)
             ours = _child(["--child-run", str(tmp / "run-mem"), str(src), "--tile", str(a.tile), "--workers",
-                           str(a.workers), "--components", str(a.components)])
+                           str(a.workers), "--components", str(a.components),
+                           *(f"--worker-env={e}" for e in a.worker_env)])
             shutil.rmtree(tmp / "run-mem", ignore_errors=True)
             mem = _child(["--child-inmem", str(src), "--components", str(a.components), "--inmem", a.inmem])
             mem_peak = max(mem["peak_rss"], mem["ru_maxrss"])
