@@ -74,6 +74,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
+from .config import ctx_get
 from .continuum import continuum_removed, range_mask
 from .library import SpectralLibrary, hex_to_rgb, read_library, resample_library
 from .reference import GroundReferenceConfig, SampleTable, load_samples
@@ -956,25 +957,17 @@ class SvmConfig(_Strict):
         return v
 
 
-def _ctx(ctx: Any, key: str, default: Any = None) -> Any:
-    if ctx is None:
-        return default
-    if isinstance(ctx, Mapping):
-        return ctx.get(key, default)
-    return getattr(ctx, key, default)
-
-
 def _path(p: str, ctx: Any) -> Path:
     q = Path(p).expanduser()
-    base = _ctx(ctx, "base_dir")
+    base = ctx_get(ctx, "base_dir")
     return q if q.is_absolute() or base is None else Path(base) / q
 
 
 def _samples(cfg: GroundReferenceConfig, ctx: Any) -> SampleTable:
-    grid = _ctx(ctx, "grid")
+    grid = ctx_get(ctx, "grid")
     if grid is None:
         raise ClassifyError("ground reference needs the mosaic grid: build_steps was called without ctx.grid")
-    table, _issues = load_samples(cfg, grid, base_dir=_ctx(ctx, "base_dir"), valid=_ctx(ctx, "valid"))
+    table, _issues = load_samples(cfg, grid, base_dir=ctx_get(ctx, "base_dir"), valid=ctx_get(ctx, "valid"))
     return table
 
 

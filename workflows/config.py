@@ -8,7 +8,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, Mapping
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
@@ -125,6 +125,15 @@ def validate(model: type[BaseModel], data: dict, path: Path, context: dict | Non
     except ValidationError as exc:
         lines = [_format_error(e, data, model) for e in exc.errors()]
         raise ConfigError(f"{path}: invalid configuration\n  " + "\n  ".join(lines)) from None
+
+
+def ctx_get(ctx: Any, key: str, default: Any = None) -> Any:
+    """A value of a step factory's context (a mapping or an object: grid, base_dir, valid)."""
+    if ctx is None:
+        return default
+    if isinstance(ctx, Mapping):
+        return ctx.get(key, default)
+    return getattr(ctx, key, default)
 
 
 def config_hash(data: dict) -> str:

@@ -88,6 +88,7 @@ from pydantic import BaseModel, ConfigDict, Field, model_validator
 from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
+from .config import ctx_get
 from . import endmembers as _em
 from .library import SpectralLibrary, read_library, resample_library
 from .reference import GroundReferenceConfig, SampleTable, load_samples
@@ -1295,14 +1296,6 @@ class UnmixConfig(_Strict):
         return self
 
 
-def _ctx(ctx: Any, key: str, default: Any = None) -> Any:
-    if ctx is None:
-        return default
-    if isinstance(ctx, Mapping):
-        return ctx.get(key, default)
-    return getattr(ctx, key, default)
-
-
 def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
     """``[unmix_step(...)]`` for the ``unmix`` section.
 
@@ -1316,7 +1309,7 @@ def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
                   kkt_rtol=section.kkt_rtol)
     if src.library is not None:
         path = Path(src.library).expanduser()
-        base = _ctx(ctx, "base_dir")
+        base = ctx_get(ctx, "base_dir")
         if not path.is_absolute() and base is not None:
             path = Path(base) / path
         lib = read_library(path)
@@ -1324,11 +1317,11 @@ def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
             lib = lib.subset(src.materials)
         return [unmix_step(section.name, section.input, library=lib, **common)]
     if src.samples is not None:
-        grid = _ctx(ctx, "grid")
+        grid = ctx_get(ctx, "grid")
         if grid is None:
             raise UnmixError("ground-reference endmembers need the mosaic grid: build_steps was called without "
                              "ctx.grid")
-        table, _issues = load_samples(src.samples, grid, base_dir=_ctx(ctx, "base_dir"), valid=_ctx(ctx, "valid"))
+        table, _issues = load_samples(src.samples, grid, base_dir=ctx_get(ctx, "base_dir"), valid=ctx_get(ctx, "valid"))
         return [unmix_step(section.name, section.input, samples=table, **common)]
     img = src.image
     assert img is not None
