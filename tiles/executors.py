@@ -10,7 +10,16 @@ import os
 import traceback
 from typing import Any, Callable, Iterable, Protocol
 
-__all__ = ["Executor", "LocalExecutor", "DaskExecutor", "make_executor", "TaskFailed"]
+__all__ = ["Executor", "LocalExecutor", "DaskExecutor", "make_executor", "TaskFailed", "WORKER_MALLOC_ENV"]
+
+# glibc allocator settings for the worker processes of a LocalCluster this module starts. Dask's own
+# default (MALLOC_TRIM_THRESHOLD_=65536) also switches off glibc's adaptive mmap threshold, so every
+# array above 128 KiB becomes a fresh mapping whose pages fault in, zero-filled, on first touch: a tile
+# task that allocates a few hundred MB of temporaries spends as much time in the kernel as in numpy.
+# Serving blocks up to 256 MiB from the heap and keeping up to 256 MiB of freed heap per worker makes
+# those temporaries reuse memory instead (glibc mallopt(3): M_MMAP_THRESHOLD, M_TRIM_THRESHOLD; the
+# effect is measured by ``tests/benchmarks/bench_classify.py --worker-env``).
+WORKER_MALLOC_ENV = {"MALLOC_MMAP_THRESHOLD_": str(256 << 20), "MALLOC_TRIM_THRESHOLD_": str(256 << 20)}
 
 
 class TaskFailed(RuntimeError):
@@ -71,7 +80,8 @@ class DaskExecutor:
 
     Give ``client`` or ``address`` (an existing scheduler), ``cluster`` (any dask cluster object, e.g.
     from dask-jobqueue), or nothing: a LocalCluster sized to the machine is started, with worker
-    processes started by spawn and the dashboard bound to 127.0.0.1.
+    processes started by spawn and the dashboard bound to 127.0.0.1. Its workers get
+    :data:`WORKER_MALLOC_ENV` added to their environment unless ``worker_env`` is given instead.
     """
 
     name = "dask"
@@ -79,8 +89,9 @@ class DaskExecutor:
     def __init__(self, *, client=None, address: str | None = None, cluster=None, n_workers: int | None = None,
                  threads_per_worker: int = 1, memory_limit: str | float | None = "auto",
                  dashboard_address: str | None = "127.0.0.1:0", retries: int = 2, max_in_flight: int | None = None,
-                 processes: bool = True):
+                 processes: bool = True, worker_env: dict[str, str] | None = None):
         import dask
+        import distributed  # noqa: F401 - loads distributed's configuration defaults
         from distributed import Client, LocalCluster
 
         dask.config.set({"distributed.worker.multiprocessing-method": "spawn",
@@ -95,6 +106,9 @@ class DaskExecutor:
                 n = n_workers or max(1, (os.cpu_count() or 1) // threads_per_worker)
                 net = {"host": "127.0.0.1"} if processes else {}
                 dashboard_address = _local_dashboard(dashboard_address)
+                env = dict(dask.config.get("distributed.nanny.pre-spawn-environ") or {})
+                env.update(WORKER_MALLOC_ENV if worker_env is None else worker_env)
+                dask.config.set({"distributed.nanny.pre-spawn-environ": env})
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
                                        memory_limit=memory_limit, dashboard_address=dashboard_address, **net)
                 self._own_cluster = cluster

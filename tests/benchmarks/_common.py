@@ -181,23 +181,29 @@ def _du(path: Path) -> int:
     return sum(f.stat().st_size for f in Path(path).rglob("*") if f.is_file())
 
 
+WORKER_ENV: dict[str, str] | None = None  # set by set_worker_env; passed to DaskExecutor(worker_env=...)
+
+
 def set_worker_env(pairs: list[str]) -> dict[str, str]:
-    """Add ``KEY=VALUE`` pairs to the environment Dask's nannies give new worker processes.
+    """The allocator settings the engine gives its workers, with ``KEY=VALUE`` pairs added or replaced.
 
-    Call before the cluster starts. Returns the resulting environment. Dask's own default sets
-    ``MALLOC_TRIM_THRESHOLD_=65536``; e.g. ``MALLOC_MMAP_THRESHOLD_=67108864`` lets glibc serve
-    arrays up to 64 MB from its heap instead of fresh (page-faulting) mappings.
+    Returns the environment that the benchmark passes to ``DaskExecutor(worker_env=...)`` (also kept in
+    :data:`WORKER_ENV`). ``MALLOC_TRIM_THRESHOLD_=65536`` alone is Dask's own default, e.g. to compare
+    with the engine's :data:`tiles.executors.WORKER_MALLOC_ENV`.
     """
-    import dask
-    import distributed  # noqa: F401 - loads distributed's configuration defaults
+    global WORKER_ENV
+    from tiles.executors import WORKER_MALLOC_ENV
 
-    env = dict(dask.config.get("distributed.nanny.pre-spawn-environ") or {})
+    env = dict(WORKER_MALLOC_ENV)
     for pair in pairs:
         key, sep, value = pair.partition("=")
         if not sep or not key:
             raise ValueError(f"--worker-env takes KEY=VALUE. Got {pair!r}")
-        env[key] = value
-    dask.config.set({"distributed.nanny.pre-spawn-environ": env})
+        if value:
+            env[key] = value
+        else:
+            env.pop(key, None)  # KEY= drops the engine's setting
+    WORKER_ENV = env
     return env
 
 

@@ -167,7 +167,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--skip", choices=("sam", "svm"), action="append", default=[], help="skip a part")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
     ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
-                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_=67108864")
+                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_= (empty: drop the engine's setting)")
     a = ap.parse_args(argv)
     env = C.set_worker_env(a.worker_env)
     if a.quick:
@@ -191,7 +191,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f"load average at start: {C.loadavg()}", flush=True)
     print(f"worker environment: {env}", flush=True)
     tmp = Path(tempfile.mkdtemp(prefix="bench-classify-", dir=a.dir))
-    ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1)
+    ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1, worker_env=C.WORKER_ENV)
     try:
         if "sam" not in a.skip:
             # (a) ---------------------------------------------------------------------------------------

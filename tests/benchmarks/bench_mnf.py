@@ -97,7 +97,7 @@ def child_run(run_dir: Path, src: Path, tile: int, workers: int, components: int
     from tiles.executors import DaskExecutor
 
     t0 = time.perf_counter()
-    ex = DaskExecutor(n_workers=workers, threads_per_worker=1)
+    ex = DaskExecutor(n_workers=workers, threads_per_worker=1, worker_env=C.WORKER_ENV)
     start = time.perf_counter() - t0
     try:
         with C.PeakRSS() as mem:
@@ -245,7 +245,7 @@ def main(argv: list[str] | None = None) -> int:
                     help="skip a part: a (the floor and the runs, and b) or c (in memory); repeatable")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
     ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
-                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_=67108864")
+                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_= (empty: drop the engine's setting)")
     ap.add_argument("--child-run", nargs=2, type=Path, metavar=("RUN_DIR", "SRC"), help=argparse.SUPPRESS)
     ap.add_argument("--child-inmem", type=Path, metavar="SRC", help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
@@ -279,7 +279,7 @@ def main(argv: list[str] | None = None) -> int:
     tmp = Path(tempfile.mkdtemp(prefix="bench-mnf-", dir=a.dir))
     src = tmp / "cube.zarr"
     try:
-        ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1)
+        ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1, worker_env=C.WORKER_ENV)
         try:
             info = C.build_cube(src, a.size, a.bands, a.tile, ex)
             print(f"built the cube in {info['seconds']:.1f} s ({C.gb(info['disk'])} on disk)", flush=True)
