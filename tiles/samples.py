@@ -9,6 +9,7 @@ import numpy as np
 
 from .grid import Tile
 from .step import Block
+from .store import decode
 
 __all__ = ["in_core", "gather", "merge_gathered", "select_tiles_holding", "select_no_tiles"]
 
@@ -23,9 +24,12 @@ def in_core(tile: Tile, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray,
 
 def gather(block: Block, alias: str, rows: np.ndarray, cols: np.ndarray, dtype=np.float32) -> dict:
     """Input ``alias`` at the samples in this tile's core: ``idx`` and ``X`` (n, bands) of the valid
-    ones (finite in every band), ``bad``: indices of samples on nodata."""
+    ones (finite in every band), ``bad``: indices of samples on nodata. Values are decoded (physical)
+    also when the step reads stored values."""
     idx, rr, cc = in_core(block.tile, np.asarray(rows), np.asarray(cols))
     x = block.data[alias][:, rr, cc].T
+    if not block.decoded:
+        x = decode(x, block.meta[alias].spec)
     ok = block.valid[rr, cc] & np.all(np.isfinite(x), axis=1)
     return {"idx": idx[ok].astype(np.int64), "X": np.ascontiguousarray(x[ok], dtype=dtype),
             "bad": idx[~ok].astype(np.int64)}

@@ -98,6 +98,7 @@ class Block:
     params: the step's parameters.
     static: the step's static data (small arrays or JSON, e.g. sample points).
     meta: alias -> InputMeta of each input.
+    decoded: whether ``data`` holds decoded values (False: stored values of a ``decode=False`` step).
     """
 
     data: dict[str, np.ndarray]
@@ -107,6 +108,7 @@ class Block:
     params: Mapping[str, Any]
     static: Mapping[str, Any]
     meta: dict[str, InputMeta]
+    decoded: bool = True
 
     @property
     def core_valid(self) -> np.ndarray:

@@ -116,7 +116,8 @@ def read_block(task: TileTask) -> Block:
         if step.decode:
             for arr in data.values():
                 arr[:, ~valid] = np.nan
-    return Block(data=data, valid=valid, tile=tile, grid=sub, params=step.params, static=step.static, meta=meta)
+    return Block(data=data, valid=valid, tile=tile, grid=sub, params=step.params, static=step.static, meta=meta,
+                 decoded=step.decode or step.reader is not None)
 
 
 def run_accumulate(task: TileTask) -> Any:
