@@ -81,6 +81,52 @@ def test_angle_check_values_and_edge_cases() -> None:
         spectral_angle(t, np.zeros((1, 3)))
 
 
+@pytest.mark.parametrize("offset", [None, 0.01])
+def test_angle_step_on_stored_int16_against_sklearn(tmp_path: Path, offset: float | None) -> None:
+    """The step computes in float32 from the stored integers (float64 below 0.1 rad): its angles
+    against the float64 oracle, with near-parallel pixels, a CF offset and a band on nodata."""
+    rng = np.random.default_rng(11)
+    b, size = 60, 40
+    wl = np.linspace(400, 2500, b)
+    refs = rng.uniform(0.05, 0.7, (5, b))
+    n = size * size
+    refl = rng.uniform(0.02, 0.8, (n, b))
+    near = rng.choice(n, 600, replace=False)  # scaled references plus a little noise: angles of 1e-4-0.1 rad
+    refl[near] = refs[near % 5] * rng.uniform(0.5, 1.5, (600, 1)) + rng.normal(0, 1, (600, 1)) * \
+        rng.uniform(1e-4, 3e-2, (600, 1)) * rng.normal(size=(600, b))
+    refl = np.clip(refl, 0.0, 1.0)
+    scale, off = 1e-4, (offset or 0.0)
+    stored = np.round((refl - off) / scale).astype(np.int16)
+    stored[near[:3], 7] = -9999  # one band on nodata in three pixels: those pixels get no angle
+    cube = stored.T.reshape(b, size, size)
+    attrs = {"scale_factor": scale} | ({"add_offset": offset} if offset else {})
+    spec = OutputSpec(bands=tuple(f"b{i:02d}" for i in range(b)), dtype="int16", nodata=-9999, attrs=attrs,
+                      coords={"wavelength": tuple(wl)})  # no FWHM: the library is taken as is on equal centres
+    lib = SpectralLibrary(tuple(f"m{i}" for i in range(5)), wl, refs)
+    out, _ = run_on_arrays([sam_step("sam", "src/cube", library=lib, threshold=0.1)], {"cube": (cube, spec)},
+                           tmp_path, tile=16, raw=True)
+    got = out["sam/angle"].reshape(5, n).T.astype(np.float64)
+    phys = stored * scale + off
+    # oracle named in METHODS.md: arccos(clip(sklearn cosine_similarity)), on the decoded values
+    expect = np.arccos(np.clip(cosine_similarity(phys, refs), -1, 1))
+    bad = np.zeros(n, bool)
+    bad[near[:3]] = True
+    assert np.isnan(got[bad]).all() and np.isfinite(got[~bad]).all()
+    got, expect = got[~bad], expect[~bad]
+    small = expect < 0.09
+    assert small.sum() > 300  # the near-parallel pixels are exercised
+    # below 0.1 rad: float64 arithmetic, stored as float32 (relative 6e-8); arccos in float64 itself
+    # is good to ~1e-8 rad near zero (METHODS.md), hence the absolute term
+    np.testing.assert_allclose(got[small], expect[small], rtol=2e-7, atol=2e-8)
+    # elsewhere float32 rounding of the cosine (~1e-6) moves the angle by ~1e-6 / sin(angle)
+    np.testing.assert_allclose(got[~small], expect[~small], rtol=0, atol=2e-5)
+    cls = out["sam/classes"][0].reshape(n)[~bad]
+    best = expect.argmin(axis=1)
+    far_from_threshold = np.abs(expect.min(axis=1) - 0.1) > 1e-4
+    np.testing.assert_array_equal(cls[far_from_threshold],
+                                  np.where(expect.min(axis=1) <= 0.1, best + 1, 0)[far_from_threshold])
+
+
 def test_assign_min_angle_thresholds() -> None:
     ang = np.array([[0.05, 0.20, 0.30], [0.30, 0.12, 0.50], [0.40, 0.45, 0.16], [np.nan] * 3])
     ref_class = np.array([1, 2, 2])

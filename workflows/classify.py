@@ -6,7 +6,10 @@ Spectral angle (Kruse et al., 1993, Remote Sens. Environ. 44:145-163)
     ``alpha = arccos(t.r / (|t| |r|))`` in radians between each pixel ``t`` and each reference ``r``,
     the cosine clipped to [-1, 1] (rounding can push it past 1); near-parallel pairs (cosine above
     1 - 1e-4) are recomputed as ``2 atan2(|u - v|, |u + v|)`` on unit vectors, which keeps full
-    precision where arccos loses half of it. Zero or non-finite pixels give NaN.
+    precision where arccos loses half of it. Zero or non-finite pixels give NaN. The step works on
+    the stored values (a positive scale factor leaves angles unchanged) in float32 and recomputes in
+    float64 every pixel with an angle under 0.1 rad, where class decisions are made; above that,
+    float32 rounding moves an angle by about 1e-6 / sin(angle) rad (at most ~1e-5 rad).
     A pixel takes the class of the reference with the smallest angle if that angle is at most the
     threshold of the reference's class (one for all, or one per class); otherwise 0 (unclassified).
 
@@ -597,22 +600,102 @@ def _finalize_references(acc, params, meta, *, library: dict | None, table: Samp
 
 
 # SAM ---------------------------------------------------------------------------------------------
+_SAM_CHUNK = 4096  # pixels per chunk of the spectral angle kernel: a float32 workspace of b x 4096 stays in cache
+_SAM_REFINE = 0.1  # radians: pairs closer than this are recomputed in float64 (METHODS.md's precise form)
+
+
+def _band_runs(index: np.ndarray) -> list[slice]:
+    """The band index as runs of consecutive bands (slices), so copies need no fancy indexing."""
+    index = np.asarray(index, dtype=np.int64)
+    if index.size == 0:
+        return []
+    cut = np.flatnonzero(np.diff(index) != 1) + 1
+    return [slice(int(r[0]), int(r[-1]) + 1) for r in np.split(index, cut)]
+
+
+def _stored_to_work(spec: OutputSpec) -> tuple[float | None, float | None, Any]:
+    """(scale, offset, nodata) to apply to stored values, keeping only what changes an angle."""
+    scale = spec.attrs.get("scale_factor")
+    offset = spec.attrs.get("add_offset") or None
+    nodata = spec.nodata
+    if nodata is not None and isinstance(nodata, float) and np.isnan(nodata):
+        nodata = None  # NaN: caught by the finiteness check
+    if offset is None and (scale is None or float(scale) > 0):
+        scale = None  # a positive factor leaves every angle unchanged (scale invariance)
+    return (None if scale is None else float(scale)), (None if offset is None else float(offset)), nodata
+
+
 def _sam_kernel(block: Block, model: dict) -> dict:
+    """Angles and classes of one tile, from the stored values (the step reads them undecoded).
+
+    Per chunk of pixels: the selected bands are copied into a float32 workspace (scaled only if an
+    offset makes the stored values' angles differ from the reflectances'), one float32 matrix
+    product with the unit reference vectors gives the cosines, and pairs with an angle under
+    ``_SAM_REFINE`` are recomputed in float64 by :func:`_angles_bands_first` (arccos, and the
+    atan2 form near zero). Elsewhere float32 rounding moves an angle by about 1e-6 / sin(angle) rad
+    (tested against the float64 formula).
+    """
     p = block.params
     shape = block.valid.shape
     refs = np.asarray(model["references"], dtype=np.float64)
+    rn = np.linalg.norm(refs, axis=1)
+    if np.any(~(rn > 0)):
+        raise ClassifyError(f"reference(s) {np.flatnonzero(~(rn > 0)).tolist()} have zero norm or NaN values")
+    unit32 = (refs / rn[:, None]).astype(np.float32)
     ref_class = np.asarray(p["ref_class"])
     thr = class_thresholds(ref_class, p["class_names"], p["threshold"], p["class_thresholds"])
-    cls = _blank(1, shape, 0, np.uint8)
-    angle = _blank(refs.shape[0], shape, np.nan, np.float32)
-    for s, e, X, ok in _pixel_chunks(block, model["band_index"]):
+    m = refs.shape[0]
+    x = block.data["x"]
+    flat = x.reshape(x.shape[0], -1)
+    runs = _band_runs(model["band_index"])
+    nb = sum(r.stop - r.start for r in runs)
+    scale, offset, nodata = _stored_to_work(block.meta["x"].spec)
+    is_int = np.issubdtype(flat.dtype, np.integer)
+    nodata_v = None if nodata is None else np.asarray(nodata).astype(flat.dtype)
+    valid = block.valid.ravel()
+    n = flat.shape[1]
+    cls = np.zeros(n, dtype=np.uint8)
+    angle = np.full((m, n), np.nan, dtype=np.float32)
+    cos_refine = np.float32(np.cos(_SAM_REFINE))
+    work = np.zeros((nb, _SAM_CHUNK), dtype=np.float32)
+    dots = np.empty((m, _SAM_CHUNK), dtype=np.float32)
+    for s in range(0, n, _SAM_CHUNK):
+        e = min(s + _SAM_CHUNK, n)
+        c = e - s
+        ok = valid[s:e].copy()
         if not ok.any():
             continue
-        ang = _angles_bands_first(X if ok.all() else X[:, ok], refs)  # (m, c)
-        cols = np.arange(s, e)[ok]
-        angle[:, cols] = ang
-        cls[0, cols] = assign_min_angle(ang.T, ref_class, thr)
-    return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(-1, *shape)}
+        X = work[:, :c]
+        row = 0
+        for r in runs:
+            k = r.stop - r.start
+            np.copyto(X[row:row + k], flat[r, s:e], casting="unsafe")
+            if nodata_v is not None:
+                ok &= ~(flat[r, s:e] == nodata_v).any(axis=0)
+            row += k
+        if scale is not None:
+            X *= np.float32(scale)
+        if offset is not None:
+            X += np.float32(offset)
+        sq = (X * X).sum(axis=0)  # per column, in band order: the same whatever the tiling
+        if not is_int or offset is not None:
+            ok &= np.isfinite(sq) & np.isfinite(X.sum(axis=0))
+        ok &= sq > 0
+        if not ok.any():
+            continue
+        # a full-width product whatever c is, so a pixel's arithmetic never depends on the tiling
+        with np.errstate(invalid="ignore", divide="ignore"):  # NaN columns are masked by ok below
+            D = np.matmul(unit32, work, out=dots)[:, :c]
+            D /= np.sqrt(sq)
+        np.clip(D, -1.0, 1.0, out=D)
+        A = np.arccos(D)
+        A[:, ~ok] = np.nan
+        close = np.flatnonzero(ok & (D > cos_refine).any(axis=0))
+        if close.size:
+            A[:, close] = _angles_bands_first(X[:, close].astype(np.float64), refs)
+        angle[:, s:e] = A
+        cls[s:e] = assign_min_angle(A.T, ref_class, thr)
+    return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(m, *shape)}
 
 
 def _sam_outputs(meta, model, params) -> dict[str, OutputSpec]:
@@ -767,7 +850,7 @@ def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = Non
     params.update(step=name, method="sam", threshold=threshold, class_thresholds=thr,
                   exclude=[list(map(float, r)) for r in exclude])
     return Step(name=name, kernel=_sam_kernel, outputs=_sam_outputs, inputs={"x": input_ref}, params=params,
-                fit=fit, static=static)
+                fit=fit, static=static, decode=False, version="2")
 
 
 def sff_step(name: str, input_ref: str, *, wl_range: tuple[float, float], library: SpectralLibrary | None = None,
