@@ -522,7 +522,9 @@ def test_step_declarations_and_kernels(rng):
     section = MnfConfig(components=3, denoise_components=2)
     fwd, den = mnf_steps(section)
     assert fwd.name == "mnf" and den.name == "mnf_denoised"
-    assert fwd.inputs == {"cube": "mosaic/reflectance"} and fwd.fit.halo == 1 and fwd.halo == 0
+    # the fit reads no halo (border pairs meet in merge) and both phases read stored values
+    assert fwd.inputs == {"cube": "mosaic/reflectance"} and fwd.fit.halo == 0 and fwd.halo == 0
+    assert fwd.decode is False
     assert den.inputs == {"components": "mnf/components", "cube": "mosaic/reflectance"}
     assert [s.name for s in mnf_steps(MnfConfig(method="pca"), "x/y")] == ["pca"]
     cube, _, _ = _scene(rng, rows=20, cols=20, p=6)
@@ -603,6 +605,44 @@ def test_engine_tiled_equals_untiled_and_matches_pure_functions(rng, tmp_path):
     assert len(saved) == 1 and saved[0].with_suffix(".json").is_file()
     with np.load(saved[0]) as z:
         np.testing.assert_allclose(z["eigenvalues"], model["eigenvalues"], rtol=1e-10)
+
+
+@pytest.mark.parametrize("offset", [0.0, -0.05])
+def test_engine_on_stored_int16_equals_scipy_on_decoded_values(rng, tmp_path, offset):
+    """The step works on stored integers (scale_factor, add_offset, nodata in single bands) and scales
+    the moments at the end: the model equals an independent whole-array reference on the decoded
+    values, and the components equal the pure transform of the decoded cube."""
+    cube, _, valid, _ = _engine_inputs(rng, p=7)
+    p, rows, cols = cube.shape
+    scale = 1e-4
+    phys = 0.3 + 0.02 * cube  # reflectance-like values
+    stored = np.round((phys - offset) / scale).astype(np.int16)
+    stored[3, 20, 10] = -9999  # one band on nodata in a valid pixel: the pixel leaves the statistics
+    stored[:, 30, 40] = -9999
+    spec = OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(p)), dtype="int16", nodata=-9999,
+                      attrs={"scale_factor": scale, **({"add_offset": offset} if offset else {})})
+    steps = mnf_steps(MnfConfig(components=4), input_ref="src/reflectance")
+    out, _ = _engine_run(steps, stored, spec, valid, tmp_path, 8, name=f"int16{offset}")
+    decoded = stored * scale + offset  # float64, as a user would decode
+    ok = valid & (stored != -9999).all(axis=0)
+    # whole-array reference (METHODS.md oracle): np.cov of the data and of both shift differences,
+    # noise = half the mean of the two difference covariances, scipy.linalg.eigh(S, N)
+    X = decoded[:, ok]
+    dh = (decoded[:, :, :-1] - decoded[:, :, 1:])[:, ok[:, :-1] & ok[:, 1:]]
+    dv = (decoded[:, :-1, :] - decoded[:, 1:, :])[:, ok[:-1, :] & ok[1:, :]]
+    s_ref = np.cov(X)
+    n_ref = 0.25 * (np.cov(dh) + np.cov(dv))
+    lam_ref = scipy.linalg.eigh(s_ref, n_ref, eigvals_only=True)[::-1]
+    saved = next((tmp_path / f"int16{offset}" / "models").glob("mnf-*.npz"))
+    with np.load(saved) as z:
+        np.testing.assert_allclose(z["eigenvalues"], lam_ref, rtol=1e-8)
+        np.testing.assert_allclose(z["mean"], X.mean(axis=1), rtol=1e-12)
+        model = {k: z[k] for k in ("eigenvectors", "mean", "band_index")}
+    model.update(bands=list(spec.bands), n_components=4)
+    y = forward(np.where(ok, decoded, np.nan).astype(np.float64), model)
+    got = out["mnf/components"]
+    assert np.isnan(got[:, ~ok]).all()
+    np.testing.assert_allclose(got[:, ok], y[:, ok], rtol=1e-6, atol=1e-6 * np.abs(y[:, ok]).max())
 
 
 @pytest.mark.slow

@@ -13,9 +13,15 @@ How the statistics are gathered, tile by tile
   ``z(r, c) - z(r, c + 1)`` (horizontal) and ``z(r, c) - z(r + 1, c)`` (vertical). Everything is in
   float64 and centred per tile (in row chunks, merged within the tile), so a large mean does not eat
   the precision of the covariance.
-* A difference pair is counted by the tile whose core holds its *first* pixel; the second pixel may
-  lie in the one-pixel halo. So every pair of the mosaic is counted exactly once, whatever the tiling.
-  Pairs touching an invalid pixel (nodata, or any non-finite band) are left out.
+* A tile counts the difference pairs inside its core. For the pairs across its borders it keeps its
+  first and last rows and columns (:class:`Strip`, keyed by the border's position in the grid), and
+  :func:`merge` pairs the two strips of a border when the tiles on both sides meet. So every pair of
+  the mosaic is counted exactly once, whatever the tiling, and no tile reads a halo (for a one-pixel
+  halo zarr decodes the neighbours' whole inner chunks, which tripled the fit's reading time in
+  ``tests/benchmarks/bench_mnf.py``). Pairs touching an invalid pixel (nodata, or any non-finite band) are left out.
+* The step reads stored values (e.g. int16 reflectance x 10000): moments of the stored values are
+  exact in float64, and :func:`finalize` turns them into moments of physical values with the input's
+  CF ``scale_factor`` and ``add_offset`` (means scale and shift, covariances scale by the square).
 * :func:`merge` combines two accumulators with the pairwise update of Chan, Golub and LeVeque (1979):
   ``delta = mu_B - mu_A``, ``M2 = M2_A + M2_B + delta delta' n_A n_B / n``. It is associative up to
   float64 round-off, so the engine may merge in any tree.
@@ -39,7 +45,7 @@ bands in a warning or in the error.
 Sampling for speed
 ------------------
 ``tile_fraction < 1`` fits on a seeded random subset of tiles (:func:`select_tiles`, the engine's
-``Fit.select``); ``pixel_fraction < 1`` keeps a pixel when a hash of (seed, global row, global column)
+``Fit.select``; pairs across a border count only when both tiles are in the subset); ``pixel_fraction < 1`` keeps a pixel when a hash of (seed, global row, global column)
 falls below the fraction, so the pixel sample does not depend on the tiling. Both are recorded in the
 model under ``"selection"``.
 
@@ -289,16 +295,33 @@ def merge_moments(a: Moments, b: Moments) -> Moments:
 
 
 @dataclass(frozen=True)
+class Strip:
+    """One border row or column of a tile core, kept until the tile across that border is merged.
+
+    values: (p, L) the pixels as read (stored values in the engine); mask: (L,) the pixels that may
+    enter a difference pair (as its first pixel for ``first`` strips, its second otherwise).
+    """
+
+    values: np.ndarray
+    mask: np.ndarray
+    first: bool
+
+
+@dataclass(frozen=True)
 class MnfAccumulator:
     """What one tile (or a merged group of tiles) contributes to the fit.
 
     data: moments of the valid pixels; noise: direction -> moments of the shift differences (empty for
-    PCA); tiles: indices of the tiles seen.
+    PCA); tiles: indices of the tiles seen; edges: border strips still waiting for their neighbour,
+    keyed by (direction, border coordinate, start): a border between two tiles has the same key on
+    both sides; stored: whether the values are stored values (scaled in :func:`finalize`).
     """
 
     data: Moments
     noise: Mapping[str, Moments] = field(default_factory=dict)
     tiles: tuple[tuple[int, int], ...] = ()
+    edges: Mapping[tuple[str, int, int], Strip] = field(default_factory=dict)
+    stored: bool = False
 
 
 # --------------------------------------------------------------------------------------------------
@@ -359,12 +382,24 @@ def _area_mask(block: Block, area: Mapping[str, Any] | None) -> np.ndarray | Non
     return shapely.contains_xy(geom, x, y)
 
 
-def accumulate(block: Block) -> MnfAccumulator:
-    """Moments of the valid pixels of the tile core and of the shift differences starting in it.
+def _ok_mask(x: np.ndarray, valid: np.ndarray, nodata: Any) -> np.ndarray:
+    """Pixels that are valid, finite in every band and not on the nodata value in any band."""
+    ok = valid.copy()
+    if np.issubdtype(x.dtype, np.floating):
+        ok &= np.isfinite(x).all(axis=0)
+    if nodata is not None and not (isinstance(nodata, float) and np.isnan(nodata)):
+        ok &= ~(x == np.asarray(nodata).astype(x.dtype)).any(axis=0)
+    return ok
 
-    ``block.data["cube"]`` is (bands, rows, cols) over the padded window (halo 1); ``block.params`` are
-    the step's parameters (:class:`MnfConfig` dumped to JSON). A pixel is valid where ``block.valid``
-    holds and every band is finite.
+
+def accumulate(block: Block) -> MnfAccumulator:
+    """Moments of the valid pixels of the tile core and of the shift differences inside it.
+
+    ``block.data["cube"]`` is (bands, rows, cols) over the tile (stored values in the engine, decoded
+    values also work); ``block.params`` are the step's parameters (:class:`MnfConfig` dumped to
+    JSON). A pixel is valid where ``block.valid`` holds and no band is non-finite or nodata. Pairs
+    across the tile's borders are left to :func:`merge`: the accumulator keeps the border rows and
+    columns (:class:`Strip`) that such pairs need, so no tile reads its neighbours' pixels.
     """
     params = block.params
     if CUBE not in block.data:
@@ -375,54 +410,101 @@ def accumulate(block: Block) -> MnfAccumulator:
     p, hp, wp = x.shape
     if block.valid.shape != (hp, wp):
         raise MnfError(f"valid mask {block.valid.shape} does not match the data {(hp, wp)} on {block.tile.name}")
-    ok = block.valid & np.isfinite(x).all(axis=0)
     rs, cs = block.tile.crop
-    r0, r1, c0, c1 = rs.start, rs.stop, cs.start, cs.stop
-    pr, pc = block.tile.padded.row, block.tile.padded.col
+    x = x[:, rs, cs]
+    nodata = block.meta[CUBE].spec.nodata if CUBE in block.meta else None
+    ok = _ok_mask(x, block.valid[rs, cs], nodata)
+    core = block.tile.core
+    h, w = core.rows, core.cols
     seed, frac = int(params.get("seed", 0)), float(params.get("pixel_fraction", 1.0))
-    keep = pixel_sample_mask(np.arange(pr, pr + hp)[:, None], np.arange(pc, pc + wp)[None, :], seed, frac)
+    keep = pixel_sample_mask(np.arange(core.row, core.row + h)[:, None],
+                             np.arange(core.col, core.col + w)[None, :], seed, frac)
     use = ok & keep  # pixels (and first pixels of pairs) that enter the statistics
     method = params.get("method", "mnf")
     directions = _DIRECTIONS[params.get("noise_direction", "both")] if method == "mnf" else ()
     area = _area_mask(block, params.get("noise_area")) if method == "mnf" else None
-    pair_ok = ok if area is None else ok & area
+    pair_ok = ok if area is None else ok & area[rs, cs]
 
     data = Moments.empty(p)
     noise = {d: Moments.empty(p) for d in directions}
-    step = max(1, _CHUNK_VALUES // max(1, p * (c1 - c0)))
-    for a in range(r0, r1, step):
-        b = min(a + step, r1)
-        m = use[a:b, c0:c1]
-        if m.any():
-            data = merge_moments(data, _moments_inplace(_gather64(x[:, a:b, c0:c1], m)))
+    x = np.ascontiguousarray(x)
+    flat = x.reshape(p, h * w)
+    step = max(1, _CHUNK_VALUES // max(1, p * w))
+    for a in range(0, h, step):
+        b = min(a + step, h)
+        m = use[a:b]
+        if m.all():
+            data = merge_moments(data, _moments_inplace(flat[:, a * w:b * w].astype(np.float64)))
+        elif m.any():
+            data = merge_moments(data, _moments_inplace(np.take(flat, np.flatnonzero(m) + a * w, axis=1)
+                                                        .astype(np.float64)))
         for d in directions:
-            if d == "horizontal":  # pair (r, c) - (r, c + 1); c + 1 must lie in the padded window
-                ce = min(c1, wp - 1)
-                first = (slice(a, b), slice(c0, ce))
-                second = (slice(a, b), slice(c0 + 1, ce + 1))
-            else:  # vertical: (r, c) - (r + 1, c)
-                be = min(b, hp - 1)
-                if be <= a:
-                    continue
-                first = (slice(a, be), slice(c0, c1))
-                second = (slice(a + 1, be + 1), slice(c0, c1))
-            pm = use[first] & pair_ok[first] & pair_ok[second]
-            if pm.any():
-                diff = _gather64(x[:, first[0], first[1]], pm)
-                diff -= _gather64(x[:, second[0], second[1]], pm)  # exact: float32 values in float64
-                noise[d] = merge_moments(noise[d], _moments_inplace(diff))
-    return MnfAccumulator(data, noise, (tuple(int(i) for i in block.tile.index),))
+            if d == "horizontal":  # pair (r, c) - (r, c + 1) inside the tile
+                rows, cols, shift = slice(a, b), slice(0, w - 1), 1
+                sr, sc = rows, slice(1, w)
+            else:  # vertical: (r, c) - (r + 1, c) inside the tile
+                rows, cols, shift = slice(a, min(b, h - 1)), slice(0, w), w
+                sr, sc = slice(a + 1, min(b, h - 1) + 1), cols
+            pm = use[rows, cols] & pair_ok[rows, cols] & pair_ok[sr, sc]
+            if pm.size == 0:
+                continue
+            if pm.all():  # every pair: one pass over two shifted views, no gather
+                diff = np.subtract(x[:, rows, cols], x[:, sr, sc], dtype=np.float64).reshape(p, -1)
+            elif pm.any():
+                rr, cc = np.nonzero(pm)
+                idx = (rr + rows.start) * w + cc  # first pixels, in the flattened tile
+                diff = np.take(flat, idx, axis=1).astype(np.float64)
+                diff -= np.take(flat, idx + shift, axis=1)  # exact: stored or float32 values in float64
+            else:
+                continue
+            noise[d] = merge_moments(noise[d], _moments_inplace(diff))
+    edges: dict[tuple[str, int, int], Strip] = {}
+
+    def strip(key, values, mask, first):
+        if mask.any():  # a strip with no usable pixel can pair with nothing
+            edges[key] = Strip(np.ascontiguousarray(values), mask.copy(), first)
+
+    r0, r1, c0, c1 = core.row, core.row + h, core.col, core.col + w
+    if "vertical" in directions:
+        strip(("vertical", r1, c0), x[:, h - 1, :], use[h - 1] & pair_ok[h - 1], True)  # above the border
+        strip(("vertical", r0, c0), x[:, 0, :], pair_ok[0], False)  # below the border
+    if "horizontal" in directions:
+        strip(("horizontal", c1, r0), x[:, :, w - 1], use[:, w - 1] & pair_ok[:, w - 1], True)
+        strip(("horizontal", c0, r0), x[:, :, 0], pair_ok[:, 0], False)
+    return MnfAccumulator(data, noise, (tuple(int(i) for i in block.tile.index),), edges,
+                          stored=not block.decoded)
 
 
 def merge(a: MnfAccumulator, b: MnfAccumulator) -> MnfAccumulator:
-    """Merge two accumulators (associative; any tree order gives the same result up to round-off)."""
+    """Merge two accumulators (associative; any tree order gives the same result up to round-off).
+
+    Border strips of ``a`` and ``b`` with the same key are the two sides of one border: their
+    difference pairs join the noise moments and the strips are dropped.
+    """
     if set(a.noise) != set(b.noise):
         raise MnfError(f"cannot merge noise statistics of directions {sorted(a.noise)} and {sorted(b.noise)}")
-    return MnfAccumulator(
-        merge_moments(a.data, b.data),
-        {d: merge_moments(a.noise[d], b.noise[d]) for d in a.noise},
-        a.tiles + b.tiles,
-    )
+    if a.stored != b.stored:
+        raise MnfError("cannot merge statistics of stored values with statistics of decoded values")
+    noise = {d: merge_moments(a.noise[d], b.noise[d]) for d in a.noise}
+    small, big = (a.edges, b.edges) if len(a.edges) <= len(b.edges) else (b.edges, a.edges)
+    edges = dict(big)
+    for key, s1 in small.items():
+        s2 = edges.pop(key, None)
+        if s2 is None:
+            edges[key] = s1
+            continue
+        if s1.first == s2.first:
+            raise MnfError(f"a tile was counted twice: two {key[0]} border strips at {key[1:]} on the same side")
+        top, bottom = (s1, s2) if s1.first else (s2, s1)
+        if top.values.shape != bottom.values.shape:
+            raise MnfError(f"the tiles on both sides of the {key[0]} border at {key[1:]} do not line up: "
+                           f"{top.values.shape} and {bottom.values.shape}")
+        pm = top.mask & bottom.mask
+        if pm.any():
+            diff = top.values[:, pm].astype(np.float64)
+            diff -= bottom.values[:, pm]
+            noise[key[0]] = merge_moments(noise[key[0]], _moments_inplace(diff))
+    return MnfAccumulator(merge_moments(a.data, b.data), noise, a.tiles + b.tiles, edges, a.stored)
 
 
 def select_tiles(tiles: list[Tile], params: Mapping[str, Any]) -> list[Tile]:
@@ -529,6 +611,24 @@ def _noise_covariance(acc: MnfAccumulator, p: int) -> tuple[np.ndarray, dict[str
     return 0.5 * (n + n.T), counts
 
 
+def _scale_offset(spec: OutputSpec) -> tuple[float, float]:
+    """The CF scale_factor and add_offset of an input (1 and 0 when absent)."""
+    scale = spec.attrs.get("scale_factor")
+    offset = spec.attrs.get("add_offset")
+    return (1.0 if scale is None else float(scale)), (0.0 if not offset else float(offset))
+
+
+def _to_physical(acc: MnfAccumulator, spec: OutputSpec) -> MnfAccumulator:
+    """Moments of stored values turned into moments of physical values (x = scale * stored + offset):
+    means scale and shift, M2 scales by scale squared; differences do not see the offset."""
+    s, o = _scale_offset(spec)
+    if s == 1.0 and o == 0.0:
+        return acc
+    data = Moments(acc.data.n, acc.data.mean * s + o, acc.data.m2 * (s * s))
+    noise = {d: Moments(m.n, m.mean * s, m.m2 * (s * s)) for d, m in acc.noise.items()}
+    return MnfAccumulator(data, noise, acc.tiles, {}, stored=False)
+
+
 def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, InputMeta]) -> dict:
     """The MNF (or PCA) model from the merged statistics; see the module docstring for its keys."""
     method = params.get("method", "mnf")
@@ -537,6 +637,8 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
     bands = list(spec.bands) if spec is not None else [f"band_{i + 1}" for i in range(p)]
     if len(bands) != p:
         raise MnfError(f"the input {CUBE!r} names {len(bands)} bands but the statistics have {p}")
+    if acc.stored and spec is not None:
+        acc = _to_physical(acc, spec)
     n = acc.data.n
     if n <= p:
         raise MnfError(f"the {method.upper()} fit saw {n} valid pixel(s); it needs more than the number of "
@@ -683,11 +785,68 @@ def denoise(x: np.ndarray, model: Mapping[str, Any], k: int) -> np.ndarray:
     return inverse(forward(x, model, k), model, k, passthrough=x)
 
 
+def _band_runs(index: np.ndarray) -> list[slice]:
+    """A band index as runs of consecutive bands (slices), so copies need no fancy indexing."""
+    index = np.asarray(index, dtype=np.int64)
+    if index.size == 0:
+        return []
+    cut = np.flatnonzero(np.diff(index) != 1) + 1
+    return [slice(int(r[0]), int(r[-1]) + 1) for r in np.split(index, cut)]
+
+
+def forward_stored(x: np.ndarray, model: Mapping[str, Any], spec: OutputSpec, valid: np.ndarray,
+                   k: int | None = None) -> np.ndarray:
+    """:func:`forward` of stored values (``x = scale * stored + offset``, CF), float32 (k, ...).
+
+    The scale goes into the rows of the transform and the offset and mean into one bias per component,
+    ``y = (scale V') stored + V' (offset - mu)``, in float64 over pixel chunks copied band run by band
+    run; pixels outside ``valid``, non-finite or on nodata in a used band give NaN.
+    """
+    _check_bands(x, model, "the input")
+    k = int(model["n_components"]) if k is None else int(k)
+    flat, shp = _pixels(x)
+    scale, offset = _scale_offset(spec)
+    vt = np.asarray(model["eigenvectors"], dtype=np.float64)[:, :k].T  # (k, p_used)
+    w = np.ascontiguousarray(vt * scale)
+    bias = (vt @ (offset - np.asarray(model["mean"], dtype=np.float64)))[:, None]
+    runs = _band_runs(model["band_index"])
+    ok_all = np.asarray(valid, dtype=bool).ravel()
+    nodata = spec.nodata
+    check_nodata = nodata is not None and not (isinstance(nodata, float) and np.isnan(nodata))
+    nodata_v = np.asarray(nodata).astype(flat.dtype) if check_nodata else None
+    is_float = np.issubdtype(flat.dtype, np.floating)
+    p_used = w.shape[1]
+    chunk = max(1, min(flat.shape[1], _CHUNK_VALUES // max(1, p_used) // 4))
+    buf = np.empty((p_used, chunk), dtype=np.float64)
+    out = np.empty((k, flat.shape[1]), dtype=np.float32)
+    for a in range(0, flat.shape[1], chunk):
+        e = min(a + chunk, flat.shape[1])
+        xb = buf[:, : e - a]
+        ok = ok_all[a:e].copy()
+        row = 0
+        for r in runs:
+            n = r.stop - r.start
+            src = flat[r, a:e]
+            np.copyto(xb[row:row + n], src, casting="unsafe")
+            if check_nodata:
+                ok &= ~(src == nodata_v).any(axis=0)
+            row += n
+        if is_float:
+            ok &= np.isfinite(xb).all(axis=0)
+        y = w @ xb
+        y += bias
+        y[:, ~ok] = np.nan
+        out[:, a:e] = y
+    return out.reshape((k,) + shp)
+
+
 def forward_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np.ndarray]:
     """Engine kernel: the ``components`` of the block's cube, float32 (k, rows, cols)."""
     if model is None:
         raise MnfError("the MNF/PCA kernel needs a fitted model")
-    return {COMPONENTS: forward(block.data[CUBE], model)}
+    if block.decoded:
+        return {COMPONENTS: forward(block.data[CUBE], model)}
+    return {COMPONENTS: forward_stored(block.data[CUBE], model, block.meta[CUBE].spec, block.valid)}
 
 
 def _transform_attrs(model: Mapping[str, Any]) -> dict:
@@ -775,9 +934,9 @@ def mnf_steps(section: MnfConfig, input_ref: str = "mosaic/reflectance") -> list
     """
     params = section.model_dump(mode="json")
     name = section.step_name
-    fit = Fit(accumulate=accumulate, merge=merge, finalize=finalize, select=select_tiles, halo=1)
+    fit = Fit(accumulate=accumulate, merge=merge, finalize=finalize, select=select_tiles, halo=0)
     steps = [Step(name=name, kernel=forward_kernel, outputs=_component_outputs, inputs={CUBE: input_ref},
-                  params=params, halo=0, fit=fit)]
+                  params=params, halo=0, fit=fit, decode=False, version="2")]
     if section.denoise_components is not None:
         steps.append(Step(
             name=f"{name}_denoised", kernel=denoise_kernel, outputs=_denoised_outputs,
