@@ -235,3 +235,23 @@ def test_raw_step_writes_its_stored_values_unchanged(tmp_path: Path) -> None:
     out, result = run_on_arrays([step], {"refl": (cube, spec)}, tmp_path, tile=16, valid=valid, raw=True)
     assert result.ok
     assert out["copy/output"].dtype == np.int16 and np.array_equal(out["copy/output"], cube)
+
+
+def test_band_runs_copy_equals_fancy_indexing() -> None:
+    from tiles.store import copy_bands, index_runs
+
+    rng = np.random.default_rng(5)
+    flat = rng.integers(-50, 50, (30, 200)).astype(np.int16)
+    flat[7, 13] = -9999  # nodata in a kept band: column 13 is flagged
+    flat[20, 14] = -9999  # in a dropped band: column 14 is not
+    index = np.array([0, 1, 2, 5, 6, 7, 8, 19, 21, 22, 29])
+    runs = index_runs(index)
+    assert [(r.start, r.stop) for r in runs] == [(0, 3), (5, 9), (19, 20), (21, 23), (29, 30)]
+    out = np.empty((index.size, 100), np.float32)
+    hit = copy_bands(flat, runs, slice(0, 100), out, -9999)
+    # oracle: numpy fancy indexing and a direct comparison
+    np.testing.assert_array_equal(out, flat[index, :100].astype(np.float32))
+    np.testing.assert_array_equal(hit, (flat[index, :100] == -9999).any(axis=0))
+    assert hit[13] and not hit[14]
+    assert copy_bands(flat, runs, slice(0, 100), out, float("nan")) is None
+    assert index_runs(np.array([], dtype=int)) == []

@@ -8,7 +8,6 @@ SNR + 1 (Green, Berman, Switzer and Craig, 1988, IEEE TGRS 26(1):65-74); the pai
 """
 from __future__ import annotations
 
-import warnings
 
 import numpy as np
 import pytest

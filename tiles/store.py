@@ -26,7 +26,8 @@ from zarr.codecs import ZstdCodec
 from .grid import Grid, Window
 from .step import OutputSpec
 
-__all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode"]
+__all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode",
+           "index_runs", "copy_bands"]
 
 zarr.config.set({"async.concurrency": 8})
 
@@ -118,6 +119,36 @@ def create_store(path: Path, grid: Grid, outputs: Mapping[str, OutputSpec], layo
 
 def open_store(path: Path) -> "TileStore":
     return TileStore(Path(path))
+
+
+def index_runs(index: np.ndarray) -> list[slice]:
+    """A sorted band index as runs of consecutive bands (slices), for copies without fancy indexing."""
+    index = np.asarray(index, dtype=np.int64)
+    if index.size == 0:
+        return []
+    cut = np.flatnonzero(np.diff(index) != 1) + 1
+    return [slice(int(r[0]), int(r[-1]) + 1) for r in np.split(index, cut)]
+
+
+def copy_bands(flat: np.ndarray, runs: list[slice], cols: slice, out: np.ndarray, nodata=None) -> np.ndarray | None:
+    """Copy bands ``runs`` of ``flat[:, cols]`` (bands, pixels) into ``out`` with a cast, run by run.
+
+    Returns a boolean mask of the columns that hold ``nodata`` in any copied band (None when
+    ``nodata`` is None or NaN: a cast keeps NaN, so a finiteness check finds those).
+    """
+    check = nodata is not None and not (isinstance(nodata, float) and np.isnan(nodata))
+    value = np.asarray(nodata).astype(flat.dtype) if check else None
+    hit = None
+    row = 0
+    for r in runs:
+        k = r.stop - r.start
+        src = flat[r, cols]
+        np.copyto(out[row:row + k], src, casting="unsafe")
+        if check:
+            h = (src == value).any(axis=0)
+            hit = h if hit is None else hit | h
+        row += k
+    return hit
 
 
 def decode(raw: np.ndarray, spec: OutputSpec) -> np.ndarray:

@@ -76,6 +76,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 
 from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
+from tiles.store import copy_bands, index_runs
 
 from .config import ctx_get
 from .continuum import continuum_removed, range_mask
@@ -604,22 +605,11 @@ _SAM_CHUNK = 4096  # pixels per chunk of the spectral angle kernel: a float32 wo
 _SAM_REFINE = 0.1  # radians: pairs closer than this are recomputed in float64 (METHODS.md's precise form)
 
 
-def _band_runs(index: np.ndarray) -> list[slice]:
-    """The band index as runs of consecutive bands (slices), so copies need no fancy indexing."""
-    index = np.asarray(index, dtype=np.int64)
-    if index.size == 0:
-        return []
-    cut = np.flatnonzero(np.diff(index) != 1) + 1
-    return [slice(int(r[0]), int(r[-1]) + 1) for r in np.split(index, cut)]
-
-
 def _stored_to_work(spec: OutputSpec) -> tuple[float | None, float | None, Any]:
-    """(scale, offset, nodata) to apply to stored values, keeping only what changes an angle."""
+    """(scale, offset, nodata) to apply to stored values; a positive scale without offset is dropped."""
     scale = spec.attrs.get("scale_factor")
     offset = spec.attrs.get("add_offset") or None
     nodata = spec.nodata
-    if nodata is not None and isinstance(nodata, float) and np.isnan(nodata):
-        nodata = None  # NaN: caught by the finiteness check
     if offset is None and (scale is None or float(scale) > 0):
         scale = None  # a positive factor leaves every angle unchanged (scale invariance)
     return (None if scale is None else float(scale)), (None if offset is None else float(offset)), nodata
@@ -647,11 +637,10 @@ def _sam_kernel(block: Block, model: dict) -> dict:
     m = refs.shape[0]
     x = block.data["x"]
     flat = x.reshape(x.shape[0], -1)
-    runs = _band_runs(model["band_index"])
+    runs = index_runs(model["band_index"])
     nb = sum(r.stop - r.start for r in runs)
     scale, offset, nodata = _stored_to_work(block.meta["x"].spec)
     is_int = np.issubdtype(flat.dtype, np.integer)
-    nodata_v = None if nodata is None else np.asarray(nodata).astype(flat.dtype)
     valid = block.valid.ravel()
     n = flat.shape[1]
     cls = np.zeros(n, dtype=np.uint8)
@@ -666,13 +655,9 @@ def _sam_kernel(block: Block, model: dict) -> dict:
         if not ok.any():
             continue
         X = work[:, :c]
-        row = 0
-        for r in runs:
-            k = r.stop - r.start
-            np.copyto(X[row:row + k], flat[r, s:e], casting="unsafe")
-            if nodata_v is not None:
-                ok &= ~(flat[r, s:e] == nodata_v).any(axis=0)
-            row += k
+        on_nodata = copy_bands(flat, runs, slice(s, e), X, nodata)
+        if on_nodata is not None:
+            ok &= ~on_nodata
         if scale is not None:
             X *= np.float32(scale)
         if offset is not None:
@@ -694,7 +679,12 @@ def _sam_kernel(block: Block, model: dict) -> dict:
         if close.size:
             A[:, close] = _angles_bands_first(X[:, close].astype(np.float64), refs)
         angle[:, s:e] = A
-        cls[s:e] = assign_min_angle(A.T, ref_class, thr)
+        # assign_min_angle on the columns with angles (all finite there), without a float64 copy
+        cols = slice(None) if ok.all() else np.flatnonzero(ok)
+        Ao = A[:, cols]
+        j = np.argmin(Ao, axis=0)  # ties go to the first reference
+        best = np.take_along_axis(Ao, j[None, :], axis=0)[0]
+        cls[s:e][cols] = np.where(best <= thr[j], ref_class[j], 0)
     return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(m, *shape)}
 
 

@@ -85,6 +85,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 
 from tiles.grid import Tile
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+from tiles.store import copy_bands, index_runs
 
 __all__ = [
     "MnfConfig",
@@ -785,15 +786,6 @@ def denoise(x: np.ndarray, model: Mapping[str, Any], k: int) -> np.ndarray:
     return inverse(forward(x, model, k), model, k, passthrough=x)
 
 
-def _band_runs(index: np.ndarray) -> list[slice]:
-    """A band index as runs of consecutive bands (slices), so copies need no fancy indexing."""
-    index = np.asarray(index, dtype=np.int64)
-    if index.size == 0:
-        return []
-    cut = np.flatnonzero(np.diff(index) != 1) + 1
-    return [slice(int(r[0]), int(r[-1]) + 1) for r in np.split(index, cut)]
-
-
 def forward_stored(x: np.ndarray, model: Mapping[str, Any], spec: OutputSpec, valid: np.ndarray,
                    k: int | None = None) -> np.ndarray:
     """:func:`forward` of stored values (``x = scale * stored + offset``, CF), float32 (k, ...).
@@ -809,11 +801,8 @@ def forward_stored(x: np.ndarray, model: Mapping[str, Any], spec: OutputSpec, va
     vt = np.asarray(model["eigenvectors"], dtype=np.float64)[:, :k].T  # (k, p_used)
     w = np.ascontiguousarray(vt * scale)
     bias = (vt @ (offset - np.asarray(model["mean"], dtype=np.float64)))[:, None]
-    runs = _band_runs(model["band_index"])
+    runs = index_runs(model["band_index"])
     ok_all = np.asarray(valid, dtype=bool).ravel()
-    nodata = spec.nodata
-    check_nodata = nodata is not None and not (isinstance(nodata, float) and np.isnan(nodata))
-    nodata_v = np.asarray(nodata).astype(flat.dtype) if check_nodata else None
     is_float = np.issubdtype(flat.dtype, np.floating)
     p_used = w.shape[1]
     chunk = max(1, min(flat.shape[1], _CHUNK_VALUES // max(1, p_used) // 4))
@@ -823,14 +812,9 @@ def forward_stored(x: np.ndarray, model: Mapping[str, Any], spec: OutputSpec, va
         e = min(a + chunk, flat.shape[1])
         xb = buf[:, : e - a]
         ok = ok_all[a:e].copy()
-        row = 0
-        for r in runs:
-            n = r.stop - r.start
-            src = flat[r, a:e]
-            np.copyto(xb[row:row + n], src, casting="unsafe")
-            if check_nodata:
-                ok &= ~(src == nodata_v).any(axis=0)
-            row += n
+        on_nodata = copy_bands(flat, runs, slice(a, e), xb, spec.nodata)
+        if on_nodata is not None:
+            ok &= ~on_nodata
         if is_float:
             ok &= np.isfinite(xb).all(axis=0)
         y = w @ xb

@@ -54,6 +54,44 @@ N_COMP = 20
 SEPARATION = 8.0  # class-mean spread of the first component, in noise standard deviations
 
 
+def arithmetic_floor(src: Path, tile: int, index: tuple[int, int], lib) -> dict:
+    """Seconds of the unavoidable arithmetic of the spectral angle on one tile, best of 3, one BLAS thread.
+
+    The tile is read once (timed too); then the cast of its stored values to float32, the product with
+    the unit reference vectors, the pixel norms and the arccos of the cosines, each alone, on the whole
+    tile (no chunking, no masks, no refinement, no class assignment, no writing).
+    """
+    from threadpoolctl import threadpool_limits
+
+    from tiles.grid import Tiling
+    from tiles.store import open_store
+
+    st = open_store(src)
+    t = next(x for x in Tiling(st.grid, tile, 0) if x.index == tuple(index))
+    best: dict[str, float] = {}
+
+    def clock(name, fn):
+        out = None
+        for _ in range(3):
+            t0 = time.perf_counter()
+            out = fn()
+            best[name] = min(best.get(name, np.inf), time.perf_counter() - t0)
+        return out
+
+    with threadpool_limits(1):
+        raw = clock("read", lambda: st.read("refl", t.core))
+        flat = raw.reshape(raw.shape[0], -1)
+        x = clock("cast", lambda: flat.astype(np.float32))
+        r = np.asarray(lib.spectra, dtype=np.float64)
+        u = (r / np.linalg.norm(r, axis=1, keepdims=True)).astype(np.float32)
+        d = clock("matmul", lambda: u @ x)
+        nrm = clock("norms", lambda: np.sqrt(np.einsum("bc,bc->c", x, x)))
+        cos = np.clip(d / nrm, -1, 1)
+        clock("arccos", lambda: np.arccos(cos))
+    best["total"] = best["cast"] + best["matmul"] + best["norms"] + best["arccos"]
+    return best
+
+
 # the component store ------------------------------------------------------------------------------------
 def _class_means(seed: int) -> np.ndarray:
     rng = np.random.default_rng(seed)
@@ -241,6 +279,11 @@ def main(argv: list[str] | None = None) -> int:
                                                                     pure=False).result())):
                 print(f"(b) one tile {index} {where}, one BLAS thread, seconds wall (CPU): "
                       f"{C.format_breakdown(bd, ['read', 'decode', 'kernel', 'encode', 'write'])}", flush=True)
+            lb = ex.client.submit(arithmetic_floor, src, a.tile, index, lib, pure=False).result()
+            print(f"    arithmetic alone on that tile, on a Dask worker, data already read: int16 to float32 "
+                  f"{lb['cast']:.3f} s + one float32 matrix product with the 20 unit references {lb['matmul']:.3f} s "
+                  f"+ pixel norms {lb['norms']:.3f} s + arccos {lb['arccos']:.3f} s = {lb['total']:.3f} s, "
+                  f"{lb['total'] / lb['read']:.2f} of the tile's zarr read ({lb['read']:.3f} s)", flush=True)
             last = sams[-1]
             print(f"    tile phase of the last run: wall {last['tiles']:.1f} s, inside tile tasks {last['busy']:.1f} s "
                   f"over {a.workers} workers = {last['busy'] / a.workers:.1f} s each; scheduling and client share "
