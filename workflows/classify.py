@@ -648,6 +648,7 @@ def _sam_kernel(block: Block, model: dict) -> dict:
     cos_refine = np.float32(np.cos(_SAM_REFINE))
     work = np.zeros((nb, _SAM_CHUNK), dtype=np.float32)
     dots = np.empty((m, _SAM_CHUNK), dtype=np.float32)
+    norms = np.empty(_SAM_CHUNK, dtype=np.float32)
     for s in range(0, n, _SAM_CHUNK):
         e = min(s + _SAM_CHUNK, n)
         c = e - s
@@ -662,7 +663,8 @@ def _sam_kernel(block: Block, model: dict) -> dict:
             X *= np.float32(scale)
         if offset is not None:
             X += np.float32(offset)
-        sq = (X * X).sum(axis=0)  # per column, in band order: the same whatever the tiling
+        # per column over the full-width workspace (no tail loop), so a pixel's norm never depends on c
+        sq = np.einsum("bc,bc->c", work, work, out=norms)[:c]
         if not is_int or offset is not None:
             ok &= np.isfinite(sq) & np.isfinite(X.sum(axis=0))
         ok &= sq > 0
@@ -682,8 +684,11 @@ def _sam_kernel(block: Block, model: dict) -> dict:
         # assign_min_angle on the columns with angles (all finite there), without a float64 copy
         cols = slice(None) if ok.all() else np.flatnonzero(ok)
         Ao = A[:, cols]
-        j = np.argmin(Ao, axis=0)  # ties go to the first reference
-        best = np.take_along_axis(Ao, j[None, :], axis=0)[0]
+        best, j = Ao[0].copy(), np.zeros(Ao.shape[1], dtype=np.intp)
+        for i in range(1, m):  # row by row: argmin along the short axis is slow; ties keep the first
+            closer = Ao[i] < best
+            best[closer] = Ao[i][closer]
+            j[closer] = i
         cls[s:e][cols] = np.where(best <= thr[j], ref_class[j], 0)
     return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(m, *shape)}
 
