@@ -84,9 +84,10 @@ def mnf_run(run_dir: Path, src: Path, executor, tile: int, components: int, pixe
     ntiles, busy = C.tile_seconds(run_dir, cfg.step_name)
     with np.load(C.model_base(run_dir, cfg.step_name) + ".npz") as z:
         lam = z["eigenvalues"][:components].tolist()
+        vec = z["eigenvectors"][:, :components].copy()
     model = json.loads(Path(C.model_base(run_dir, cfg.step_name) + ".json").read_text())
     return {"seconds": seconds, "fit": phases.get("fit", 0.0), "tiles": phases.get("tiles", 0.0),
-            "tile_busy": busy, "ntiles": ntiles, "eigenvalues": lam, "n_pixels": model["n_pixels"],
+            "tile_busy": busy, "ntiles": ntiles, "eigenvalues": lam, "vectors": vec, "n_pixels": model["n_pixels"],
             "selection": model["selection"]}
 
 
@@ -105,6 +106,7 @@ def child_run(run_dir: Path, src: Path, tile: int, workers: int, components: int
             res = mnf_run(run_dir, src, ex, tile, components)
     finally:
         ex.close()
+    res.pop("vectors")
     C.print_json({**res, "cluster_start": start, "peak_rss": mem.peak, "sum_of_peaks": mem.sum_of_peaks,
                   "idle_rss": mem.baseline, "peak_max_process": mem.peak_max_process, "cpu": mem.cpu_seconds})
     return 0
@@ -175,6 +177,7 @@ def _child(args: list[str]) -> dict:
 def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbytes: int, ex) -> None:
     """Print the summary of (a), then measure and print (b)."""
     import _common as C
+    import scipy.linalg
 
     read = min(reads)
     write = min(writes)
@@ -203,8 +206,15 @@ def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbyt
     for label in ("pixels", "tiles", "both"):
         samp = min(runs[label], key=lambda r: r["seconds"])
         rel = np.max(np.abs(np.array(samp["eigenvalues"]) / np.array(full["eigenvalues"]) - 1))
+        # principal angles between the spans of the signal components (scipy.linalg.subspace_angles): those
+        # whose eigenvalue (SNR + 1) is at least 2 in the whole fit; past them the eigenvalues are all near
+        # 1 and any rotation among those components is as good
+        nsig = max(1, int(np.sum(np.array(full["eigenvalues"]) >= 2.0)))
+        ang = {k: float(np.degrees(scipy.linalg.subspace_angles(samp["vectors"][:, :k], full["vectors"][:, :k]).max()))
+               for k in sorted({1, min(3, nsig), nsig})}
         print(f"    {NAMES[label]} vs whole fit: largest relative difference of the first {a.components} eigenvalues "
-              f"{rel:.2e}", flush=True)
+              f"{rel:.2e}; largest principal angle between the spans of the first k of the {nsig} signal "
+              f"components (eigenvalue >= 2): {', '.join(f'k={k}: {v:.2f} deg' for k, v in ang.items())}", flush=True)
 
     # (b) ---------------------------------------------------------------------------------------
     from workflows.mnf import MnfConfig, mnf_steps
