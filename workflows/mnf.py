@@ -18,7 +18,8 @@ How the statistics are gathered, tile by tile
   :func:`merge` pairs the two strips of a border when the tiles on both sides meet. So every pair of
   the mosaic is counted exactly once, whatever the tiling, and no tile reads a halo (for a one-pixel
   halo zarr decodes the neighbours' whole inner chunks, which tripled the fit's reading time in
-  ``tests/benchmarks/bench_mnf.py``). Pairs touching an invalid pixel (nodata, or any non-finite band) are left out.
+  ``tests/benchmarks/bench_mnf.py``). Pairs touching an invalid pixel (nodata, or any non-finite
+  band) are left out.
 * The step reads stored values (e.g. int16 reflectance x 10000): moments of the stored values are
   exact in float64, and :func:`finalize` turns them into moments of physical values with the input's
   CF ``scale_factor`` and ``add_offset`` (means scale and shift, covariances scale by the square).
@@ -45,9 +46,11 @@ bands in a warning or in the error.
 Sampling for speed
 ------------------
 ``tile_fraction < 1`` fits on a seeded random subset of tiles (:func:`select_tiles`, the engine's
-``Fit.select``; pairs across a border count only when both tiles are in the subset); ``pixel_fraction < 1`` keeps a pixel when a hash of (seed, global row, global column)
-falls below the fraction, so the pixel sample does not depend on the tiling. Both are recorded in the
-model under ``"selection"``.
+``Fit.select``; pairs across a border count only when both tiles are in the subset);
+``pixel_fraction < 1`` keeps a pixel when a hash of (seed, global row, global column) falls below
+the fraction, so the pixel sample does not depend on the tiling. Both are recorded in the model
+under ``"selection"``. ``tests/benchmarks/bench_mnf.py`` prints what each costs and how far the
+sampled model is from the whole fit.
 
 Model
 -----
@@ -271,13 +274,6 @@ def _moments_inplace(x: np.ndarray) -> Moments:
     m2 = x @ x.T  # numpy uses a symmetric rank-k update for a @ a.T
     m2 = 0.5 * (m2 + m2.T)
     return Moments(n, mean, m2)
-
-
-def _gather64(x: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """The pixels of ``x`` (p, rows, cols) where ``mask`` (rows, cols) holds, as a new float64 (p, n)."""
-    if mask.all():
-        return np.array(x, dtype=np.float64).reshape(x.shape[0], -1)
-    return x[:, mask].astype(np.float64)
 
 
 def merge_moments(a: Moments, b: Moments) -> Moments:

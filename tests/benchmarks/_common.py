@@ -188,8 +188,8 @@ def set_worker_env(pairs: list[str]) -> dict[str, str]:
     """The allocator settings the engine gives its workers, with ``KEY=VALUE`` pairs added or replaced.
 
     Returns the environment that the benchmark passes to ``DaskExecutor(worker_env=...)`` (also kept in
-    :data:`WORKER_ENV`). ``MALLOC_TRIM_THRESHOLD_=65536`` alone is Dask's own default, e.g. to compare
-    with the engine's :data:`tiles.executors.WORKER_MALLOC_ENV`.
+    :data:`WORKER_ENV`). ``KEY=`` drops a key: ``MALLOC_MMAP_THRESHOLD_= MALLOC_TRIM_THRESHOLD_=65536``
+    gives Dask's own default, to compare with the engine's :data:`tiles.executors.WORKER_MALLOC_ENV`.
     """
     global WORKER_ENV
     from tiles.executors import WORKER_MALLOC_ENV

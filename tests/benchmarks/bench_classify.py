@@ -13,7 +13,7 @@ It works in a temporary folder under /tmp that it deletes at the end, on
     ...).sum()`` and a tile loop reading each shard with zarr); ``--repeat`` repetitions.
 (b) Where the time of one interior tile of the spectral angle step goes (zarr read, decoding,
     kernel, encoding, zarr write; wall and CPU seconds) with one BLAS thread, in this process and
-    again on a Dask worker (whose environment, e.g. Dask's ``MALLOC_TRIM_THRESHOLD_``, changes how
+    again on a Dask worker (whose allocator settings, ``tiles.executors.WORKER_MALLOC_ENV``, change how
     memory is mapped), and the scheduling share of the tile phase.
 (c) SVM prediction. A store of 20 float32 bands shaped like MNF components (default 2048 x 2048 =
     4.2 million pixels; six classes in smooth patches, class means that shrink with the component
@@ -216,7 +216,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--skip", choices=("sam", "svm"), action="append", default=[], help="skip a part")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
     ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
-                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_= (empty: drop the engine's setting)")
+                    help="added to the Dask workers' environment (repeatable); KEY= drops the engine's setting")
     a = ap.parse_args(argv)
     env = C.set_worker_env(a.worker_env)
     if a.quick:

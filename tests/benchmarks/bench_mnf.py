@@ -18,8 +18,8 @@ engine source store in a temporary folder under /tmp that it deletes at the end,
     each run's ratio uses that floor (other jobs on the machine change the speed from minute to
     minute); ``--repeat`` repetitions.
 (b) where the time goes in one interior tile, with one BLAS thread, in this process and again on a
-    Dask worker (whose environment, e.g. Dask's ``MALLOC_TRIM_THRESHOLD_``, changes how memory is
-    mapped), wall and CPU seconds: zarr read of the padded window (the fit reads a one-pixel halo), decoding, the
+    Dask worker (whose allocator settings, ``tiles.executors.WORKER_MALLOC_ENV``, change how memory is
+    mapped), wall and CPU seconds: zarr read of the tile (the fit reads no halo), decoding (none: the step reads stored values), the
     accumulator, then the forward read, kernel, encoding and write; and the scheduling share of
     the tile phase (wall time minus the time spent inside tile tasks, divided over the workers).
 (c) against the in-memory approach a user would otherwise write, each in a fresh process: load the
@@ -258,7 +258,7 @@ def main(argv: list[str] | None = None) -> int:
                     help="skip a part: a (the floor and the runs, and b) or c (in memory); repeatable")
     ap.add_argument("--dir", type=Path, default=Path("/tmp"), help="parent of the temporary folder")
     ap.add_argument("--worker-env", action="append", default=[], metavar="KEY=VALUE",
-                    help="environment of the Dask worker processes (repeatable), e.g. MALLOC_MMAP_THRESHOLD_= (empty: drop the engine's setting)")
+                    help="added to the Dask workers' environment (repeatable); KEY= drops the engine's setting")
     ap.add_argument("--child-run", nargs=2, type=Path, metavar=("RUN_DIR", "SRC"), help=argparse.SUPPRESS)
     ap.add_argument("--child-inmem", type=Path, metavar="SRC", help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
