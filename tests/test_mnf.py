@@ -606,33 +606,42 @@ def test_engine_tiled_equals_untiled_and_matches_pure_functions(rng, tmp_path):
         np.testing.assert_allclose(z["eigenvalues"], model["eigenvalues"], rtol=1e-10)
 
 
-@pytest.mark.parametrize("offset", [0.0, -0.05])
-def test_engine_on_stored_int16_equals_scipy_on_decoded_values(rng, tmp_path, offset):
+@pytest.mark.parametrize("offset,duplicate", [(0.0, False), (-0.05, False), (0.0, True)])
+def test_engine_on_stored_int16_equals_scipy_on_decoded_values(rng, tmp_path, offset, duplicate):
     """The step works on stored integers (scale_factor, add_offset, nodata in single bands) and scales
     the moments at the end: the model equals an independent whole-array reference on the decoded
-    values, and the components equal the pure transform of the decoded cube."""
+    values, and the components equal the pure transform of the decoded cube. With a duplicated band
+    the transform leaves it out, so the forward pass copies two runs of bands."""
     cube, _, valid, _ = _engine_inputs(rng, p=7)
     p, rows, cols = cube.shape
     scale = 1e-4
     phys = 0.3 + 0.02 * cube  # reflectance-like values
     stored = np.round((phys - offset) / scale).astype(np.int16)
+    if duplicate:
+        stored[4] = stored[2]  # b005 duplicates b003: singular noise covariance, excluded
     stored[3, 20, 10] = -9999  # one band on nodata in a valid pixel: the pixel leaves the statistics
     stored[:, 30, 40] = -9999
     spec = OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(p)), dtype="int16", nodata=-9999,
                       attrs={"scale_factor": scale, **({"add_offset": offset} if offset else {})})
     steps = mnf_steps(MnfConfig(components=4), input_ref="src/reflectance")
-    out, _ = _engine_run(steps, stored, spec, valid, tmp_path, 8, name=f"int16{offset}")
+    name = f"int16{offset}{duplicate}"
+    if duplicate:
+        with pytest.warns(MnfWarning, match=r"b005: duplicates b003"):
+            out, _ = _engine_run(steps, stored, spec, valid, tmp_path, 8, name=name)
+    else:
+        out, _ = _engine_run(steps, stored, spec, valid, tmp_path, 8, name=name)
+    used = np.array([i for i in range(p) if not (duplicate and i == 4)])
     decoded = stored * scale + offset  # float64, as a user would decode
     ok = valid & (stored != -9999).all(axis=0)
     # whole-array reference (METHODS.md oracle): np.cov of the data and of both shift differences,
     # noise = half the mean of the two difference covariances, scipy.linalg.eigh(S, N)
-    X = decoded[:, ok]
-    dh = (decoded[:, :, :-1] - decoded[:, :, 1:])[:, ok[:, :-1] & ok[:, 1:]]
-    dv = (decoded[:, :-1, :] - decoded[:, 1:, :])[:, ok[:-1, :] & ok[1:, :]]
+    X = decoded[used][:, ok]
+    dh = (decoded[used][:, :, :-1] - decoded[used][:, :, 1:])[:, ok[:, :-1] & ok[:, 1:]]
+    dv = (decoded[used][:, :-1, :] - decoded[used][:, 1:, :])[:, ok[:-1, :] & ok[1:, :]]
     s_ref = np.cov(X)
     n_ref = 0.25 * (np.cov(dh) + np.cov(dv))
     lam_ref = scipy.linalg.eigh(s_ref, n_ref, eigvals_only=True)[::-1]
-    saved = next((tmp_path / f"int16{offset}" / "models").glob("mnf-*.npz"))
+    saved = next((tmp_path / name / "models").glob("mnf-*.npz"))
     with np.load(saved) as z:
         np.testing.assert_allclose(z["eigenvalues"], lam_ref, rtol=1e-8)
         np.testing.assert_allclose(z["mean"], X.mean(axis=1), rtol=1e-12)
