@@ -55,6 +55,7 @@ from tiles.samples import in_core
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from .accuracy import regression_metrics
+from .config import check_ref
 
 __all__ = [
     "CalibrationError",
@@ -139,9 +140,7 @@ class CalibrationConfig(BaseModel):
     @field_validator("input")
     @classmethod
     def _ref(cls, v: str) -> str:
-        if v.count("/") != 1:
-            raise ValueError(f"input must be 'step/output'. Got {v!r}")
-        return v
+        return check_ref(v)
 
     @field_validator("wavelength_ranges")
     @classmethod

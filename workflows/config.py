@@ -13,7 +13,8 @@ from typing import Any, Literal, Mapping
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-__all__ = ["ConfigError", "ExecutionConfig", "EngineConfig", "load_config", "load_yaml", "validate", "config_hash", "resolve"]
+__all__ = ["ConfigError", "ExecutionConfig", "EngineConfig", "load_config", "load_yaml", "validate", "config_hash", "resolve",
+           "check_ref"]
 
 
 class ConfigError(ValueError):
@@ -125,6 +126,13 @@ def validate(model: type[BaseModel], data: dict, path: Path, context: dict | Non
     except ValidationError as exc:
         lines = [_format_error(e, data, model) for e in exc.errors()]
         raise ConfigError(f"{path}: invalid configuration\n  " + "\n  ".join(lines)) from None
+
+
+def check_ref(ref: str | None, key: str = "input") -> str | None:
+    """A config value naming a step's output, ``"step/output"`` (None passes); ValueError otherwise."""
+    if ref is not None and ref.count("/") != 1:
+        raise ValueError(f"{key} must be 'step/output'. Got {ref!r}")
+    return ref
 
 
 def ctx_get(ctx: Any, key: str, default: Any = None) -> Any:

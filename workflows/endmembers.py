@@ -83,6 +83,7 @@ from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
+from .config import check_ref
 from .library import SpectralLibrary, write_library
 
 __all__ = [
@@ -724,9 +725,7 @@ class EndmemberExtractionConfig(BaseModel):
     @model_validator(mode="after")
     def _check(self) -> "EndmemberExtractionConfig":
         for key in ("input", "spectra"):
-            ref = getattr(self, key)
-            if ref is not None and ref.count("/") != 1:
-                raise ValueError(f"{key} must be 'step/output'. Got {ref!r}")
+            check_ref(getattr(self, key), key)
         return self
 
     def params(self) -> dict:

@@ -39,6 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, field_validator,
 
 from tiles.step import Block, OutputSpec, Step, StepError
 
+from .config import check_ref
 from .continuum import band_minimum, continuum_removed
 
 __all__ = [
@@ -211,9 +212,7 @@ class FeaturesConfig(BaseModel):
     @field_validator("input")
     @classmethod
     def _ref(cls, v: str) -> str:
-        if v.count("/") != 1:
-            raise ValueError(f"input must be 'step/output'. Got {v!r}")
-        return v
+        return check_ref(v)
 
 
 def feature_units(feature: Any) -> str:

@@ -88,7 +88,7 @@ from pydantic import BaseModel, ConfigDict, Field, model_validator
 from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from .config import ctx_get
+from .config import check_ref, ctx_get
 from . import endmembers as _em
 from .library import SpectralLibrary, read_library, resample_library
 from .reference import GroundReferenceConfig, SampleTable, load_samples
@@ -1286,8 +1286,7 @@ class UnmixConfig(_Strict):
 
     @model_validator(mode="after")
     def _check(self) -> "UnmixConfig":
-        if self.input.count("/") != 1:
-            raise ValueError(f"input must be 'step/output'. Got {self.input!r}")
+        check_ref(self.input)
         if self.shade and self.method not in SUM_TO_ONE:
             raise ValueError(f"shade needs method sum_to_one or fully_constrained. Got {self.method!r}")
         n = self.name
