@@ -179,3 +179,12 @@ def test_run_on_a_scheduler_and_workers_started_by_hand(tmp_path: Path, cli_clus
     for p in products:
         assert cog_validate(p, quiet=True)[0], p.name
         assert (p.parent / f"{p.name}.json").is_file()
+
+
+def test_local_cluster_workers_get_the_allocator_settings(dask_executor) -> None:
+    from tiles.executors import WORKER_MALLOC_ENV
+
+    # the variables glibc reads at start-up (mallopt(3)); Dask's own default would give 65536
+    seen = dask_executor.client.run(lambda: {k: os.environ.get(k) for k in WORKER_MALLOC_ENV})
+    assert len(seen) == 2
+    assert all(env == WORKER_MALLOC_ENV for env in seen.values()), seen
