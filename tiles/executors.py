@@ -106,7 +106,8 @@ class DaskExecutor:
                 n = n_workers or max(1, (os.cpu_count() or 1) // threads_per_worker)
                 net = {"host": "127.0.0.1"} if processes else {}
                 dashboard_address = _local_dashboard(dashboard_address)
-                env = dict(dask.config.get("distributed.nanny.pre-spawn-environ") or {})
+                env = {k: v for k, v in (dask.config.get("distributed.nanny.pre-spawn-environ") or {}).items()
+                       if k not in WORKER_MALLOC_ENV}  # Dask's default, or an earlier executor's
                 env.update(WORKER_MALLOC_ENV if worker_env is None else worker_env)
                 dask.config.set({"distributed.nanny.pre-spawn-environ": env})
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
