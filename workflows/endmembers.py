@@ -88,6 +88,7 @@ from .library import SpectralLibrary, write_library
 
 __all__ = [
     "EXTRACTION_METHODS",
+    "ExtractionSettings",
     "EndmemberError",
     "atgp",
     "nfindr",
@@ -687,7 +688,30 @@ def endmember_fit_step(name: str, reduced_ref: str, spectra_ref: str | None = No
                 fit=extraction_fit())
 
 
-class EndmemberExtractionConfig(BaseModel):
+class ExtractionSettings(BaseModel):
+    """How endmembers are found in the image: the keys shared by the ``endmembers`` section and the
+    ``image`` endmember source of unmixing (see :func:`extraction_params`)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
+    n_endmembers: int | None = Field(default=None, ge=2, le=64,
+                                     description="null: suggested from the reduced input's MNF eigenvalues")
+    n_dims: int | None = Field(default=None, ge=1)
+    seed: int = Field(default=0, ge=0)
+    n_directions: int = Field(default=512, ge=1, le=100_000)
+    n_brightest: int = Field(default=16, ge=1, le=10_000)
+    restarts: int = Field(default=5, ge=1, le=1000)
+    snr: float | None = None
+    min_snr: float = Field(default=1.0, gt=0)
+
+    def params(self) -> dict:
+        return extraction_params(self.method, self.n_endmembers, n_dims=self.n_dims, seed=self.seed,
+                                 n_directions=self.n_directions, n_brightest=self.n_brightest,
+                                 restarts=self.restarts, snr=self.snr, min_snr=self.min_snr)
+
+
+class EndmemberExtractionConfig(ExtractionSettings):
     """The ``endmembers`` section: endmembers found in the image.
 
     YAML shape (all keys optional)::
@@ -707,31 +731,15 @@ class EndmemberExtractionConfig(BaseModel):
           min_snr: 1.0                  # suggestion rule: signal at least min_snr x noise
     """
 
-    model_config = ConfigDict(extra="forbid")
-
     name: str = "endmembers"
-    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
     input: str = "mnf/components"
     spectra: str | None = "mosaic/reflectance"
-    n_endmembers: int | None = Field(default=None, ge=2, le=64)
-    n_dims: int | None = Field(default=None, ge=1)
-    seed: int = Field(default=0, ge=0)
-    n_directions: int = Field(default=512, ge=1, le=100_000)
-    n_brightest: int = Field(default=16, ge=1, le=10_000)
-    restarts: int = Field(default=5, ge=1, le=1000)
-    snr: float | None = None
-    min_snr: float = Field(default=1.0, gt=0)
 
     @model_validator(mode="after")
     def _check(self) -> "EndmemberExtractionConfig":
         for key in ("input", "spectra"):
             check_ref(getattr(self, key), key)
         return self
-
-    def params(self) -> dict:
-        return extraction_params(self.method, self.n_endmembers, n_dims=self.n_dims, seed=self.seed,
-                                 n_directions=self.n_directions, n_brightest=self.n_brightest,
-                                 restarts=self.restarts, snr=self.snr, min_snr=self.min_snr)
 
 
 def build_steps(section: EndmemberExtractionConfig, ctx: Any = None) -> list[Step]:

@@ -1224,21 +1224,13 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
-class ImageEndmembersConfig(_Strict):
+class ImageEndmembersConfig(_em.ExtractionSettings):
     """Endmembers found in the image (see :mod:`workflows.endmembers`)."""
 
-    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
-    n_endmembers: int | None = Field(default=None, ge=2, le=64,
-                                     description="null: suggested from the reduced input's MNF eigenvalues")
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
     reduced: str | None = Field(default=None, description="'step/output' of MNF/PCA components "
                                                           "(null: extract on the input itself)")
-    n_dims: int | None = Field(default=None, ge=1)
-    seed: int = Field(default=0, ge=0)
-    n_directions: int = Field(default=512, ge=1, le=100_000)
-    n_brightest: int = Field(default=16, ge=1, le=10_000)
-    restarts: int = Field(default=5, ge=1, le=1000)
-    snr: float | None = None
-    min_snr: float = Field(default=1.0, gt=0)
 
 
 class EndmemberSourceConfig(_Strict):
