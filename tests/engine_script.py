@@ -32,12 +32,12 @@ from typing import Any
 
 import numpy as np
 
-from tiles.executors import LocalExecutor, make_executor
-from tiles.grid import Grid
-from tiles.ops import band_transform_step, mean_filter_step, modal_filter_step
-from tiles.run import Run, RunOptions, RunResult
-from tiles.step import Block, Fit, OutputSpec, Step
-from tiles.testing import default_grid, write_source_store
+from swathmill.tiles.executors import LocalExecutor, make_executor
+from swathmill.tiles.grid import Grid
+from swathmill.tiles.ops import band_transform_step, mean_filter_step, modal_filter_step
+from swathmill.tiles.run import Run, RunOptions, RunResult
+from swathmill.tiles.step import Block, Fit, OutputSpec, Step
+from swathmill.tiles.testing import default_grid, write_source_store
 
 __all__ = ["ROWS", "COLS", "BANDS", "CLASS_NAMES", "make_cube", "make_source", "build_steps", "run_pipeline",
            "SlowLocalExecutor", "failing_step", "merge_order_step", "FAIL_TILES", "main"]

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 import sklearn.metrics as skm
 
-from workflows.accuracy import (
+from swathmill.workflows.methods.accuracy import (
     AccuracyError,
     abundance_metrics,
     area_estimate,
@@ -192,10 +192,10 @@ def test_count_classes_zarr_and_raster(tmp_path, rng):
 def test_class_counts_fit_counts_each_pixel_once(rng):
     from functools import reduce
 
-    from tiles.grid import Tiling
-    from tiles.step import Block
-    from tiles.testing import default_grid
-    from workflows.accuracy import class_counts_fit
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.step import Block
+    from swathmill.tiles.testing import default_grid
+    from swathmill.workflows.methods.accuracy import class_counts_fit
 
     cmap = rng.integers(0, 6, (1, 70, 45)).astype(np.float32)
     valid = rng.random((70, 45)) > 0.1

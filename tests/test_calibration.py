@@ -8,8 +8,8 @@ from sklearn.cross_decomposition import PLSRegression
 from sklearn.linear_model import LinearRegression
 from sklearn.model_selection import GroupKFold, KFold, cross_val_predict
 
-from tiles.step import OutputSpec
-from workflows.calibration import (
+from swathmill.tiles.step import OutputSpec
+from swathmill.workflows.methods.calibration import (
     CalibrationConfig,
     CalibrationError,
     CalibrationSamples,
@@ -141,8 +141,8 @@ def _predictor_map(rng, rows=48, cols=40):
 
 @pytest.mark.parametrize("tile", [16, 48])
 def test_step_tiled_equals_whole(tmp_path, rng, tile):
-    from tiles.tasks import load_model
-    from tiles.testing import run_on_arrays
+    from swathmill.tiles.tasks import load_model
+    from swathmill.tiles.testing import run_on_arrays
 
     f, spec = _predictor_map(rng)
     rows, cols = rng.integers(0, 48, 60), rng.integers(0, 40, 60)
@@ -174,7 +174,7 @@ def test_step_tiled_equals_whole(tmp_path, rng, tile):
 
 
 def test_step_rejects_sample_outside_grid(tmp_path, rng):
-    from tiles.testing import run_on_arrays
+    from swathmill.tiles.testing import run_on_arrays
 
     f, spec = _predictor_map(rng, 20, 20)
     samples = CalibrationSamples(rows=np.array([1, 2, 3, 4, 5, 25]), cols=np.array([1, 2, 3, 4, 5, 6]),

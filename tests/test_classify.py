@@ -14,9 +14,9 @@ from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
 
-from tiles.step import OutputSpec
-from tiles.testing import default_grid, run_on_arrays
-from workflows.classify import (
+from swathmill.tiles.step import OutputSpec
+from swathmill.tiles.testing import default_grid, run_on_arrays
+from swathmill.workflows.methods.classify import (
     ClassifyError,
     SamConfig,
     SffConfig,
@@ -37,10 +37,10 @@ from workflows.classify import (
     spectral_angle,
     svm_step,
 )
-from workflows.continuum import continuum_removed
-from workflows.library import LibraryError, SpectralLibrary, read_library, write_library
-from workflows.reference import GroundReference, SampleTable, samples_on_grid
-from workflows.spectra import resample_gaussian
+from swathmill.workflows.spectral.continuum import continuum_removed
+from swathmill.workflows.inputs.library import LibraryError, SpectralLibrary, read_library, write_library
+from swathmill.workflows.inputs.reference import GroundReference, SampleTable, samples_on_grid
+from swathmill.workflows.spectral.spectra import resample_gaussian
 
 # --------------------------------------------------------------------------------------------------
 # spectral angle
@@ -287,7 +287,7 @@ def test_pure_patches_each_method_and_tiled_equals_untiled(tmp_path: Path) -> No
     # class map metadata: names and the library's colours; image references use the palette
     models = {p.name.split("-")[0]: p for p in (tmp_path / "tiled" / "models").glob("*.json")}
     assert set(models) == {"sam", "sff", "sam_img", "sff_img", "svm"}
-    from tiles.store import open_store
+    from swathmill.tiles.store import open_store
     st = open_store(tmp_path / "tiled" / "stores" / "sam.zarr")
     assert st.specs["classes"].class_names == tuple(NAMES)
     assert st.specs["classes"].colors == ((204, 102, 119), (51, 34, 136), (221, 204, 119), (17, 119, 51))
@@ -305,7 +305,7 @@ def test_svm_step_equals_sklearn_on_same_samples(tmp_path: Path) -> None:
     step = svm_step("svm", "src/cube", samples=table, C=[0.1, 10.0], gamma=[1e-3, 3e-2], folds=4)
     out, _ = run_on_arrays([step], {"cube": (cube, spec)}, tmp_path, tile=16, raw=True)
     got = out["svm/classes"][0]
-    from tiles.tasks import load_model
+    from swathmill.tiles.tasks import load_model
     model = load_model(next((tmp_path / "run" / "models").glob("svm-*.json")).with_suffix(""))
     train = table.split != 2
     X = cube[:, table.row, table.col].T.astype(np.float64)
@@ -410,7 +410,7 @@ def test_config_models_and_build_steps(tmp_path: Path) -> None:
     assert s.params["range"] == [2100.0, 2400.0] and s.params["max_rmse"] == 0.02
     with pytest.raises(ClassifyError, match=r"fewer samples than the 5 cross-validation folds"):
         build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633"}), ctx)
-    from workflows.reference import GroundReferenceError
+    from swathmill.workflows.inputs.reference import GroundReferenceError
     with pytest.raises(GroundReferenceError, match=r"label\(s\) \['alpha'\] are not in the class list \['beta'\]"):
         build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633", "classes": ["beta"]}), ctx)
     with pytest.raises(ValueError, match="exactly one of 'library' or 'samples'"):

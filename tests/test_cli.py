@@ -14,8 +14,8 @@ import rasterio
 import yaml
 from affine import Affine
 
-from tiles.ledger import Ledger
-from workflows.cli import main
+from swathmill.tiles.ledger import Ledger
+from swathmill.workflows.app.cli import main
 
 CRS = "EPSG:32633"
 BANDS = 24
@@ -173,8 +173,8 @@ def test_second_process_is_refused(tmp_path, capsys):
 def test_failed_tiles_give_nonzero_exit_and_are_listed(tmp_path):
     import io
 
-    from tiles.run import RunResult, StepReport
-    from workflows.pipeline import _summarize
+    from swathmill.tiles.run import RunResult, StepReport
+    from swathmill.workflows.app.pipeline import _summarize
 
     rep = StepReport("sam", "k", total=4, done_before=1, computed=2, failed={(1, 0): "step 'sam', tile(1, 0): boom"})
     out = io.StringIO()
@@ -198,8 +198,8 @@ def test_console_script_runs(tmp_path):
 
 
 def test_shipped_configs_and_profiles_validate(tmp_path):
-    from workflows.config import ExecutionConfig, load_yaml, validate
-    from workflows.pipeline import load_run_config
+    from swathmill.workflows.app.config import ExecutionConfig, load_yaml, validate
+    from swathmill.workflows.app.pipeline import load_run_config
 
     root = Path(__file__).resolve().parents[1] / "configs"
     cfg, _ = load_run_config(root / "example-campaign.yaml")
@@ -230,7 +230,7 @@ def test_library_unmixing_on_components_equals_unmixing_on_reflectance(tmp_path,
     assert main(["run", str(cfg), "--plain"]) == 0
     cfg2 = _config(tmp_path, run_dir="run2", mnf={"method": "pca"}, unmix={**unmix, "input": "mosaic/reflectance"})
     assert main(["run", str(cfg2), "--plain"]) == 0
-    from tiles.testing import read_output
+    from swathmill.tiles.testing import read_output
 
     on_pc = read_output(tmp_path / "run", "unmix/abundance")
     on_refl = read_output(tmp_path / "run2", "unmix/abundance")
@@ -243,7 +243,7 @@ def test_dashboard_must_stay_on_this_machine(tmp_path, capsys):
     cfg = _config(tmp_path, execution={"executor": "dask", "dashboard": "0.0.0.0:8787"})
     assert main(["run", str(cfg)]) == 2
     assert "dashboard must be bound to this machine" in capsys.readouterr().err
-    from tiles.executors import _local_dashboard
+    from swathmill.tiles.executors import _local_dashboard
 
     assert _local_dashboard(None) == "127.0.0.1:0" and _local_dashboard("localhost:8787") == "localhost:8787"
     with pytest.raises(ValueError, match="bound to this machine"):

@@ -8,7 +8,7 @@ import pytest
 from scipy.io import loadmat
 from scipy.spatial import ConvexHull
 
-from workflows.continuum import (
+from swathmill.workflows.spectral.continuum import (
     band_depth,
     band_minimum,
     continuum_removed,

@@ -17,8 +17,8 @@ import pytest
 import zarr
 
 import engine_script as es
-from tiles.executors import DaskExecutor, LocalExecutor
-from tiles.run import run_status
+from swathmill.tiles.executors import DaskExecutor, LocalExecutor
+from swathmill.tiles.run import run_status
 
 TESTS = Path(__file__).resolve().parent
 BIN = Path(sys.executable).parent
@@ -182,7 +182,7 @@ def test_run_on_a_scheduler_and_workers_started_by_hand(tmp_path: Path, cli_clus
 
 
 def test_local_cluster_workers_get_the_allocator_settings(dask_executor) -> None:
-    from tiles.executors import WORKER_MALLOC_ENV
+    from swathmill.tiles.executors import WORKER_MALLOC_ENV
 
     # the variables glibc reads at start-up (mallopt(3)); Dask's own default would give 65536
     seen = dask_executor.client.run(lambda: {k: os.environ.get(k) for k in WORKER_MALLOC_ENV})

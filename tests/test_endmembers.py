@@ -10,14 +10,14 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from tiles.grid import Tiling
-from tiles.step import Block, InputMeta, OutputSpec
-from tiles.testing import default_grid, run_on_arrays
-from workflows.endmembers import (EndmemberError, EndmemberExtractionConfig, atgp, build_steps, candidate_accumulate,
+from swathmill.tiles.grid import Tiling
+from swathmill.tiles.step import Block, InputMeta, OutputSpec
+from swathmill.tiles.testing import default_grid, run_on_arrays
+from swathmill.workflows.methods.endmembers import (EndmemberError, EndmemberExtractionConfig, atgp, build_steps, candidate_accumulate,
                                   candidate_merge, endmember_fit_step, endmember_library, endmember_points,
                                   extract_endmembers, extraction_params, nfindr, simplex_volume,
                                   suggest_endmember_count, vca, write_endmember_products)
-from workflows.library import read_library
+from swathmill.workflows.inputs.library import read_library
 
 METHODS = ["atgp", "nfindr", "vca"]
 
@@ -94,7 +94,7 @@ def test_same_seed_same_endmembers_whatever_the_tiling(rng, tmp_path, method):
         step = endmember_fit_step("em", "src/red", "src/cube", method=method, n_endmembers=4, seed=7)
         out, result = run_on_arrays([step], {"red": red, "cube": x}, tmp_path / f"t{tile}", tile=tile)
         assert result.ok
-        from tiles.tasks import load_model
+        from swathmill.tiles.tasks import load_model
         base = next((tmp_path / f"t{tile}" / "run" / "models").glob("em-*.json")).with_suffix("")
         models.append(load_model(base))
         loc = out["em/locations"][0]
@@ -202,7 +202,7 @@ def test_products_library_and_points(rng, tmp_path):
                       coords={"wavelength": tuple(wl)})
     step = endmember_fit_step("em", "src/red", "src/cube", method="nfindr", n_endmembers=4)
     run_on_arrays([step], {"red": red, "cube": (x, spec)}, tmp_path, tile=16, grid=grid)
-    from tiles.tasks import load_model
+    from swathmill.tiles.tasks import load_model
     model = load_model(next((tmp_path / "run" / "models").glob("em-*.json")).with_suffix(""))
     lib = endmember_library(model)
     assert lib.names == ("em_1", "em_2", "em_3", "em_4")
@@ -231,7 +231,7 @@ def test_config_builds_the_step():
 
 def test_extraction_on_reflectance_warns(rng):
     x, _red, _pure, _m = simplex_scene(rng, rows=16, cols=16)
-    from workflows.endmembers import candidate_accumulate as acc_fn, extraction_finalize
+    from swathmill.workflows.methods.endmembers import candidate_accumulate as acc_fn, extraction_finalize
     grid = default_grid(16, 16)
     spec = OutputSpec(tuple(f"b{i}" for i in range(x.shape[0])), "float32", float("nan"),
                       coords={"wavelength": tuple(np.linspace(400, 900, x.shape[0]))})

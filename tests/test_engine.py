@@ -12,13 +12,13 @@ import rasterio
 from scipy import ndimage
 
 import engine_script as es
-from tiles.executors import LocalExecutor
-from tiles.ledger import Ledger
-from tiles.ops import band_transform_step, mean_filter_step, modal_filter_step
-from tiles.run import PlanError, Run, RunOptions, run_status
-from tiles.step import OutputSpec, canonical_json
-from tiles.store import StoreError, open_store
-from tiles.testing import default_grid, read_output, run_on_arrays, write_source_store
+from swathmill.tiles.executors import LocalExecutor
+from swathmill.tiles.ledger import Ledger
+from swathmill.tiles.ops import band_transform_step, mean_filter_step, modal_filter_step
+from swathmill.tiles.run import PlanError, Run, RunOptions, run_status
+from swathmill.tiles.step import OutputSpec, canonical_json
+from swathmill.tiles.store import StoreError, open_store
+from swathmill.tiles.testing import default_grid, read_output, run_on_arrays, write_source_store
 
 ROWS, COLS = 37, 45  # not a multiple of any tile size used: edge tiles are partial
 
@@ -175,7 +175,7 @@ def test_every_product_is_a_valid_cog_with_a_valid_stac_item_and_provenance(tmp_
     from rio_cogeo.cogeo import cog_validate
 
     import pystac
-    from tiles.export import validate_item_offline
+    from swathmill.tiles.export import validate_item_offline
 
     result = es.run_pipeline(tmp_path / "run", LocalExecutor(), tile=32)
     assert result.ok
@@ -227,7 +227,7 @@ def _same_spec(meta, model, params) -> dict:
 
 def test_raw_step_writes_its_stored_values_unchanged(tmp_path: Path) -> None:
     """decode=False: the kernel sees stored int16 values and returns stored values; no re-scaling."""
-    from tiles.step import Step
+    from swathmill.tiles.step import Step
 
     cube, valid = es.make_cube(32, 48, 3, seed=5)
     spec = OutputSpec(bands=("b001", "b002", "b003"), dtype="int16", nodata=-9999, attrs={"scale_factor": 1e-4})
@@ -238,7 +238,7 @@ def test_raw_step_writes_its_stored_values_unchanged(tmp_path: Path) -> None:
 
 
 def test_band_runs_copy_equals_fancy_indexing() -> None:
-    from tiles.store import copy_bands, index_runs
+    from swathmill.tiles.store import copy_bands, index_runs
 
     rng = np.random.default_rng(5)
     flat = rng.integers(-50, 50, (30, 200)).astype(np.int16)

@@ -20,7 +20,7 @@ from rasterio.warp import transform_bounds
 from rio_cogeo.cogeo import cog_validate
 from scipy import stats
 
-from tiles.export import (
+from swathmill.tiles.export import (
     CLASS_URI,
     PROC_URI,
     PROJ_URI,
@@ -35,8 +35,8 @@ from tiles.export import (
     validate_item_offline,
     write_cog,
 )
-from tiles.grid import Grid, Window
-from tiles.step import OutputSpec
+from swathmill.tiles.grid import Grid, Window
+from swathmill.tiles.step import OutputSpec
 
 ROOT = Path(__file__).resolve().parents[1]
 CRS = "EPSG:32611"
@@ -333,9 +333,9 @@ MEMORY_SCRIPT = textwrap.dedent("""
     import numpy as np
     import psutil
     from affine import Affine
-    from tiles.export import write_cog
-    from tiles.grid import Grid
-    from tiles.step import OutputSpec
+    from swathmill.tiles.export import write_cog
+    from swathmill.tiles.grid import Grid
+    from swathmill.tiles.step import OutputSpec
 
     n, out = int(sys.argv[1]), Path(sys.argv[2])
     spec = OutputSpec(bands=("a",), dtype="float32", nodata=float("nan"))

@@ -5,8 +5,8 @@ import numpy as np
 import pytest
 from pydantic import ValidationError
 
-from tiles.step import OutputSpec
-from workflows.features import (
+from swathmill.tiles.step import OutputSpec
+from swathmill.workflows.methods.features import (
     BandArea,
     BandDepth,
     BandMinimum,
@@ -146,7 +146,7 @@ def test_compute_features_block_and_valid(rng):
 
 
 def test_step_tiled_equals_untiled(tmp_path, rng):
-    from tiles.testing import run_on_arrays
+    from swathmill.tiles.testing import run_on_arrays
 
     rows, cols = 40, 56
     centres = rng.uniform(2150, 2250, (rows, cols))

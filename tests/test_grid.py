@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from affine import Affine
 
-from tiles.grid import Grid, Tiling, Window
-from tiles.run import PlanError, RunOptions, plan_check
-from tiles.store import StoreError, StoreLayout
+from swathmill.tiles.grid import Grid, Tiling, Window
+from swathmill.tiles.run import PlanError, RunOptions, plan_check
+from swathmill.tiles.store import StoreError, StoreLayout
 
 GRID = Grid(37, 45, Affine(10.0, 0.0, 400000.0, 0.0, -10.0, 5000000.0), "EPSG:32633")
 

@@ -11,8 +11,8 @@ import rasterio
 import shapely
 from affine import Affine
 
-from tiles.grid import Window
-from workflows.ingest import (
+from swathmill.tiles.grid import Window
+from swathmill.workflows.inputs.ingest import (
     IngestError,
     bad_band_mask,
     band_metadata_wavelengths,
@@ -25,7 +25,7 @@ from workflows.ingest import (
     target_grid,
     to_nanometres,
 )
-from workflows.mosaic import MosaicConfig, build_mosaic_step, plan_mosaic
+from swathmill.workflows.methods.mosaic import MosaicConfig, build_mosaic_step, plan_mosaic
 
 CRS = "EPSG:32612"
 
@@ -129,8 +129,8 @@ def test_netcdf_line_reads_like_geotiff(tmp_path, rng):
     plan = plan_mosaic(MosaicConfig(lines=[f'NETCDF:"{nc}":reflectance'], brightness_matching=False))
     assert plan.lines[0].name == "line.nc_reflectance" and plan.lines[0].fingerprint
     assert plan.lines[0].path == f'NETCDF:"{nc}":reflectance'
-    from tiles.grid import Tiling
-    from workflows.ingest import read_lines
+    from swathmill.tiles.grid import Tiling
+    from swathmill.workflows.inputs.ingest import read_lines
 
     got = []
     for line in (f'NETCDF:"{nc}":reflectance', str(tif)):

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy.io import loadmat
 
-from workflows.library import (
+from swathmill.workflows.inputs.library import (
     LibraryError,
     SpectralLibrary,
     check_coverage,
@@ -16,7 +16,7 @@ from workflows.library import (
     resample_library,
     write_library,
 )
-from workflows.spectra import resample_gaussian
+from swathmill.workflows.spectral.spectra import resample_gaussian
 
 LEAVES = "Example_Spectra_ASD_JPL_vegetation.csv"
 

@@ -16,9 +16,9 @@ import scipy.ndimage
 from affine import Affine
 from sklearn.decomposition import PCA
 
-from tiles.grid import Grid, Tiling
-from tiles.step import Block, InputMeta, OutputSpec
-from workflows.mnf import (
+from swathmill.tiles.grid import Grid, Tiling
+from swathmill.tiles.step import Block, InputMeta, OutputSpec
+from swathmill.workflows.methods.mnf import (
     MnfConfig,
     MnfError,
     MnfWarning,
@@ -561,7 +561,7 @@ def test_denoise_kernel_without_transform_attrs_is_refused(rng):
 
 
 # ------------------------------------------------------------------------------------------------
-# through the engine (tiles.testing.run_on_arrays)
+# through the engine (swathmill.tiles.testing.run_on_arrays)
 
 
 def _engine_inputs(rng, rows=40, cols=48, p=6):
@@ -575,7 +575,7 @@ def _engine_inputs(rng, rows=40, cols=48, p=6):
 
 
 def _engine_run(steps, cube, spec, valid, tmp_path, tile, executor="local", name="run"):
-    from tiles.testing import run_on_arrays
+    from swathmill.tiles.testing import run_on_arrays
 
     return run_on_arrays(steps, {"reflectance": (cube, spec)}, tmp_path, tile=tile, valid=valid,
                          executor=executor, run_name=name)
@@ -655,7 +655,7 @@ def test_engine_on_stored_int16_equals_scipy_on_decoded_values(rng, tmp_path, of
 
 @pytest.mark.slow
 def test_engine_worker_count_does_not_change_the_fit(rng, tmp_path):
-    from tiles.executors import DaskExecutor
+    from swathmill.tiles.executors import DaskExecutor
 
     cube, _, valid, spec = _engine_inputs(rng)
     steps = mnf_steps(MnfConfig(method="pca", components=3), input_ref="src/reflectance")

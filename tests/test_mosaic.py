@@ -12,10 +12,10 @@ from rasterio import features
 from rasterio.enums import Resampling
 from rasterio.warp import reproject
 
-from tiles.executors import LocalExecutor
-from tiles.run import Run, RunOptions
-from tiles.testing import read_output
-from workflows.mosaic import (
+from swathmill.tiles.executors import LocalExecutor
+from swathmill.tiles.run import Run, RunOptions
+from swathmill.tiles.testing import read_output
+from swathmill.workflows.methods.mosaic import (
     MosaicConfig,
     build_mosaic_step,
     merge_overlaps,
@@ -25,7 +25,7 @@ from workflows.mosaic import (
     sample_mask,
     solve_brightness,
 )
-from workflows.spectra import resample
+from swathmill.workflows.spectral.spectra import resample
 
 CRS = "EPSG:32612"
 T0 = Affine(5, 0, 500000, 0, -5, 4000000)
@@ -206,7 +206,7 @@ def test_tiled_mosaic_equals_whole_line_rasterio_warp(tmp_path, rng, resampling)
 
 def test_lines_on_the_grid_lattice_equal_gdal_warp(tmp_path, rng):
     """Lines on the mosaic's own pixel lattice are copied window by window: the same as GDAL's warp."""
-    from workflows.ingest import _aligned_shift, warp_window
+    from swathmill.workflows.inputs.ingest import _aligned_shift, warp_window
 
     nb = 4
     wl = np.linspace(450, 2300, nb)
@@ -224,7 +224,7 @@ def test_lines_on_the_grid_lattice_equal_gdal_warp(tmp_path, rng):
             reproject(rasterio.band(ds, line["bands"]), whole, dst_transform=grid.transform, dst_crs=grid.crs,
                       src_nodata=-9999, dst_nodata=-9999, resampling=Resampling.nearest, tolerance=0.0)
         expected = np.where(whole == -9999, np.nan, whole.astype(np.float32) * np.float32(1e-4))
-        from tiles.grid import Tiling
+        from swathmill.tiles.grid import Tiling
 
         for tile in Tiling(grid, 13, 2):  # odd tiles with a halo, reaching past the line's raster
             got = warp_window(line, grid.window(tile.padded))
@@ -381,10 +381,10 @@ def test_fit_is_the_same_for_any_tiling(tmp_path, rng, block):
 
 def test_fit_tile_selection_loses_nothing(tmp_path, rng):
     """Accumulating over the selected tiles only gives the same sums as over every tile."""
-    from tiles.grid import Tiling
-    from tiles.step import Block
-    from workflows.ingest import read_lines
-    from workflows.mosaic import accumulate_overlaps, select_overlap_tiles
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.step import Block
+    from swathmill.workflows.inputs.ingest import read_lines
+    from swathmill.workflows.methods.mosaic import accumulate_overlaps, select_overlap_tiles
 
     paths, *_ = _brightness_lines(tmp_path, rng, 0.003)
     step = build_mosaic_step(MosaicConfig(lines=[str(p) for p in paths], sample_size=200, seed=2))
@@ -479,7 +479,7 @@ def test_line_broken_after_planning_fails_its_tiles_and_records_none(tmp_path, r
     report = result.steps[0]
     assert not result.ok and report.failed
     assert all("b.tif" in str(msg) for msg in report.failed.values())  # each failure names the file
-    from tiles.ledger import Ledger
+    from swathmill.tiles.ledger import Ledger
 
     led = Ledger(run_dir / "ledger.sqlite")
     done = led.done("mosaic", report.key)

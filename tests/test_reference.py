@@ -11,9 +11,9 @@ import shapely
 from affine import Affine
 from pyproj import Transformer
 
-from tiles.grid import Grid
-from tiles.step import hash_static
-from workflows.reference import (
+from swathmill.tiles.grid import Grid
+from swathmill.tiles.step import hash_static
+from swathmill.workflows.inputs.reference import (
     SPLIT_CODES,
     GroundReference,
     GroundReferenceConfig,

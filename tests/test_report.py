@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from workflows.accuracy import area_estimate, class_accuracy
-from workflows.report import (
+from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
+from swathmill.workflows.app.report import (
     AccuracyView,
     ClassMapView,
     ContinuousMapView,
@@ -148,7 +148,7 @@ def test_report_content(full_report):
 
 
 def test_scatter_from_calibration_model(tmp_path, rng):
-    from workflows.calibration import fit_calibration
+    from swathmill.workflows.methods.calibration import fit_calibration
 
     x = rng.uniform(0, 1, (40, 1))
     y = 3 * x[:, 0] + rng.normal(0, 0.1, 40)

@@ -19,14 +19,14 @@ import pytest
 import rasterio
 
 import engine_script as es
-from tiles.executors import LocalExecutor
-from tiles.grid import Tiling
-from tiles.ledger import Ledger
-from tiles.lock import RunLock, RunLockedError
-from tiles.ops import mean_filter_step
-from tiles.run import Run, RunOptions, run_status
-from tiles.store import open_store
-from tiles.testing import read_output
+from swathmill.tiles.executors import LocalExecutor
+from swathmill.tiles.grid import Tiling
+from swathmill.tiles.ledger import Ledger
+from swathmill.tiles.lock import RunLock, RunLockedError
+from swathmill.tiles.ops import mean_filter_step
+from swathmill.tiles.run import Run, RunOptions, run_status
+from swathmill.tiles.store import open_store
+from swathmill.tiles.testing import read_output
 
 ROOT = Path(__file__).resolve().parents[1]
 SCRIPT = Path(__file__).resolve().parent / "engine_script.py"
@@ -214,7 +214,7 @@ def test_second_process_on_the_same_run_is_refused(tmp_path: Path) -> None:
 def test_lock_names_holder_and_stale_locks_are_taken_over(tmp_path: Path) -> None:
     lock_path = tmp_path / "run" / "run.lock"
     # a holder that died without releasing (os._exit skips every clean-up)
-    code = ("import os, sys; from tiles.lock import RunLock; "
+    code = ("import os, sys; from swathmill.tiles.lock import RunLock; "
             "RunLock(__import__('pathlib').Path(sys.argv[1])).acquire(); print(os.getpid(), flush=True); os._exit(0)")
     res = subprocess.run([PYTHON, "-c", code, str(lock_path)], cwd=ROOT, capture_output=True, text=True, timeout=60)
     dead_pid = int(res.stdout.strip())

@@ -11,7 +11,7 @@ import rasterio
 from rasterio.crs import CRS
 from scipy.spatial import ConvexHull
 
-from workflows.scenario import MATERIALS, generate_scenario
+from swathmill.workflows.app.scenario import MATERIALS, generate_scenario
 
 
 @pytest.fixture(scope="module")
@@ -145,8 +145,8 @@ def test_ground_reference_matches_the_truth(scenario):
 
 
 def test_ground_reference_and_library_read_by_the_project_readers(scenario):
-    from workflows.library import read_library
-    from workflows.reference import read_reference
+    from swathmill.workflows.inputs.library import read_library
+    from swathmill.workflows.inputs.reference import read_reference
 
     ref = read_reference(scenario.ground_reference)
     assert set(ref.labels) == set(MATERIALS)
@@ -159,10 +159,10 @@ def test_ground_reference_and_library_read_by_the_project_readers(scenario):
 
 def test_scenario_mosaic_recovers_the_truth_within_the_noise(scenario, tmp_path):
     """The whole small scenario through the mosaic step: reflectance equals the truth within the noise."""
-    from tiles.executors import LocalExecutor
-    from tiles.run import Run, RunOptions
-    from tiles.testing import read_output
-    from workflows.mosaic import MosaicConfig, build_mosaic_step
+    from swathmill.tiles.executors import LocalExecutor
+    from swathmill.tiles.run import Run, RunOptions
+    from swathmill.tiles.testing import read_output
+    from swathmill.workflows.methods.mosaic import MosaicConfig, build_mosaic_step
 
     section = scenario.mosaic_section()
     step = build_mosaic_step(MosaicConfig.model_validate(section), scenario.root)

@@ -6,7 +6,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from workflows.spectra import (
+from swathmill.workflows.spectral.spectra import (
     SpectralCoverageError,
     fwhm_to_sigma,
     resample,

@@ -11,11 +11,11 @@ import pytest
 import scipy.io
 import scipy.optimize
 
-from tiles.testing import run_on_arrays
-from workflows import unmix as um
-from workflows.endmembers import extract_endmembers
-from workflows.library import LibraryError, SpectralLibrary
-from workflows.unmix import (HAVE_NUMBA, IllConditionedWarning, LinearTransform, UnmixConfig, UnmixError, Unmixer,
+from swathmill.tiles.testing import run_on_arrays
+from swathmill.workflows.methods import unmix as um
+from swathmill.workflows.methods.endmembers import extract_endmembers
+from swathmill.workflows.inputs.library import LibraryError, SpectralLibrary
+from swathmill.workflows.methods.unmix import (HAVE_NUMBA, IllConditionedWarning, LinearTransform, UnmixConfig, UnmixError, Unmixer,
                              build_steps, check_endmembers, condition_number, fcls_pixel, kkt_violation, unmix,
                              unmix_cube, unmix_step)
 
@@ -296,7 +296,7 @@ def test_step_band_names_and_outputs(rng, tmp_path):
     step = unmix_step("u", "src/cube", method="unconstrained", endmembers=m, names=["soil", "grass", "water"])
     out, _ = run_on_arrays([step], {"cube": x}, tmp_path, tile=16)
     assert set(out) == {"u/abundance", "u/rmse", "u/sum"}
-    from tiles.store import open_store
+    from swathmill.tiles.store import open_store
     store = open_store(tmp_path / "run" / "stores" / "u.zarr")
     assert store.specs["abundance"].bands == ("soil", "grass", "water")
     assert store.specs["abundance"].dtype == "float32"
@@ -305,7 +305,7 @@ def test_step_band_names_and_outputs(rng, tmp_path):
 def test_library_endmembers_resampled_and_uncovered_refused(rng, tmp_path):
     wl_cube = np.linspace(450.0, 950.0, 24)
     coords = {"wavelength": tuple(wl_cube), "fwhm": tuple(np.full(24, np.nan))}  # unknown widths: linear
-    from tiles.step import OutputSpec
+    from swathmill.tiles.step import OutputSpec
     spec = OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(24)), dtype="float32", nodata=float("nan"),
                       coords=coords)
     lib_wl = np.arange(400.0, 1001.0, 1.0)
@@ -326,7 +326,7 @@ def test_library_endmembers_resampled_and_uncovered_refused(rng, tmp_path):
 def test_config_and_build_steps(tmp_path):
     lib = SpectralLibrary(("a", "b"), np.array([400.0, 500.0, 600.0]), np.array([[.1, .2, .3], [.3, .2, .1]]),
                           source="x")
-    from workflows.library import write_library
+    from swathmill.workflows.inputs.library import write_library
     write_library(lib, tmp_path / "lib.csv")
     cfg = UnmixConfig.model_validate({"method": "sum_to_one", "shade": True, "endmembers": {"library": "lib.csv"}})
     steps = build_steps(cfg, {"base_dir": tmp_path})
@@ -396,7 +396,7 @@ def test_jasper_ridge_extracted_endmembers(jasper, method):
 
 
 def test_ground_reference_endmembers_are_class_means(rng, tmp_path):
-    from workflows.reference import SampleTable
+    from swathmill.workflows.inputs.reference import SampleTable
     m, x = _scene(rng, rows=32, cols=32)
     x[:, :4, :6] = m[:, [0]][:, :, None]  # pure patches: the class means are the endmember spectra
     x[:, 20:24, 20:26] = m[:, [1]][:, :, None]
@@ -425,9 +425,9 @@ def test_ground_reference_endmembers_are_class_means(rng, tmp_path):
 def test_image_endmembers_step_tiled_equals_untiled(rng, tmp_path):
     m, x = _scene(rng, rows=48, cols=40)
     outs = []
-    from tiles.step import OutputSpec
-    from tiles.tasks import load_model
-    from workflows.endmembers import endmember_library, endmember_points
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.tasks import load_model
+    from swathmill.workflows.methods.endmembers import endmember_library, endmember_points
     wl = np.linspace(400.0, 1000.0, x.shape[0])
     spec = OutputSpec(tuple(f"b{i + 1:03d}" for i in range(x.shape[0])), "float32", float("nan"),
                       coords={"wavelength": tuple(wl)})
@@ -462,7 +462,7 @@ def test_library_endmembers_on_mnf_components(rng, tmp_path):
     """Library endmembers moved into component space by the MNF forward transform (mean, eigenvectors
     of scipy.linalg.eigh(S, N), Green et al. 1988) unmix components of noise-free mixtures exactly."""
     import scipy.linalg
-    from tiles.step import OutputSpec
+    from swathmill.tiles.step import OutputSpec
     bands, k = 24, 6
     wl_cube = np.linspace(450.0, 950.0, bands)
     lib_wl = np.arange(400.0, 1001.0, 2.0)

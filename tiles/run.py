@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping, Protocol, Sequence
 
+from .. import __version__
 from .executors import Executor, LocalExecutor
 from .grid import Grid, Tiling
 from .ledger import Ledger
@@ -29,7 +30,7 @@ from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 
 __all__ = ["Run", "RunOptions", "RunResult", "StepReport", "Progress", "PlanError", "ENGINE_VERSION", "plan_check"]
 
-ENGINE_VERSION = "0.1.0"
+ENGINE_VERSION = __version__  # the package version, hashed into every step key
 log = logging.getLogger("swathmill")
 
 

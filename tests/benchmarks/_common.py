@@ -116,8 +116,8 @@ def noise_sigma(bands: int) -> np.ndarray:
 
 def write_cube_tile(task: tuple) -> int:
     """Write one tile of the synthetic cube (runs on a worker); returns its pixel count."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     path, row, col, rows, cols, bands, k, seed = task
     store = TileStore(Path(path))
@@ -142,7 +142,7 @@ def write_cube_tile(task: tuple) -> int:
 
 
 def cube_spec(bands: int):
-    from tiles.step import OutputSpec
+    from swathmill.tiles.step import OutputSpec
 
     wl, fwhm = wavelengths(bands)
     return OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(bands)), dtype="int16", nodata=NODATA,
@@ -162,10 +162,10 @@ def _map(executor, fn: Callable, tasks: list) -> list:
 def build_cube(path: Path, size: int, bands: int, tile: int, executor, *, n_endmembers: int = 6,
                seed: int = 11) -> dict[str, Any]:
     """Create the cube store at ``path`` (size x size px); returns its facts and build time."""
-    from tiles.grid import Tiling
-    from tiles.run import RunOptions
-    from tiles.store import create_store
-    from tiles.testing import default_grid
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.run import RunOptions
+    from swathmill.tiles.store import create_store
+    from swathmill.tiles.testing import default_grid
 
     t0 = time.perf_counter()
     grid = default_grid(size, size)
@@ -189,10 +189,10 @@ def set_worker_env(pairs: list[str]) -> dict[str, str]:
 
     Returns the environment that the benchmark passes to ``DaskExecutor(worker_env=...)`` (also kept in
     :data:`WORKER_ENV`). ``KEY=`` drops a key: ``MALLOC_MMAP_THRESHOLD_= MALLOC_TRIM_THRESHOLD_=65536``
-    gives Dask's own default, to compare with the engine's :data:`tiles.executors.WORKER_MALLOC_ENV`.
+    gives Dask's own default, to compare with the engine's :data:`swathmill.tiles.executors.WORKER_MALLOC_ENV`.
     """
     global WORKER_ENV
-    from tiles.executors import WORKER_MALLOC_ENV
+    from swathmill.tiles.executors import WORKER_MALLOC_ENV
 
     env = dict(WORKER_MALLOC_ENV)
     for pair in pairs:
@@ -257,8 +257,8 @@ def _random_block(bands: int, rows: int, cols: int) -> np.ndarray:
 
 def write_tile_block(task: tuple) -> int:
     """Write a random float32 block into one tile window of ``out`` (runs on a worker)."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     path, row, col, rows, cols, bands, make_only = task
     block = _random_block(bands, rows, cols)
@@ -277,9 +277,9 @@ def write_pass(out: Path, grid, bands: int, tile: int, executor) -> float:
     The data are standard normal values (as incompressible as transform components); a block is
     made once per worker before the clock starts.
     """
-    from tiles.run import RunOptions
-    from tiles.step import OutputSpec
-    from tiles.store import create_store
+    from swathmill.tiles.run import RunOptions
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.store import create_store
 
     spec = OutputSpec(bands=tuple(f"c{i + 1}" for i in range(bands)), dtype="float32", nodata=float("nan"))
     create_store(out, grid, {"out": spec}, RunOptions(tile=tile).layout())
@@ -456,9 +456,9 @@ def tile_breakdown(step, src: Path, store_path: Path, model_path: str | None, ti
     """
     from threadpoolctl import threadpool_limits
 
-    from tiles.run import RunOptions
-    from tiles.store import TileStore, create_store, encode
-    from tiles.tasks import TileTask, load_model, read_block
+    from swathmill.tiles.run import RunOptions
+    from swathmill.tiles.store import TileStore, create_store, encode
+    from swathmill.tiles.tasks import TileTask, load_model, read_block
 
     grid = TileStore(Path(src)).grid
     inputs = {alias: (str(src), ref.split("/")[1]) for alias, ref in step.inputs.items()}

@@ -7,18 +7,18 @@ It works in a temporary folder under /tmp that it deletes at the end, on
     spectra mixed with smooth random abundances, a smooth illumination factor and band-dependent
     noise, scale_factor 1e-4, wavelength and fwhm coordinates; see ``_common.py``) and a spectral
     library of 20 spectra at the cube's wavelengths (the six endmembers and 14 other smooth spectra).
-    The step ``workflows.classify.sam_step`` (threshold 0.1 rad; outputs the class map and 20 angle
-    bands) through ``tiles.run.Run(...).execute``, against the I/O floor measured on the same
+    The step ``swathmill.workflows.methods.classify.sam_step`` (threshold 0.1 rad; outputs the class map and 20 angle
+    bands) through ``swathmill.tiles.run.Run(...).execute``, against the I/O floor measured on the same
     cluster just before each run: one read pass of the cube (the faster of ``dask.array.from_zarr(
     ...).sum()`` and a tile loop reading each shard with zarr); ``--repeat`` repetitions.
 (b) Where the time of one interior tile of the spectral angle step goes (zarr read, decoding,
     kernel, encoding, zarr write; wall and CPU seconds) with one BLAS thread, in this process and
-    again on a Dask worker (whose allocator settings, ``tiles.executors.WORKER_MALLOC_ENV``, change how
+    again on a Dask worker (whose allocator settings, ``swathmill.tiles.executors.WORKER_MALLOC_ENV``, change how
     memory is mapped), and the scheduling share of the tile phase.
 (c) SVM prediction. A store of 20 float32 bands shaped like MNF components (default 2048 x 2048 =
     4.2 million pixels; six classes in smooth patches, class means that shrink with the component
     index, smooth within-class variation and unit noise), a sample table of labelled pixels in
-    spatial blocks, and ``workflows.classify.svm_step`` (standardised RBF SVC, C and gamma from a
+    spatial blocks, and ``swathmill.workflows.methods.classify.svm_step`` (standardised RBF SVC, C and gamma from a
     small grid by blocked cross-validation, at most 300 samples per class). After a first run (fit
     and tiles), the time of its tile phase alone on the 2 workers (the store removed, the fitted
     model loaded; reading, predicting, writing the class map) against ``Pipeline.predict`` of the
@@ -64,8 +64,8 @@ def arithmetic_floor(src: Path, tile: int, index: tuple[int, int], lib, chunk: i
     """
     from threadpoolctl import threadpool_limits
 
-    from tiles.grid import Tiling
-    from tiles.store import open_store
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.store import open_store
 
     st = open_store(src)
     t = next(x for x in Tiling(st.grid, tile, 0) if x.index == tuple(index))
@@ -132,8 +132,8 @@ def components(rows: np.ndarray, cols: np.ndarray, seed: int) -> np.ndarray:
 
 def write_components_tile(task: tuple) -> int:
     """Write one tile of the component store (runs on a worker)."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     path, row, col, rows, cols, seed = task
     x = components(np.arange(row, row + rows)[:, None], np.arange(col, col + cols)[None, :], seed)
@@ -147,11 +147,11 @@ def write_components_tile(task: tuple) -> int:
 def build_components(path: Path, size: int, tile: int, executor, seed: int = 5) -> float:
     import _common as C
 
-    from tiles.grid import Tiling
-    from tiles.run import RunOptions
-    from tiles.step import OutputSpec
-    from tiles.store import create_store
-    from tiles.testing import default_grid
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.run import RunOptions
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.store import create_store
+    from swathmill.tiles.testing import default_grid
 
     t0 = time.perf_counter()
     grid = default_grid(size, size)
@@ -164,7 +164,7 @@ def build_components(path: Path, size: int, tile: int, executor, seed: int = 5) 
 
 def sample_table(size: int, seed: int = 5, block: int = 128, per_block: int = 24):
     """Labelled pixels: ``per_block`` random pixels in each ``block`` px square (its group id)."""
-    from workflows.reference import SampleTable
+    from swathmill.workflows.inputs.reference import SampleTable
 
     rng = np.random.default_rng(seed + 100)
     nb = size // block
@@ -180,7 +180,7 @@ def sample_table(size: int, seed: int = 5, block: int = 128, per_block: int = 24
 
 # runs ---------------------------------------------------------------------------------------------------------
 def run_steps(run_dir: Path, steps: list, src: Path, executor, tile: int) -> float:
-    from tiles.run import Run, RunOptions
+    from swathmill.tiles.run import Run, RunOptions
 
     with Run(run_dir, RunOptions(tile=tile, export=False)) as run:
         t0 = time.perf_counter()
@@ -194,7 +194,7 @@ def run_steps(run_dir: Path, steps: list, src: Path, executor, tile: int) -> flo
 def library(bands: int, endmembers: np.ndarray):
     import _common as C
 
-    from workflows.library import SpectralLibrary
+    from swathmill.workflows.inputs.library import SpectralLibrary
 
     wl, _ = C.wavelengths(bands)
     spectra = np.vstack([endmembers, C.smooth_spectra(bands, 20 - len(endmembers), seed=99)])
@@ -228,9 +228,9 @@ def main(argv: list[str] | None = None) -> int:
     import dask
     import zarr
 
-    from tiles.executors import DaskExecutor
-    from tiles.store import open_store
-    from workflows.classify import load_svm, sam_step, svm_step
+    from swathmill.tiles.executors import DaskExecutor
+    from swathmill.tiles.store import open_store
+    from swathmill.workflows.methods.classify import load_svm, sam_step, svm_step
 
     nbytes = a.bands * a.size * a.size * 2
     print(f"cube: int16 {a.bands} bands x {a.size} x {a.size} px = {C.gb(nbytes)}; components: {N_COMP} float32 "
@@ -315,7 +315,7 @@ def main(argv: list[str] | None = None) -> int:
             run_dir = tmp / "svm"
             t_run = run_steps(run_dir, [step], comp, ex, a.tile)  # fit + tiles (workers warm up here)
             t_fit = C.step_timings(run_dir)["svm"].get("fit", 0.0)
-            from tiles.tasks import load_model
+            from swathmill.tiles.tasks import load_model
 
             model = load_model(C.model_base(run_dir, "svm"))
             clf = load_svm(model)["classifier"]

@@ -65,8 +65,8 @@ def _spectra(bands: int, k: int, seed: int) -> np.ndarray:
 
 def write_cube_tile(task: tuple) -> int:
     """Write one tile of the synthetic cube (runs on a worker): mixtures of 4 spectra plus noise."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     path, row, col, rows, cols, bands, seed = task
     store = TileStore(Path(path))
@@ -86,17 +86,17 @@ def write_cube_tile(task: tuple) -> int:
 
 def build_cube(path: Path, size: int, bands: int, tile: int, executor, seed: int = 11) -> float:
     """Create the cube store at ``path`` (size x size px, ``bands`` int16 bands); return seconds."""
-    from tiles.grid import Grid, Tiling
-    from tiles.store import create_store
-    from tiles.step import OutputSpec
-    from tiles.testing import default_grid
+    from swathmill.tiles.grid import Grid, Tiling
+    from swathmill.tiles.store import create_store
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.testing import default_grid
 
     t0 = time.perf_counter()
     grid: Grid = default_grid(size, size)
     spec = OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(bands)), dtype="int16", nodata=-9999,
                       coords={"wavelength": tuple(float(400 + 10 * i) for i in range(bands))},
                       attrs={"scale_factor": 1e-4})
-    from tiles.run import RunOptions
+    from swathmill.tiles.run import RunOptions
 
     create_store(path, grid, {"refl": spec}, RunOptions(tile=tile).layout())
     tasks = [(str(path), t.core.row, t.core.col, t.core.rows, t.core.cols, bands, seed) for t in Tiling(grid, tile)]
@@ -118,13 +118,13 @@ def _same_spec(meta, model, params) -> dict:
 
 
 def passthrough_step():
-    from tiles.step import Step
+    from swathmill.tiles.step import Step
 
     return Step(name="copy", kernel=passthrough, outputs=_same_spec, inputs={"x": "src/refl"}, decode=False)
 
 
 def run_engine(run_dir: Path, src: Path, executor, tile: int) -> tuple[float, Any]:
-    from tiles.run import Run, RunOptions
+    from swathmill.tiles.run import Run, RunOptions
 
     with Run(run_dir, RunOptions(tile=tile, export=False)) as run:
         t0 = time.perf_counter()
@@ -138,7 +138,7 @@ def run_dask_copy(src: Path, out: Path, tile: int) -> float:
     import zarr
     from zarr.codecs import ZstdCodec
 
-    from tiles.run import RunOptions
+    from swathmill.tiles.run import RunOptions
 
     lay = RunOptions(tile=tile).layout()
     a = zarr.open_array(str(src / "refl"), mode="r")
@@ -206,15 +206,15 @@ def cpu_seconds() -> float:
 
 
 def _cluster(workers: int):
-    from tiles.executors import DaskExecutor
+    from swathmill.tiles.executors import DaskExecutor
 
     return DaskExecutor(n_workers=workers, threads_per_worker=1)
 
 
 def _check_copy(src: Path, out_store: Path, rng: np.random.Generator, n: int = 3) -> None:
     """Spot-check that the output equals the input on a few random windows."""
-    from tiles.grid import Window
-    from tiles.store import open_store
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import open_store
 
     a, b = open_store(src), open_store(out_store)
     for _ in range(n):

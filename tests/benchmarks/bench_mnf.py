@@ -5,8 +5,8 @@ inner chunks of 256 px, zstd level 1; six smooth endmember spectra mixed with sm
 abundances, a smooth illumination factor and band-dependent white noise, scale_factor 1e-4) as an
 engine source store in a temporary folder under /tmp that it deletes at the end, and measures:
 
-(a) the MNF step (``workflows.mnf.mnf_steps(MnfConfig(components=20))``: fit on every pixel, then the
-    forward transform written as 20 float32 bands) through ``tiles.run.Run(...).execute`` on
+(a) the MNF step (``swathmill.workflows.methods.mnf.mnf_steps(MnfConfig(components=20))``: fit on every pixel, then the
+    forward transform written as 20 float32 bands) through ``swathmill.tiles.run.Run(...).execute`` on
     ``DaskExecutor(n_workers=2, threads_per_worker=1)``, with the whole fit (the default), a
     pixel-sampled fit (``pixel_fraction``, default 0.25), a tile-sampled fit (``tile_fraction``,
     default 0.25) and both samplings together (documented options, recorded in the model's
@@ -18,7 +18,7 @@ engine source store in a temporary folder under /tmp that it deletes at the end,
     each run's ratio uses that floor (other jobs on the machine change the speed from minute to
     minute); ``--repeat`` repetitions.
 (b) where the time goes in one interior tile, with one BLAS thread, in this process and again on a
-    Dask worker (whose allocator settings, ``tiles.executors.WORKER_MALLOC_ENV``, change how memory is
+    Dask worker (whose allocator settings, ``swathmill.tiles.executors.WORKER_MALLOC_ENV``, change how memory is
     mapped), wall and CPU seconds: zarr read of the tile (the fit reads no halo), decoding (none: the step reads stored values), the
     accumulator, then the forward read, kernel, encoding and write; and the scheduling share of
     the tile phase (wall time minus the time spent inside tile tasks, divided over the workers).
@@ -69,8 +69,8 @@ def mnf_run(run_dir: Path, src: Path, executor, tile: int, components: int, pixe
     """The MNF step (fit + forward) through the engine; wall time of ``execute`` and its phases."""
     import _common as C
 
-    from tiles.run import Run, RunOptions
-    from workflows.mnf import MnfConfig, mnf_steps
+    from swathmill.tiles.run import Run, RunOptions
+    from swathmill.workflows.methods.mnf import MnfConfig, mnf_steps
 
     cfg = MnfConfig(components=components, pixel_fraction=pixel_fraction, tile_fraction=tile_fraction)
     steps = mnf_steps(cfg, "src/refl")
@@ -96,7 +96,7 @@ def child_run(run_dir: Path, src: Path, tile: int, workers: int, components: int
     """Our MNF run on a fresh cluster, peak memory of this process and its descendants; prints JSON."""
     import _common as C
 
-    from tiles.executors import DaskExecutor
+    from swathmill.tiles.executors import DaskExecutor
 
     t0 = time.perf_counter()
     ex = DaskExecutor(n_workers=workers, threads_per_worker=1, worker_env=C.WORKER_ENV)
@@ -217,7 +217,7 @@ def part_ab(a, src: Path, tmp: Path, reads: list, writes: list, runs: dict, nbyt
               f"components (eigenvalue >= 2): {', '.join(f'k={k}: {v:.2f} deg' for k, v in ang.items())}", flush=True)
 
     # (b) ---------------------------------------------------------------------------------------
-    from workflows.mnf import MnfConfig, mnf_steps
+    from swathmill.workflows.methods.mnf import MnfConfig, mnf_steps
 
     run_dir = tmp / f"run-full-{a.repeat - 1}"
     n = a.size // a.tile
@@ -278,8 +278,8 @@ def main(argv: list[str] | None = None) -> int:
     import psutil
     import zarr
 
-    from tiles.executors import DaskExecutor
-    from tiles.testing import default_grid
+    from swathmill.tiles.executors import DaskExecutor
+    from swathmill.tiles.testing import default_grid
 
     nbytes = a.bands * a.size * a.size * 2
     out_bytes = a.components * a.size * a.size * 4

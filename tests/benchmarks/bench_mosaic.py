@@ -120,8 +120,8 @@ def baseline(step, lines: list[dict]) -> tuple[float, list[float], float]:
 
 
 def run_mosaic(step, run_dir: Path, workers: int, tile: int) -> tuple[float, int, int, bool, float]:
-    from tiles.executors import make_executor
-    from tiles.run import Run, RunOptions
+    from swathmill.tiles.executors import make_executor
+    from swathmill.tiles.run import Run, RunOptions
 
     shutil.rmtree(run_dir, ignore_errors=True)
     ex = make_executor("dask", n_workers=workers, threads_per_worker=1, memory_limit="6GB")
@@ -146,8 +146,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--keep", action="store_true", help="keep the run directories")
     args = ap.parse_args(argv)
 
-    from workflows.mosaic import MosaicConfig, build_mosaic_step
-    from workflows.scenario import generate_scenario
+    from swathmill.workflows.methods.mosaic import MosaicConfig, build_mosaic_step
+    from swathmill.workflows.app.scenario import generate_scenario
 
     scen_dir = args.work / f"scenario-large-{args.seed}"
     if not (scen_dir / "scenario.json").is_file():

@@ -18,9 +18,9 @@ whole step against the I/O floor.
     1) in a temporary folder under ``--dir`` (default /tmp) that is deleted at the end. Every pixel
     is a true mixture of the five endmembers, sum to one, with abundances from smooth random fields
     cut at zero (so most pixels lack one or more endmembers and the non-negativity constraints are
-    active), plus white noise. The step ``workflows.unmix.unmix_step`` (fully constrained, endmembers
+    active), plus white noise. The step ``swathmill.workflows.methods.unmix.unmix_step`` (fully constrained, endmembers
     from a SpectralLibrary of the five spectra at the cube's wavelengths; outputs 5 abundance bands
-    and the RMSE band, float32) runs through ``tiles.run.Run(...).execute`` on
+    and the RMSE band, float32) runs through ``swathmill.tiles.run.Run(...).execute`` on
     ``DaskExecutor(n_workers=2, threads_per_worker=1)``, against the I/O floor measured on the same
     cluster in the same run, right after each step run:
 
@@ -70,7 +70,7 @@ import numpy as np
 import scipy.optimize
 from threadpoolctl import threadpool_limits
 
-from workflows.unmix import Unmixer
+from swathmill.workflows.methods.unmix import Unmixer
 
 HERE = Path(__file__).resolve().parent
 SCALE = 1e-4  # stored int16 -> reflectance
@@ -210,8 +210,8 @@ def true_abundances(row: int, col: int, rows: int, cols: int, p: int, seed: int)
 
 def write_cube_tile(task: tuple) -> int:
     """Write one tile of the cube (runs on a worker): ``M a`` plus white noise, int16 in 1e-4 units."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     path, row, col, rows, cols, bands, p, seed, noise = task
     m = endmember_matrix(bands, p, seed).astype(np.float32)
@@ -280,10 +280,10 @@ def _windows(rows: int, cols: int, tile: int) -> list[tuple[int, int, int, int]]
 
 def build_cube(path: Path, size: int, bands: int, p: int, tile: int, executor, seed: int, noise: float) -> float:
     """Create the source store (size x size px) tile by tile on the executor's workers; return seconds."""
-    from tiles.run import RunOptions
-    from tiles.step import OutputSpec
-    from tiles.store import create_store
-    from tiles.testing import default_grid
+    from swathmill.tiles.run import RunOptions
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.store import create_store
+    from swathmill.tiles.testing import default_grid
 
     t0 = time.perf_counter()
     spec = OutputSpec(bands=tuple(f"b{i + 1:03d}" for i in range(bands)), dtype="int16", nodata=NODATA,
@@ -297,7 +297,7 @@ def build_cube(path: Path, size: int, bands: int, p: int, tile: int, executor, s
 
 def library(bands: int, p: int, seed: int):
     """The cube's endmembers as a SpectralLibrary at the cube's wavelengths."""
-    from workflows.library import SpectralLibrary
+    from swathmill.workflows.inputs.library import SpectralLibrary
 
     return SpectralLibrary(NAMES[:p] if p <= len(NAMES) else tuple(f"em_{i + 1}" for i in range(p)),
                            wavelengths(bands), endmember_matrix(bands, p, seed).T, source="bench-library")
@@ -306,7 +306,7 @@ def library(bands: int, p: int, seed: int):
 # (b) the step and the floor ---------------------------------------------------------------------------
 def warm_worker() -> str:
     """Import the unmixing module and load its compiled loops (runs on each worker, untimed)."""
-    from workflows.unmix import Unmixer as U
+    from swathmill.workflows.methods.unmix import Unmixer as U
 
     m = np.eye(6, 3) + 0.1
     U(m, "fully_constrained").solve(np.ones((6, 4)))
@@ -315,8 +315,8 @@ def warm_worker() -> str:
 
 def unmix_run(run_dir: Path, src: Path, executor, tile: int, lib) -> dict:
     """The fully constrained unmixing step through the engine; wall time of ``execute`` and its phases."""
-    from tiles.run import Run, RunOptions
-    from workflows.unmix import unmix_step
+    from swathmill.tiles.run import Run, RunOptions
+    from swathmill.workflows.methods.unmix import unmix_step
 
     step = unmix_step("unmix", "src/refl", method="fully_constrained", library=lib)
     with Run(run_dir, RunOptions(tile=tile, export=False)) as run:
@@ -362,15 +362,15 @@ def floor_kernel(block, model) -> dict:
 
 
 def _floor_outputs(meta, model, params) -> dict:
-    from tiles.step import OutputSpec
+    from swathmill.tiles.step import OutputSpec
 
     return {"abundance": OutputSpec(bands=NAMES, dtype="float32", nodata=float("nan")),
             "rmse": OutputSpec(bands=("rmse",), dtype="float32", nodata=float("nan"))}
 
 
 def engine_floor_run(run_dir: Path, src: Path, executor, tile: int) -> float:
-    from tiles.run import Run, RunOptions
-    from tiles.step import Step
+    from swathmill.tiles.run import Run, RunOptions
+    from swathmill.tiles.step import Step
 
     step = Step(name="passthrough", kernel=floor_kernel, outputs=_floor_outputs, inputs={"x": "src/refl"})
     with Run(run_dir, RunOptions(tile=tile, export=False)) as run:
@@ -418,8 +418,8 @@ def read_pass_tiles(src: Path, size: int, tile: int, executor) -> float:
 @lru_cache(maxsize=2)
 def _output_tile(like: str, rows: int, cols: int) -> dict[str, np.ndarray]:
     """The arrays of the output tile at (0, 0) of a finished step store (stored values)."""
-    from tiles.grid import Window
-    from tiles.store import TileStore
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore
 
     s = TileStore(Path(like))
     w = Window(0, 0, rows, cols)
@@ -428,14 +428,14 @@ def _output_tile(like: str, rows: int, cols: int) -> dict[str, np.ndarray]:
 
 @lru_cache(maxsize=2)
 def _open(path: str, _token: float):
-    from tiles.store import TileStore
+    from swathmill.tiles.store import TileStore
 
     return TileStore(Path(path))
 
 
 def write_output_tile(task: tuple) -> int:
     """Write one real output tile's content into a window of the floor store (runs on a worker)."""
-    from tiles.grid import Window
+    from swathmill.tiles.grid import Window
 
     out, like, row, col, rows, cols, token, make_only = task
     arrays = _output_tile(like, rows, cols)
@@ -452,7 +452,7 @@ def write_output_tile(task: tuple) -> int:
 def write_pass(out: Path, like: Path, tile: int, executor) -> float:
     """Seconds to write every tile of a store shaped like the step store ``like`` (same outputs,
     layout, codec), each tile with the content of ``like``'s tile (0, 0), read before the clock."""
-    from tiles.store import TileStore, create_store
+    from swathmill.tiles.store import TileStore, create_store
 
     ref = TileStore(like)
     grid = ref.grid
@@ -475,10 +475,10 @@ def tile_breakdown(run_dir: Path, src: Path, tile: int, index: tuple[int, int], 
     disturbed by other jobs than wall time. Returns ``{"wall": {phase: s}, "cpu": {phase: s}}``."""
     import glob
 
-    from tiles.grid import Tiling
-    from tiles.store import TileStore, create_store, decode, encode
-    from tiles.tasks import load_model
-    from workflows.unmix import _unmixer
+    from swathmill.tiles.grid import Tiling
+    from swathmill.tiles.store import TileStore, create_store, decode, encode
+    from swathmill.tiles.tasks import load_model
+    from swathmill.workflows.methods.unmix import _unmixer
 
     store = TileStore(src)
     out_store = TileStore(run_dir / "stores" / "unmix.zarr")
@@ -513,7 +513,7 @@ def tile_breakdown(run_dir: Path, src: Path, tile: int, index: tuple[int, int], 
             return x
 
         x = clock("decode", dec)
-        from workflows.unmix import unmix_cube
+        from swathmill.workflows.methods.unmix import unmix_cube
 
         res = clock("kernel", lambda: unmix_cube(x, None, unmixer=u))
         # the kernel in parts: the M'x / x'x pass, then the solve on the normal equations
@@ -550,8 +550,8 @@ def tile_breakdown(run_dir: Path, src: Path, tile: int, index: tuple[int, int], 
 
 def accuracy(run_dir: Path, tile: int, p: int, seed: int) -> dict[str, float]:
     """Output tile (0, 0) against the true abundances: share of pixels with a zero abundance, RMSE."""
-    from tiles.grid import Window
-    from tiles.store import TileStore, decode
+    from swathmill.tiles.grid import Window
+    from swathmill.tiles.store import TileStore, decode
 
     s = TileStore(run_dir / "stores" / "unmix.zarr")
     w = Window(0, 0, tile, tile)
@@ -569,8 +569,8 @@ def step_figure(args: argparse.Namespace) -> bool:
     import dask
     import zarr
 
-    from tiles.executors import DaskExecutor
-    from workflows.unmix import condition_number
+    from swathmill.tiles.executors import DaskExecutor
+    from swathmill.workflows.methods.unmix import condition_number
 
     size, bands, tile, p = args.size, args.cube_bands, args.tile, args.endmembers
     if size % tile:

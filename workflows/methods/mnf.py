@@ -86,9 +86,9 @@ import numpy as np
 import scipy.linalg
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from tiles.grid import Tile
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
-from tiles.store import copy_bands, index_runs
+from swathmill.tiles.grid import Tile
+from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+from swathmill.tiles.store import copy_bands, index_runs
 
 __all__ = [
     "MnfConfig",

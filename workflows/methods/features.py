@@ -37,10 +37,10 @@ from typing import Annotated, Any, Literal, Mapping, Sequence, Union
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, field_validator, model_validator
 
-from tiles.step import Block, OutputSpec, Step, StepError
+from swathmill.tiles.step import Block, OutputSpec, Step, StepError
 
-from .config import check_ref
-from .continuum import band_minimum, continuum_removed
+from swathmill.workflows.app.config import check_ref
+from swathmill.workflows.spectral.continuum import band_minimum, continuum_removed
 
 __all__ = [
     "BandDepth",

@@ -9,12 +9,12 @@ from pathlib import Path
 
 import numpy as np
 
-from tiles.ledger import Ledger
-from tiles.store import TileStore, decode
+from swathmill.tiles.ledger import Ledger
+from swathmill.tiles.store import TileStore, decode
 
-from .accuracy import area_estimate, class_accuracy
-from .finish import ACCURACY_FILE, RunView, is_class_map
-from .report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine, InputsSection,
+from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
+from swathmill.workflows.app.finish import ACCURACY_FILE, RunView, is_class_map
+from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine, InputsSection,
                      Quicklook, ReportSummary, ScatterView, SpectraView, StepTiming, build_report)
 
 __all__ = ["report_from_run"]
@@ -160,12 +160,12 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
 
 
 def _version() -> str:
-    from tiles.run import ENGINE_VERSION
+    from swathmill.tiles.run import ENGINE_VERSION
     return ENGINE_VERSION
 
 
 def _library_spectra(view: RunView, summary: ReportSummary) -> None:
-    from .library import read_library
+    from swathmill.workflows.inputs.library import read_library
 
     paths = set()
     cfg = view.config

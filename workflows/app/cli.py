@@ -42,16 +42,16 @@ def _parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
-        from tiles.run import ENGINE_VERSION
+        from swathmill.tiles.run import ENGINE_VERSION
         print(f"swathmill {ENGINE_VERSION}")
         return EXIT_OK
     if args.command is None:
         _parser().print_help()
         return EXIT_INPUT
-    from tiles.lock import RunLockedError
+    from swathmill.tiles.lock import RunLockedError
 
-    from .config import ConfigError
-    from .pipeline import InputError, run_config
+    from swathmill.workflows.app.config import ConfigError
+    from swathmill.workflows.app.pipeline import InputError, run_config
     try:
         if args.command == "run":
             return run_config(args.config, executor=args.executor, workers=args.workers, address=args.address,
@@ -59,10 +59,10 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "status":
             return _status(args.run_dir, args.json)
         if args.command == "demo":
-            from .demo import run_demo
+            from swathmill.workflows.app.demo import run_demo
             return run_demo(args.dir, size=args.size, seed=args.seed, executor=args.executor, plain=args.plain)
         if args.command == "report":
-            from .pipeline import rebuild_report
+            from swathmill.workflows.app.pipeline import rebuild_report
             path = rebuild_report(args.run_dir)
             print(f"report: {path}")
             return EXIT_OK
@@ -76,7 +76,7 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def _status(run_dir: Path, as_json: bool) -> int:
-    from tiles.run import run_status
+    from swathmill.tiles.run import run_status
 
     if not (Path(run_dir) / "ledger.sqlite").is_file():
         print(f"swathmill: error: {run_dir} is not a run directory (no ledger.sqlite)", file=sys.stderr)

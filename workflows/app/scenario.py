@@ -12,7 +12,7 @@ What :func:`generate_scenario` writes under ``out_dir`` (deterministic from ``se
   wavelengths and FWHM in band tags (``wavelength``, ``fwhm``, ``wavelength_units=nm``) and band
   descriptions;
 - ``lines/wavelengths.csv``: the same band centres and widths as a sidecar table;
-- ``library.csv``: the seven material spectra at 5 nm (format of :mod:`workflows.library`);
+- ``library.csv``: the seven material spectra at 5 nm (format of :mod:`swathmill.workflows.inputs.library`);
 - ``ground_reference.geojson``: points and small square polygons (longitude/latitude, RFC 7946) with
   ``label``, ``split`` (train / validation, by spatial blocks), ``frac_<material>`` and ``clay_pct``;
 - ``truth/abundance.tif`` (float32, one band per material), ``truth/classes.tif`` (uint8, 1..7 =
@@ -400,7 +400,7 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
     import rasterio
     from affine import Affine
 
-    from .spectra import resample_gaussian
+    from swathmill.workflows.spectral.spectra import resample_gaussian
 
     if size not in SIZES:
         raise ValueError(f"size must be one of {sorted(SIZES)}. Got {size!r}")

@@ -4,7 +4,7 @@ Two regressions, fitted on the predictor values at the reference samples:
 
 ``linear``
     Ordinary least squares with an intercept on chosen predictor bands (typically features from
-    :mod:`workflows.features`, e.g. a band depth).
+    :mod:`swathmill.workflows.methods.features`, e.g. a band depth).
 ``pls``
     Partial least squares regression (``sklearn.cross_decomposition.PLSRegression``) on spectra or
     on MNF components, optionally restricted to wavelength ranges; the number of latent components
@@ -51,11 +51,11 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from tiles.samples import in_core
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
+from swathmill.tiles.samples import in_core
+from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
-from .accuracy import regression_metrics
-from .config import check_ref
+from swathmill.workflows.methods.accuracy import regression_metrics
+from swathmill.workflows.app.config import check_ref
 
 __all__ = [
     "CalibrationError",

@@ -161,7 +161,7 @@ def resolve(base: Path, p: str | Path | None) -> Path | None:
 
 
 def load_config(path: Path):
-    from .pipeline import RunConfig as _RunConfig
+    from swathmill.workflows.app.pipeline import RunConfig as _RunConfig
 
     data = load_yaml(Path(path))
     return validate(_RunConfig, data, Path(path)), data

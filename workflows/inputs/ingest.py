@@ -2,7 +2,7 @@
 
 This module is the I/O side of the mosaic step. It opens each flight line with rasterio (GeoTIFF,
 and any other raster GDAL reads, e.g. NetCDF or HDF5), checks it, and describes it as a
-:class:`LineInfo`; it derives the target :class:`~tiles.grid.Grid` and each line's footprint; and it
+:class:`LineInfo`; it derives the target :class:`~swathmill.tiles.grid.Grid` and each line's footprint; and it
 provides the step's ``reader``, :func:`read_lines`, which warps only the window of each line that a
 tile needs.
 
@@ -35,8 +35,8 @@ from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from tiles.grid import Grid, Tile, Window
-from tiles.step import StepError
+from swathmill.tiles.grid import Grid, Tile, Window
+from swathmill.tiles.step import StepError
 
 __all__ = [
     "IngestError",
@@ -69,7 +69,7 @@ _DESC_NUMBER_RE = re.compile(r"^\s*([0-9]+(?:\.[0-9]*)?)\s*$")
 class IngestError(StepError):
     """A flight line or its metadata cannot be used; the message names the file (and band) at fault.
 
-    A :class:`~tiles.step.StepError` (a ``ValueError``): the mosaic step cannot be declared from
+    A :class:`~swathmill.tiles.step.StepError` (a ``ValueError``): the mosaic step cannot be declared from
     these inputs, and nothing has run.
     """
 
@@ -655,7 +655,7 @@ def edge_distance(segments: np.ndarray, window: Window, yscale: float = 1.0, blo
 def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest") -> np.ndarray | None:
     """Warp the window ``grid`` of one line: float32 (bands, rows, cols) reflectance, NaN outside.
 
-    ``line`` is the JSON description the mosaic step carries (see ``workflows.mosaic``): path, crs,
+    ``line`` is the JSON description the mosaic step carries (see ``swathmill.workflows.methods.mosaic``): path, crs,
     transform, width, height, nodata, bands (1-based indexes to read), scale, offset, xscale, yscale.
     GDAL reads from the file only the source window the grid needs; source pixel coordinates are
     computed from the whole line's transform (not a cut-out's), so every tile does the same arithmetic

@@ -16,7 +16,7 @@ Pure functions (no I/O) do the science:
   They describe the sampled pixels, not every overlapping pixel.
 
 :class:`MosaicConfig` is the YAML section; :func:`build_mosaic_step` turns it into the engine's
-:class:`~tiles.step.Step` (named ``mosaic``; outputs ``reflectance`` and ``source``).
+:class:`~swathmill.tiles.step.Step` (named ``mosaic``; outputs ``reflectance`` and ``source``).
 """
 from __future__ import annotations
 
@@ -30,10 +30,10 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from tiles.grid import Grid, Tile
-from tiles.step import Block, Fit, OutputSpec, Step
+from swathmill.tiles.grid import Grid, Tile
+from swathmill.tiles.step import Block, Fit, OutputSpec, Step
 
-from .ingest import (
+from swathmill.workflows.inputs.ingest import (
     IngestError,
     LineInfo,
     bad_band_mask,
@@ -184,9 +184,9 @@ def _default_name(path: str) -> str:
 def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     """Inspect the lines, choose the bands and the grid, and describe each line for the reader.
 
-    Raises :class:`~workflows.ingest.IngestError` naming the line (and band) at fault.
+    Raises :class:`~swathmill.workflows.inputs.ingest.IngestError` naming the line (and band) at fault.
     """
-    from .spectra import SpectralCoverageError, resample
+    from swathmill.workflows.spectral.spectra import SpectralCoverageError, resample
 
     base = Path(base_dir)
     # plain paths are relative to the config's folder; GDAL dataset names (NETCDF:..., HDF5:..., /vsi...)

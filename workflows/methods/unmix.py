@@ -66,7 +66,7 @@ Step and configuration
 named after it; ``rmse``; ``sum`` for the unconstrained variant). Its fit phase settles the endmember
 matrix in the input's space before any tile is unmixed: from a spectral library (resampled to the
 input's ``wavelength``/``fwhm`` coordinates; a library not covering them is refused), from
-ground-reference class means, extracted from the image (:mod:`workflows.endmembers`), or given.
+ground-reference class means, extracted from the image (:mod:`swathmill.workflows.methods.endmembers`), or given.
 :class:`UnmixConfig` is the YAML section and :func:`build_steps` its factory.
 """
 from __future__ import annotations
@@ -85,13 +85,13 @@ import numpy as np
 import scipy.optimize
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+from swathmill.tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
+from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from .config import check_ref, ctx_get
-from . import endmembers as _em
-from .library import SpectralLibrary, read_library, resample_library
-from .reference import GroundReferenceConfig, SampleTable, load_samples
+from swathmill.workflows.app.config import check_ref, ctx_get
+from swathmill.workflows.methods import endmembers as _em
+from swathmill.workflows.inputs.library import SpectralLibrary, read_library, resample_library
+from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
 
 __all__ = [
     "METHODS",
@@ -165,7 +165,7 @@ class LinearTransform:
 
     @classmethod
     def from_mnf_model(cls, model: Mapping[str, Any], k: int | None = None) -> "LinearTransform":
-        """The forward transform of a fitted MNF/PCA model (:mod:`workflows.mnf`): its ``mean``, the
+        """The forward transform of a fitted MNF/PCA model (:mod:`swathmill.workflows.methods.mnf`): its ``mean``, the
         first ``k`` columns of ``eigenvectors`` (default ``n_components``) and its ``band_index``."""
         try:
             k = int(model["n_components"]) if k is None else int(k)
@@ -951,7 +951,7 @@ def unmix_cube(cube: np.ndarray, endmembers: np.ndarray, method: str = "fully_co
 # before any tile is unmixed, and saves it in the model (so it is hashed into the step key):
 #   library   resampled to the input's ``wavelength`` (and ``fwhm``) coordinates; no tile is read.
 #   samples   mean spectrum of each ground-reference class (training and unassigned samples).
-#   image     extracted by :mod:`workflows.endmembers` (candidates per tile, global selection);
+#   image     extracted by :mod:`swathmill.workflows.methods.endmembers` (candidates per tile, global selection);
 #             the endmembers take the input's spectra at the chosen pixels.
 #   given     a matrix in the input's space; no tile is read.
 
@@ -1046,7 +1046,7 @@ def _finalize(acc: Any, params: Mapping[str, Any], meta: Mapping[str, InputMeta]
         names = list(ext["names"])
         model["extraction"] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in ext.items()
                                if k not in ("spectra", "reduced", "wavelengths")}
-        # what workflows.endmembers.endmember_library / endmember_points read
+        # what swathmill.workflows.methods.endmembers.endmember_library / endmember_points read
         model.update({k: ext[k] for k in ("rows", "cols", "x", "y", "crs", "method", "spectra", "wavelengths")
                       if k in ext})
         model["extracted_names"] = list(ext["names"])
@@ -1134,7 +1134,7 @@ def unmix_step(name: str, input_ref: str, *, method: str = "fully_constrained",
     samples : endmembers as the mean input spectrum of each ground-reference class (samples whose
         split is "validation" are left out).
     image : endmembers extracted from the image: parameters of
-        :func:`workflows.endmembers.extraction_params` (method, n_endmembers, seed, ...). The
+        :func:`swathmill.workflows.methods.endmembers.extraction_params` (method, n_endmembers, seed, ...). The
         extraction runs on ``reduced_ref`` (MNF or PCA components) if given, else on the input; the
         endmembers take the input's values at the chosen pixels.
     endmembers, names : a (bands, p) matrix already in the input's space, and its names.
@@ -1225,7 +1225,7 @@ class _Strict(BaseModel):
 
 
 class ImageEndmembersConfig(_em.ExtractionSettings):
-    """Endmembers found in the image (see :mod:`workflows.endmembers`)."""
+    """Endmembers found in the image (see :mod:`swathmill.workflows.methods.endmembers`)."""
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -1291,7 +1291,7 @@ def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
     """``[unmix_step(...)]`` for the ``unmix`` section.
 
     ``ctx`` (mapping or object) may provide ``base_dir`` (relative paths) and must provide ``grid``
-    (the mosaic's :class:`tiles.grid.Grid`) for ground-reference endmembers, optionally ``valid``.
+    (the mosaic's :class:`swathmill.tiles.grid.Grid`) for ground-reference endmembers, optionally ``valid``.
     """
     if not isinstance(section, UnmixConfig):
         raise UnmixError(f"build_steps takes an UnmixConfig. Got {type(section).__name__}")

@@ -15,7 +15,7 @@ Spectral angle (Kruse et al., 1993, Remote Sens. Environ. 44:145-163)
 
 Spectral feature fitting (Clark, Gallagher and Swayze, 1990; scale-and-RMSE form, common practice)
     Pixels and references are continuum-removed over one wavelength range (upper convex hull,
-    :mod:`workflows.continuum`); ``d = 1 - CR`` is the feature depth. Per reference, the least-squares
+    :mod:`swathmill.workflows.spectral.continuum`); ``d = 1 - CR`` is the feature depth. Per reference, the least-squares
     scale without intercept ``s = (d_r . d_o) / (d_r . d_r)`` maps the reference's depth onto the
     pixel's, ``RMSE = sqrt(mean((d_o - s d_r)^2))``, and the fit score is ``s / max(RMSE, rmse_floor)``
     (large when the feature is deep and well matched; the floor keeps it finite on perfect fits).
@@ -36,9 +36,9 @@ Support vector machine (Cortes and Vapnik, 1995; Melgani and Bruzzone, 2004)
     which the engine hashes into the step key.
 
 References
-    From a spectral library (:mod:`workflows.library`, resampled to the input's bands when the step is
+    From a spectral library (:mod:`swathmill.workflows.inputs.library`, resampled to the input's bands when the step is
     fitted: Gaussian from the input's ``fwhm`` coordinate, else linear) or from the image: the mean
-    spectrum per class of the training samples of a ground reference (:mod:`workflows.reference`),
+    spectrum per class of the training samples of a ground reference (:mod:`swathmill.workflows.inputs.reference`),
     gathered tile by tile by a mergeable accumulator.
 
 Class maps
@@ -53,11 +53,11 @@ Steps (outputs)
     ``svm_step``: ``classes``, and ``probability`` (one band per class) when asked.
 
 The modal (majority) filter of a class map is the engine's generic step
-(``tiles.ops.modal_filter_step(name, "<step>/classes", size, n_classes=len(class_names))``).
+(``swathmill.tiles.ops.modal_filter_step(name, "<step>/classes", size, n_classes=len(class_names))``).
 
 Configuration (YAML sections, one pydantic model each; see :class:`SamConfig`, :class:`SffConfig`,
 :class:`SvmConfig`) and ``build_steps(section, ctx)``; ``ctx`` provides ``grid`` (the mosaic's
-:class:`tiles.grid.Grid`, needed for ground reference) and optionally ``base_dir`` (relative paths)
+:class:`swathmill.tiles.grid.Grid`, needed for ground reference) and optionally ``base_dir`` (relative paths)
 and ``valid`` (a function (rows, cols) -> bool of mosaic validity, to report samples on nodata early).
 """
 from __future__ import annotations
@@ -74,14 +74,14 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step
-from tiles.store import copy_bands, index_runs
+from swathmill.tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
+from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
+from swathmill.tiles.store import copy_bands, index_runs
 
-from .config import ctx_get
-from .continuum import continuum_removed, range_mask
-from .library import SpectralLibrary, hex_to_rgb, read_library, resample_library
-from .reference import GroundReferenceConfig, SampleTable, load_samples
+from swathmill.workflows.app.config import ctx_get
+from swathmill.workflows.spectral.continuum import continuum_removed, range_mask
+from swathmill.workflows.inputs.library import SpectralLibrary, hex_to_rgb, read_library, resample_library
+from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
 
 __all__ = [
     "ClassifyError",
@@ -924,7 +924,7 @@ class _Strict(BaseModel):
 class ReferenceSpectraConfig(_Strict):
     """Where reference spectra come from: exactly one of ``library`` or ``samples``.
 
-    ``library``: a spectral library CSV (:mod:`workflows.library`), optionally restricted to
+    ``library``: a spectral library CSV (:mod:`swathmill.workflows.inputs.library`), optionally restricted to
     ``materials``. ``samples``: a ground reference whose training pixels are averaged per class.
     """
 

@@ -467,12 +467,12 @@ def count_classes_in_raster(path: str | Path, n_classes: int, *, band: int = 1) 
 
 
 def class_counts_fit(alias: str, n_classes: int) -> "Any":
-    """A :class:`tiles.step.Fit` counting the classes 0..n_classes of input ``alias`` over all tiles.
+    """A :class:`swathmill.tiles.step.Fit` counting the classes 0..n_classes of input ``alias`` over all tiles.
 
     Each pixel is counted once (core of each tile, valid pixels only). ``finalize`` returns
     ``{"counts": int64 array (n_classes + 1,)}``.
     """
-    from tiles.step import Fit
+    from swathmill.tiles.step import Fit
 
     def accumulate(block: Any) -> np.ndarray:
         data = block.data[alias]

@@ -66,7 +66,7 @@ e.g. only leading components were kept) the floor is taken as 1, the theoretical
 Outputs
 -------
 The fitted model holds the endmembers' spectra, reduced values, pixel rows/columns and map
-coordinates. :func:`endmember_library` turns it into a :class:`workflows.library.SpectralLibrary`,
+coordinates. :func:`endmember_library` turns it into a :class:`swathmill.workflows.inputs.library.SpectralLibrary`,
 :func:`endmember_points` into a GeoJSON FeatureCollection of points; :func:`write_endmember_products`
 writes both into a given folder.
 """
@@ -81,10 +81,10 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
+from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from .config import check_ref
-from .library import SpectralLibrary, write_library
+from swathmill.workflows.app.config import check_ref
+from swathmill.workflows.inputs.library import SpectralLibrary, write_library
 
 __all__ = [
     "EXTRACTION_METHODS",
@@ -556,7 +556,7 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
     Without ``n_endmembers``, it is suggested from ``eigenvalues`` (all MNF eigenvalues, which may be
     more than the reduced bands given).
     """
-    from tiles.grid import Grid, Tiling
+    from swathmill.tiles.grid import Grid, Tiling
     from affine import Affine
 
     red = np.asarray(reduced, dtype=np.float32)
@@ -589,7 +589,7 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
 def endmember_library(model: Mapping[str, Any], *, source: str = "image endmembers") -> SpectralLibrary:
     """The extracted endmembers' spectra as a :class:`SpectralLibrary` (needs a ``spectra`` input
     with a wavelength coordinate). Takes the model of :func:`endmember_fit_step` or of an unmixing
-    step with image endmembers (:func:`workflows.unmix.unmix_step`)."""
+    step with image endmembers (:func:`swathmill.workflows.methods.unmix.unmix_step`)."""
     if "spectra" not in model or "wavelengths" not in model:
         raise EndmemberError("the extraction has no spectra with wavelengths: give the fit a 'spectra' input "
                              "(the reflectance cube) to write the endmembers as a library")

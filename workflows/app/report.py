@@ -12,7 +12,7 @@ the data.
 
 The summary is a plain typed structure (dataclasses of numpy arrays, strings and numbers), filled
 by whoever knows the run (the pipeline, from the run directory); accuracy sections take the result
-objects of :mod:`workflows.accuracy` directly.
+objects of :mod:`swathmill.workflows.methods.accuracy` directly.
 """
 from __future__ import annotations
 
@@ -27,7 +27,7 @@ from typing import Literal, Mapping, Sequence
 
 import numpy as np
 
-from .accuracy import AreaEstimate, ClassAccuracy, regression_metrics
+from swathmill.workflows.methods.accuracy import AreaEstimate, ClassAccuracy, regression_metrics
 
 __all__ = [
     "CAUTION",
@@ -176,7 +176,7 @@ class ScatterView:
 
     @classmethod
     def from_calibration(cls, name: str, model: Mapping[str, object]) -> "ScatterView":
-        """The cross-validated scatter of a fitted model of :mod:`workflows.calibration`."""
+        """The cross-validated scatter of a fitted model of :mod:`swathmill.workflows.methods.calibration`."""
         cv = dict(model["cv"])  # type: ignore[arg-type]
         k = model.get("n_components")
         what = f"{model['method']}" + (f", {k} components" if k else "")

@@ -18,29 +18,29 @@ from typing import Literal
 import numpy as np
 from pydantic import Field, field_validator
 
-from tiles.executors import make_executor
-from tiles.ops import modal_filter_step
-from tiles.run import ENGINE_VERSION, PlanError, Run, RunOptions, RunResult
-from tiles.step import Step, StepError
-from tiles.store import TileStore
+from swathmill.tiles.executors import make_executor
+from swathmill.tiles.ops import modal_filter_step
+from swathmill.tiles.run import ENGINE_VERSION, PlanError, Run, RunOptions, RunResult
+from swathmill.tiles.step import Step, StepError
+from swathmill.tiles.store import TileStore
 
-from .calibration import CalibrationConfig, CalibrationSamples
-from .calibration import build_steps as calibration_steps
-from .classify import SamConfig, SffConfig, SvmConfig
-from .classify import build_steps as classify_steps
-from .config import EngineConfig, ExecutionConfig, Strict, config_hash, load_yaml, resolve, validate
-from .endmembers import EndmemberExtractionConfig
-from .endmembers import build_steps as endmember_steps
-from .features import FeaturesConfig
-from .features import build_steps as feature_steps
-from .mnf import MnfConfig, mnf_steps
-from .mosaic import MosaicConfig, build_mosaic_step, write_footprints
-from .progress import make_progress
-from .reference import GroundReferenceConfig, load_samples
-from .unmix import UnmixConfig
-from .unmix import build_steps as unmix_steps
+from swathmill.workflows.methods.calibration import CalibrationConfig, CalibrationSamples
+from swathmill.workflows.methods.calibration import build_steps as calibration_steps
+from swathmill.workflows.methods.classify import SamConfig, SffConfig, SvmConfig
+from swathmill.workflows.methods.classify import build_steps as classify_steps
+from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, Strict, config_hash, load_yaml, resolve, validate
+from swathmill.workflows.methods.endmembers import EndmemberExtractionConfig
+from swathmill.workflows.methods.endmembers import build_steps as endmember_steps
+from swathmill.workflows.methods.features import FeaturesConfig
+from swathmill.workflows.methods.features import build_steps as feature_steps
+from swathmill.workflows.methods.mnf import MnfConfig, mnf_steps
+from swathmill.workflows.methods.mosaic import MosaicConfig, build_mosaic_step, write_footprints
+from swathmill.workflows.app.progress import make_progress
+from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
+from swathmill.workflows.methods.unmix import UnmixConfig
+from swathmill.workflows.methods.unmix import build_steps as unmix_steps
 
-SPLIT_VALIDATION = 2  # split code of validation samples in workflows.reference
+SPLIT_VALIDATION = 2  # split code of validation samples in swathmill.workflows.inputs.reference
 
 __all__ = ["RunConfig", "InputError", "load_run_config", "build_steps", "run_config", "rebuild_report"]
 
@@ -227,9 +227,9 @@ def unmix_needs_transform(cfg: RunConfig) -> bool:
 
 def build_unmix_on_components(cfg: RunConfig, base: Path, run: Run) -> list[Step]:
     """The unmixing step on MNF/PCA components, its library endmembers transformed like the cube."""
-    from tiles.tasks import load_model
+    from swathmill.tiles.tasks import load_model
 
-    from .unmix import LinearTransform
+    from swathmill.workflows.methods.unmix import LinearTransform
 
     src = cfg.unmix.input.split("/")[0]
     info = next((s["info"] for s in run.ledger.steps() if s["name"] == src), None)
@@ -239,8 +239,8 @@ def build_unmix_on_components(cfg: RunConfig, base: Path, run: Run) -> list[Step
     k = len(run.known[src][2].specs[cfg.unmix.input.split("/")[1]].bands)
     cube = run.known["mosaic"][2].specs["reflectance"]
     fwhm = cube.coords.get("fwhm")
-    from .library import read_library
-    from .unmix import unmix_step
+    from swathmill.workflows.inputs.library import read_library
+    from swathmill.workflows.methods.unmix import unmix_step
 
     lib_path = Path(cfg.unmix.endmembers.library)
     lib = read_library(lib_path if lib_path.is_absolute() else base / lib_path)
@@ -369,7 +369,7 @@ def _freeze_config(run: Run, config_path: Path, cfg: RunConfig) -> None:
 
 def _after_run(run: Run, cfg: RunConfig, result: RunResult, plan: Plan | None, base: Path, progress) -> None:
     """Accuracy assessment, the STAC collection of the products, and the report."""
-    from .finish import finish_run
+    from swathmill.workflows.app.finish import finish_run
 
     finish_run(run, cfg, result, plan, base, progress)
 
@@ -399,7 +399,7 @@ def _summarize(result: RunResult | None, seconds: float, run_dir: Path, out) -> 
 
 
 def rebuild_report(run_dir: Path) -> Path:
-    from .finish import rebuild_report as _rebuild
+    from swathmill.workflows.app.finish import rebuild_report as _rebuild
     return _rebuild(Path(run_dir))
 
 

@@ -15,21 +15,21 @@ from typing import Any
 
 import numpy as np
 
-from tiles.grid import Tiling
-from tiles.ledger import Ledger
-from tiles.step import OutputSpec
-from tiles.store import TileStore, decode
-from tiles.tasks import load_model
+from swathmill.tiles.grid import Tiling
+from swathmill.tiles.ledger import Ledger
+from swathmill.tiles.step import OutputSpec
+from swathmill.tiles.store import TileStore, decode
+from swathmill.tiles.tasks import load_model
 
-from .accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy, confusion_matrix,
+from swathmill.workflows.methods.accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy, confusion_matrix,
                        regression_metrics)
-from .reference import GroundReferenceConfig, load_samples
+from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
 
 __all__ = ["finish_run", "assess_accuracy", "rebuild_report", "gather_collection", "write_endmember_tables",
            "ACCURACY_FILE"]
 
 ACCURACY_FILE = "accuracy.json"
-SPLIT_TRAIN, SPLIT_VALIDATION = 1, 2  # workflows.reference.SPLIT_CODES
+SPLIT_TRAIN, SPLIT_VALIDATION = 1, 2  # swathmill.workflows.inputs.reference.SPLIT_CODES
 AREA_FACTORS = {"m2": 1.0, "ha": 1e-4, "km2": 1e-6}
 
 
@@ -109,7 +109,7 @@ def _values_at(store: TileStore, output: str, rows: np.ndarray, cols: np.ndarray
 
 
 def _samples(view: RunView, ref_cfg: dict, grid, mosaic: TileStore):
-    from .pipeline import StoreValid
+    from swathmill.workflows.app.pipeline import StoreValid
 
     cfg = GroundReferenceConfig.model_validate(ref_cfg)
     with warnings.catch_warnings(record=True) as caught:
@@ -264,7 +264,7 @@ def gather_collection(run_dir: Path, name: str) -> Path | None:
     """Gather the STAC items of the run's products into ``products/collection.json`` (validated)."""
     import pystac
 
-    from tiles.export import stac_collection, validate_collection_offline
+    from swathmill.tiles.export import stac_collection, validate_collection_offline
 
     products = Path(run_dir) / "products"
     items = [pystac.Item.from_file(str(p)) for p in sorted(products.glob("*.tif.json"))]
@@ -301,7 +301,7 @@ def finish_run(run, cfg, result, plan, base: Path, progress) -> None:
 
 def write_endmember_tables(run_dir: Path) -> list[Path]:
     """Endmembers found in the image: a library table and a point layer per extraction step, in products/."""
-    from .endmembers import write_endmember_products
+    from swathmill.workflows.methods.endmembers import write_endmember_products
 
     view = open_run(run_dir)
     written: list[Path] = []
@@ -313,6 +313,6 @@ def write_endmember_tables(run_dir: Path) -> list[Path]:
 
 
 def rebuild_report(run_dir: Path) -> Path:
-    from .report_builder import report_from_run
+    from swathmill.workflows.app.report_builder import report_from_run
 
     return report_from_run(open_run(run_dir))

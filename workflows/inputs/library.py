@@ -34,7 +34,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .spectra import resample, uncovered_bands
+from swathmill.workflows.spectral.spectra import resample, uncovered_bands
 
 __all__ = [
     "LibraryError",
@@ -267,7 +267,7 @@ def check_coverage(lib: SpectralLibrary, target_wavelengths: np.ndarray,
                    target_fwhm: np.ndarray | None = None) -> None:
     """Raise :class:`LibraryError` if the library does not cover every target band.
 
-    Coverage follows :func:`workflows.spectra.uncovered_bands`: each band centre inside the library's
+    Coverage follows :func:`swathmill.workflows.spectral.spectra.uncovered_bands`: each band centre inside the library's
     range and, for bands with a known FWHM, a library sample within one FWHM of the centre.
     """
     tw = np.asarray(target_wavelengths, dtype=np.float64)
@@ -289,7 +289,7 @@ def resample_library(lib: SpectralLibrary, target_wavelengths: np.ndarray,
     """The library resampled to target bands.
 
     Gaussian spectral responses where ``target_fwhm`` is known and finite, linear interpolation where
-    it is None or NaN (:func:`workflows.spectra.resample`). Raises :class:`LibraryError` naming the
+    it is None or NaN (:func:`swathmill.workflows.spectral.spectra.resample`). Raises :class:`LibraryError` naming the
     file and the ranges when the library does not cover the target bands.
     """
     tw = np.asarray(target_wavelengths, dtype=np.float64)

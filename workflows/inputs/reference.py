@@ -52,7 +52,7 @@ from typing import Any, Callable, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
-from tiles.grid import Grid, Window
+from swathmill.tiles.grid import Grid, Window
 
 __all__ = [
     "GroundReferenceError",

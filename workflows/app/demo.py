@@ -1,6 +1,6 @@
 """``swathmill demo [DIR]``: write the invented demo campaign and its configuration, then run it.
 
-The scenario (an invented site, see :mod:`workflows.scenario` and ``demo/README.md``) and its YAML
+The scenario (an invented site, see :mod:`swathmill.workflows.app.scenario` and ``demo/README.md``) and its YAML
 configuration are written into DIR; the run directory is ``DIR/run``. Rerun or resume it by hand with
 ``swathmill run DIR/demo.yaml``.
 """
@@ -11,7 +11,7 @@ from pathlib import Path
 
 import yaml
 
-from .scenario import SIZES, generate_scenario
+from swathmill.workflows.app.scenario import SIZES, generate_scenario
 
 __all__ = ["demo_config", "write_demo", "run_demo"]
 
@@ -87,7 +87,7 @@ def write_demo(root: Path, size: str = "small", seed: int = 7, executor: str | N
 
 
 def run_demo(root: Path, size: str = "small", seed: int = 7, executor: str | None = None, plain: bool = False) -> int:
-    from .pipeline import run_config
+    from swathmill.workflows.app.pipeline import run_config
 
     root = Path(root)
     print(f"writing the invented demo campaign ({size}) into {root.resolve()}", flush=True)
