@@ -35,6 +35,7 @@ import numpy as np
 
 from .grid import Grid, Window
 from .step import OutputSpec, canonical_json
+from ..errors import SwathmillError
 
 __all__ = [
     "ExportError",
@@ -75,7 +76,7 @@ _CLASS_TAG = "class_names"
 _TMP_RE = r"^\.{name}\.[0-9]+-[0-9a-f]{{12}}\.part\.(tif|cog)$"
 
 
-class ExportError(ValueError):
+class ExportError(SwathmillError, ValueError):
     """A product cannot be written or described; the message names the product and what is wrong."""
 
 
@@ -219,7 +220,7 @@ def write_cog(
                     dst.scales = scales
                 if offsets is not None:
                     dst.offsets = offsets
-                dataset_tags = dict(tags)
+                dataset_tags = {**tags, "role": spec.role}
                 if categorical:
                     classes = _class_table(spec)
                     dataset_tags[_CLASS_TAG] = json.dumps(classes)
@@ -597,6 +598,7 @@ def stac_item(
     # the asset, its bands
     asset = pystac.Asset(href=f"./{cog_path.name}", media_type=pystac.MediaType.COG, roles=["data"],
                          title=item_id)
+    item.properties[STAC_PREFIX + "role"] = spec.role
     item.add_asset("data", asset)
     asset.common_metadata.created = created
     dtype = np.dtype(spec.dtype)

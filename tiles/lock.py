@@ -12,12 +12,15 @@ import socket
 import threading
 import time
 from pathlib import Path
+from ..errors import EXIT_LOCKED, SwathmillError
 
 __all__ = ["RunLock", "RunLockedError"]
 
 
-class RunLockedError(RuntimeError):
+class RunLockedError(SwathmillError, RuntimeError):
     """Another process holds the run directory."""
+
+    exit_code = EXIT_LOCKED
 
 
 def _pid_alive(pid: int) -> bool:

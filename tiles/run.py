@@ -24,9 +24,10 @@ from .executors import Executor, LocalExecutor
 from .grid import Grid, Tiling
 from .ledger import Ledger
 from .lock import RunLock
-from .step import InputMeta, OutputSpec, Step, canonical_json
+from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
 from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
+from ..errors import SwathmillError
 
 __all__ = ["Run", "RunOptions", "RunResult", "StepReport", "Progress", "PlanError", "ENGINE_VERSION", "plan_check"]
 
@@ -34,7 +35,7 @@ ENGINE_VERSION = __version__  # the package version, hashed into every step key
 log = logging.getLogger("swathmill")
 
 
-class PlanError(ValueError):
+class PlanError(SwathmillError, ValueError):
     """The plan cannot run as asked (misaligned tiles, halo too large, unknown input...)."""
 
 
@@ -290,7 +291,7 @@ class Run:
             for p in store.remove_partials():
                 log.info("removed stale partial write %s", p)
         self.ledger.set_step(step.name, key, len(tiling), {
-            "params": dict(step.params), "inputs": dict(step.inputs), "in_keys": in_keys, "model": model_hash,
+            "params": params_dump(step.params), "inputs": dict(step.inputs), "in_keys": in_keys, "model": model_hash,
             "model_path": model_path,
             "outputs": {k: v.to_dict() for k, v in outputs.items()}, "sources": dict(step.sources),
             "grid": grid.to_dict(), "tile": self.options.tile, "version": version})
@@ -345,7 +346,7 @@ class Run:
             "config_hash": self.options.config_hash or "unset",  # GDAL drops empty tags
             "step": step.name,
             "step_key": key,
-            "parameters": canonical_json(dict(step.params)),
+            "parameters": canonical_json(params_dump(step.params)),
             "inputs": canonical_json({a: {"ref": step.inputs[a], "key": k} for a, k in in_keys.items()}),
             "input_fingerprints": canonical_json({**in_keys, **dict(step.sources)}),
             "model_hash": model_hash or "none",

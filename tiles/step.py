@@ -6,6 +6,7 @@ before any tile is written.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 from dataclasses import dataclass, field
@@ -14,13 +15,14 @@ from typing import Any, Callable, Literal, Mapping, Protocol
 import numpy as np
 
 from .grid import Grid, Tile
+from ..errors import SwathmillError
 
-__all__ = ["OutputSpec", "InputMeta", "Block", "Fit", "Step", "Model", "StepError", "canonical_json"]
+__all__ = ["OutputSpec", "InputMeta", "Block", "Fit", "Step", "Model", "StepError", "canonical_json", "params_dump"]
 
 Model = dict  # str -> numpy array | JSON-able value; saved as JSON plus npz
 
 
-class StepError(ValueError):
+class StepError(SwathmillError, ValueError):
     """A step was declared or called wrongly; the message names the step and the key at fault."""
 
 
@@ -29,6 +31,9 @@ class OutputSpec:
     """One output array of a step: a (band, y, x) raster.
 
     kind: "continuous" (average overviews) or "categorical" (class map: mode overviews, colour table).
+    role: what the output is for, in the vocabulary of the code that declares the step (the engine only
+          stores it: in the store's attributes, the COG's tags and the STAC item); readers of a run
+          find outputs by role, never by name.
     class_names: for categorical outputs, names of classes 1..n (0 is "unclassified" / nodata).
     colors: optional RGB triplets (0-255) for classes 1..n.
     attrs: free attributes stored with the array (e.g. {"wavelength": [...], "scale_factor": 1e-4}).
@@ -40,6 +45,7 @@ class OutputSpec:
     dtype: str
     nodata: float | int
     kind: Literal["continuous", "categorical"] = "continuous"
+    role: str = "data"
     class_names: tuple[str, ...] | None = None
     colors: tuple[tuple[int, int, int], ...] | None = None
     coords: Mapping[str, tuple] = field(default_factory=dict)
@@ -59,6 +65,7 @@ class OutputSpec:
     def to_dict(self) -> dict:
         return {
             "bands": list(self.bands), "dtype": self.dtype, "nodata": _jsonable(self.nodata), "kind": self.kind,
+            "role": self.role,
             "class_names": list(self.class_names) if self.class_names else None,
             "colors": [list(c) for c in self.colors] if self.colors else None,
             "coords": {k: [_jsonable(x) for x in v] for k, v in self.coords.items()},
@@ -70,6 +77,7 @@ class OutputSpec:
     def from_dict(cls, d: Mapping[str, Any]) -> "OutputSpec":
         return cls(
             bands=tuple(d["bands"]), dtype=d["dtype"], nodata=d["nodata"], kind=d.get("kind", "continuous"),
+            role=d.get("role", "data"),
             class_names=tuple(d["class_names"]) if d.get("class_names") else None,
             colors=tuple(tuple(c) for c in d["colors"]) if d.get("colors") else None,
             coords={k: tuple(v) for k, v in (d.get("coords") or {}).items()},
@@ -95,7 +103,7 @@ class Block:
     valid: (rows, cols) bool, True where every input is valid.
     tile: the tile (core and padded windows in the grid's pixel coordinates).
     grid: the sub-grid of the padded window (georeferenced).
-    params: the step's parameters.
+    params: the step's parameter object (see :attr:`Step.params`).
     static: the step's static data (small arrays or JSON, e.g. sample points).
     meta: alias -> InputMeta of each input.
     decoded: whether ``data`` holds decoded values (False: stored values of a ``decode=False`` step).
@@ -105,7 +113,7 @@ class Block:
     valid: np.ndarray
     tile: Tile
     grid: Grid
-    params: Mapping[str, Any]
+    params: Any
     static: Mapping[str, Any]
     meta: dict[str, InputMeta]
     decoded: bool = True
@@ -142,7 +150,10 @@ class Step:
     """A frozen declaration of one step of a pipeline.
 
     name: unique within a run, used for its store ``stores/<name>.zarr`` and in the ledger.
-    params: JSON-able parameters (already validated); hashed into the step key.
+    params: the step's parameters as one frozen, typed object (a pydantic model, a frozen dataclass, or
+            a mapping for the engine's own generic steps); the kernel, the accumulator and the output
+            declaration receive it as it is, and the step key hashes its canonical dump
+            (:func:`params_dump`).
     inputs: alias -> "step/output" references of earlier steps' outputs.
     outputs: name -> OutputSpec, or a callable (meta, model, params) -> that mapping when the outputs
              depend on the inputs or the fitted model (e.g. the number of components).
@@ -163,7 +174,7 @@ class Step:
     kernel: Kernel
     outputs: Mapping[str, OutputSpec] | Callable[[dict[str, InputMeta], Model | None, Mapping[str, Any]], Mapping[str, OutputSpec]]
     inputs: Mapping[str, str] = field(default_factory=dict)
-    params: Mapping[str, Any] = field(default_factory=dict)
+    params: Any = field(default_factory=dict)
     halo: int = 0
     fit: Fit | None = None
     static: Mapping[str, Any] = field(default_factory=dict)
@@ -199,7 +210,7 @@ class Step:
             "name": self.name,
             "version": self.version,
             "kernel": f"{self.kernel.__module__}.{self.kernel.__qualname__}",
-            "params": _jsonable(dict(self.params)),
+            "params": params_dump(self.params),
             "inputs": dict(self.inputs),
             "halo": self.halo,
             "decode": self.decode,
@@ -208,6 +219,17 @@ class Step:
             "grid": self.grid.to_dict() if self.grid else None,
             "outputs": None if callable(self.outputs) else {k: v.to_dict() for k, v in self.outputs.items()},
         }
+
+
+def params_dump(params: Any) -> dict:
+    """The JSON-able dump of a step's parameter object: what keys, ledgers and provenance record."""
+    if hasattr(params, "model_dump"):
+        return _jsonable(params.model_dump(mode="json"))
+    if dataclasses.is_dataclass(params) and not isinstance(params, type):
+        return _jsonable(dataclasses.asdict(params))
+    if isinstance(params, Mapping):
+        return _jsonable(dict(params))
+    raise StepError(f"step parameters must be a pydantic model, a dataclass or a mapping. Got {type(params).__name__}")
 
 
 def _jsonable(v: Any) -> Any:

@@ -25,6 +25,7 @@ from zarr.codecs import ZstdCodec
 
 from .grid import Grid, Window
 from .step import OutputSpec
+from ..errors import SwathmillError
 
 __all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode",
            "index_runs", "copy_bands"]
@@ -32,7 +33,7 @@ __all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim",
 zarr.config.set({"async.concurrency": 8})
 
 
-class StoreError(ValueError):
+class StoreError(SwathmillError, ValueError):
     """A store is missing, malformed, or does not match what the plan expects."""
 
 

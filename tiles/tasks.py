@@ -17,11 +17,12 @@ import numpy as np
 from .grid import Grid, Tile, Tiling
 from .step import Block, InputMeta, OutputSpec, Step
 from .store import TileStore, decode, encode
+from ..errors import SwathmillError
 
 __all__ = ["TileTask", "run_tile", "run_accumulate", "load_model", "save_model", "TileError"]
 
 
-class TileError(RuntimeError):
+class TileError(SwathmillError, RuntimeError):
     """A tile failed; the message names the step and the tile."""
 
 

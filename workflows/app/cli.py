@@ -10,9 +10,10 @@ import json
 import sys
 from pathlib import Path
 
+from swathmill.errors import EXIT_FAILED, EXIT_INPUT, EXIT_OK, SwathmillError
+
 __all__ = ["main"]
 
-EXIT_OK, EXIT_FAILED, EXIT_INPUT, EXIT_LOCKED = 0, 1, 2, 3
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -48,10 +49,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         _parser().print_help()
         return EXIT_INPUT
-    from swathmill.tiles.lock import RunLockedError
-
-    from swathmill.workflows.app.config import ConfigError
-    from swathmill.workflows.app.pipeline import InputError, run_config
+    from swathmill.workflows.app.pipeline import run_config
     try:
         if args.command == "run":
             return run_config(args.config, executor=args.executor, workers=args.workers, address=args.address,
@@ -66,12 +64,9 @@ def main(argv: list[str] | None = None) -> int:
             path = rebuild_report(args.run_dir)
             print(f"report: {path}")
             return EXIT_OK
-    except (ConfigError, InputError) as exc:
+    except SwathmillError as exc:  # every error of ours carries its exit code (swathmill.errors)
         print(f"swathmill: error: {exc}", file=sys.stderr)
-        return EXIT_INPUT
-    except RunLockedError as exc:
-        print(f"swathmill: error: {exc}", file=sys.stderr)
-        return EXIT_LOCKED
+        return exc.exit_code
     return EXIT_INPUT
 
 

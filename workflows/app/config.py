@@ -12,12 +12,13 @@ from typing import Any, Literal, Mapping
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from swathmill.errors import SwathmillError
 
 __all__ = ["ConfigError", "ExecutionConfig", "EngineConfig", "load_config", "load_yaml", "validate", "config_hash", "resolve",
            "check_ref"]
 
 
-class ConfigError(ValueError):
+class ConfigError(SwathmillError, ValueError):
     """The configuration file is unreadable or invalid; the message names the file and the key."""
 
 

@@ -39,6 +39,7 @@ from swathmill.workflows.app.progress import make_progress
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
 from swathmill.workflows.methods.unmix import UnmixConfig
 from swathmill.workflows.methods.unmix import build_steps as unmix_steps
+from swathmill.errors import SwathmillError
 
 SPLIT_VALIDATION = 2  # split code of validation samples in swathmill.workflows.inputs.reference
 
@@ -49,7 +50,7 @@ CAUTION = ("Every product is an estimate, with the accuracy measured against the
            "any decision (drilling, spraying, water advisories).")
 
 
-class InputError(ValueError):
+class InputError(SwathmillError, ValueError):
     """Input data is missing or unusable; the message names the file, band, tile or key."""
 
 

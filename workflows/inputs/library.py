@@ -35,6 +35,7 @@ from typing import Sequence
 import numpy as np
 
 from swathmill.workflows.spectral.spectra import resample, uncovered_bands
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "LibraryError",
@@ -50,7 +51,7 @@ WAVELENGTH_HEADER = "wavelength_nm"
 _HEX = re.compile(r"^#[0-9a-fA-F]{6}$")
 
 
-class LibraryError(ValueError):
+class LibraryError(SwathmillError, ValueError):
     """A spectral library is malformed or does not fit the cube; the message names the file."""
 
 

@@ -53,6 +53,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
 from swathmill.tiles.grid import Grid, Window
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "GroundReferenceError",
@@ -73,7 +74,7 @@ _SPLIT_ALIASES = {"": "", "train": "train", "training": "train", "validation": "
                   "valid": "validation", "val": "validation"}
 
 
-class GroundReferenceError(ValueError):
+class GroundReferenceError(SwathmillError, ValueError):
     """Ground reference is unreadable or inconsistent; the message names the file and the feature."""
 
 

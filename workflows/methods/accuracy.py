@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 import numpy as np
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "AccuracyError",
@@ -51,7 +52,7 @@ Z95 = 1.96
 """The normal quantile used for 95% confidence intervals (Olofsson et al. 2014 use 1.96)."""
 
 
-class AccuracyError(ValueError):
+class AccuracyError(SwathmillError, ValueError):
     """Bad input to an accuracy computation; the message names the class, sample or window at fault."""
 
 

@@ -56,6 +56,7 @@ from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from swathmill.workflows.methods.accuracy import regression_metrics
 from swathmill.workflows.app.config import check_ref
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "CalibrationError",
@@ -73,7 +74,7 @@ _ALIAS = "predictors"
 INSIDE, OUTSIDE = 1, 2
 
 
-class CalibrationError(ValueError):
+class CalibrationError(SwathmillError, ValueError):
     """Calibration cannot be fitted or applied; the message names the step, sample or band at fault."""
 
 

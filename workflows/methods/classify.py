@@ -82,6 +82,7 @@ from swathmill.workflows.app.config import ctx_get
 from swathmill.workflows.spectral.continuum import continuum_removed, range_mask
 from swathmill.workflows.inputs.library import SpectralLibrary, hex_to_rgb, read_library, resample_library
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "ClassifyError",
@@ -111,7 +112,7 @@ __all__ = [
 ]
 
 
-class ClassifyError(ValueError):
+class ClassifyError(SwathmillError, ValueError):
     """Bad input to a classifier; the message names the class, reference, band or key at fault."""
 
 

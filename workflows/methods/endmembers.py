@@ -85,6 +85,7 @@ from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepEr
 
 from swathmill.workflows.app.config import check_ref
 from swathmill.workflows.inputs.library import SpectralLibrary, write_library
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "EXTRACTION_METHODS",
@@ -115,7 +116,7 @@ _NO_KEY = np.iinfo(np.int64).max  # sorts after every pixel
 _CHUNK = 4096
 
 
-class EndmemberError(ValueError):
+class EndmemberError(SwathmillError, ValueError):
     """Extraction cannot run as asked; the message names the parameter or input at fault."""
 
 

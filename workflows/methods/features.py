@@ -41,6 +41,7 @@ from swathmill.tiles.step import Block, OutputSpec, Step, StepError
 
 from swathmill.workflows.app.config import check_ref
 from swathmill.workflows.spectral.continuum import band_minimum, continuum_removed
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "BandDepth",
@@ -65,7 +66,7 @@ BandSpec = Union[float, tuple[float, float]]
 """One band (nearest to a wavelength, nm) or a band range ``[low, high]`` (mean of its bands)."""
 
 
-class FeatureError(ValueError):
+class FeatureError(SwathmillError, ValueError):
     """A feature cannot be measured on the given bands; the message names the feature and band."""
 
 

@@ -89,6 +89,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator, model_valida
 from swathmill.tiles.grid import Tile
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 from swathmill.tiles.store import copy_bands, index_runs
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "MnfConfig",
@@ -120,7 +121,7 @@ _DIRECTIONS = {"both": ("horizontal", "vertical"), "horizontal": ("horizontal",)
 _CHUNK_VALUES = 2_000_000  # float64 values per working chunk (16 MB) in accumulate and the kernels
 
 
-class MnfError(ValueError):
+class MnfError(SwathmillError, ValueError):
     """The MNF/PCA fit or transform cannot proceed; the message names the band, tile or key at fault."""
 
 

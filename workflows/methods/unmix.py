@@ -92,6 +92,7 @@ from swathmill.workflows.app.config import check_ref, ctx_get
 from swathmill.workflows.methods import endmembers as _em
 from swathmill.workflows.inputs.library import SpectralLibrary, read_library, resample_library
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "METHODS",
@@ -125,7 +126,7 @@ _TABLE_MAX_P = 12  # precompute the affine maps of all supports up to this many 
 _ENUMERATE_MAX_P = 12  # per-pixel exact enumeration in the fall-back up to this many endmembers
 
 
-class UnmixError(ValueError):
+class UnmixError(SwathmillError, ValueError):
     """Endmembers or data unfit for unmixing; the message names what is at fault."""
 
 

@@ -21,6 +21,7 @@ from __future__ import annotations
 from typing import Literal
 
 import numpy as np
+from swathmill.errors import SwathmillError
 
 __all__ = [
     "SpectralCoverageError",
@@ -36,7 +37,7 @@ FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))  # 2.3548...; a property of th
 TRUNCATE_SIGMA = 4.0  # response taken as zero beyond 4 sigma (weight < 3.4e-4 of the peak)
 
 
-class SpectralCoverageError(ValueError):
+class SpectralCoverageError(SwathmillError, ValueError):
     """Target bands lie outside (or in a gap of) the source wavelengths."""
 
 

@@ -1,0 +1,25 @@
+"""The one base of every configuration section and step parameter set, and its shared checks.
+
+A step's section of the run configuration is its parameter set: a frozen pydantic model with unknown
+keys forbidden. The step factory passes that object as it is to :class:`swathmill.tiles.step.Step`
+(``params=``); the kernel, the accumulator and the output declaration read typed attributes from it, and
+the step key hashes its canonical JSON dump. Defaults and bounds live only on the model's fields.
+"""
+from __future__ import annotations
+
+from pydantic import BaseModel, ConfigDict
+
+__all__ = ["Section", "check_ref"]
+
+
+class Section(BaseModel):
+    """Base of every configuration section: frozen (hashable into keys), unknown keys refused."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+def check_ref(ref: str | None, key: str = "input") -> str | None:
+    """A config value naming a step's output, ``"step/output"`` (None passes); ValueError otherwise."""
+    if ref is not None and ref.count("/") != 1:
+        raise ValueError(f"{key} must be 'step/output'. Got {ref!r}")
+    return ref
