@@ -96,6 +96,7 @@ def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, Outpu
     if spec.kind != "categorical":
         raise StepError(f"modal filter needs a class map; input {meta['input'].ref!r} is {spec.kind}")
     return {"output": OutputSpec(bands=spec.bands[:1], dtype=spec.dtype, nodata=spec.nodata, kind="categorical",
+                                 role=spec.role,
                                  class_names=spec.class_names, colors=spec.colors)}
 
 
@@ -115,7 +116,8 @@ class _MeanOutputs:
 
     def __call__(self, meta, model, params):
         s = meta["input"].spec
-        return {"output": OutputSpec(bands=s.bands, dtype="float32", nodata=float("nan"), coords=s.coords)}
+        return {"output": OutputSpec(bands=s.bands, dtype="float32", nodata=float("nan"), coords=s.coords,
+                                     role=s.role)}
 
 
 def modal_filter_step(name: str, input_ref: str, size: int = 3, n_classes: int | None = None) -> Step:

@@ -233,6 +233,8 @@ def params_dump(params: Any) -> dict:
 
 
 def _jsonable(v: Any) -> Any:
+    if hasattr(v, "model_dump") and not isinstance(v, type):  # a typed parameter object nested in another
+        return _jsonable(v.model_dump(mode="json"))
     if isinstance(v, Mapping):
         return {str(k): _jsonable(x) for k, x in v.items()}
     if isinstance(v, (list, tuple)):

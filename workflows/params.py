@@ -7,9 +7,11 @@ the step key hashes its canonical JSON dump. Defaults and bounds live only on th
 """
 from __future__ import annotations
 
+from typing import Any, Mapping
+
 from pydantic import BaseModel, ConfigDict
 
-__all__ = ["Section", "check_ref"]
+__all__ = ["Section", "check_ref", "ctx_get"]
 
 
 class Section(BaseModel):
@@ -23,3 +25,12 @@ def check_ref(ref: str | None, key: str = "input") -> str | None:
     if ref is not None and ref.count("/") != 1:
         raise ValueError(f"{key} must be 'step/output'. Got {ref!r}")
     return ref
+
+
+def ctx_get(ctx: Any, key: str, default: Any = None) -> Any:
+    """A value of a step factory's context (a mapping or an object: grid, base_dir, valid)."""
+    if ctx is None:
+        return default
+    if isinstance(ctx, Mapping):
+        return ctx.get(key, default)
+    return getattr(ctx, key, default)

@@ -11,6 +11,8 @@ from pathlib import Path
 from typing import Any, Literal, Mapping
 
 import yaml
+
+from swathmill.workflows.params import check_ref, ctx_get  # re-exported for older imports
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 from swathmill.errors import SwathmillError
 
@@ -127,22 +129,6 @@ def validate(model: type[BaseModel], data: dict, path: Path, context: dict | Non
     except ValidationError as exc:
         lines = [_format_error(e, data, model) for e in exc.errors()]
         raise ConfigError(f"{path}: invalid configuration\n  " + "\n  ".join(lines)) from None
-
-
-def check_ref(ref: str | None, key: str = "input") -> str | None:
-    """A config value naming a step's output, ``"step/output"`` (None passes); ValueError otherwise."""
-    if ref is not None and ref.count("/") != 1:
-        raise ValueError(f"{key} must be 'step/output'. Got {ref!r}")
-    return ref
-
-
-def ctx_get(ctx: Any, key: str, default: Any = None) -> Any:
-    """A value of a step factory's context (a mapping or an object: grid, base_dir, valid)."""
-    if ctx is None:
-        return default
-    if isinstance(ctx, Mapping):
-        return ctx.get(key, default)
-    return getattr(ctx, key, default)
 
 
 def config_hash(data: dict) -> str:

@@ -52,10 +52,11 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from swathmill.tiles.samples import in_core
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from swathmill.workflows.methods.accuracy import regression_metrics
-from swathmill.workflows.app.config import check_ref
+from swathmill.workflows.params import check_ref
 from swathmill.errors import SwathmillError
 
 __all__ = [
@@ -488,10 +489,10 @@ def _outputs(meta: dict[str, InputMeta], model: Mapping[str, Any] | None, params
         attrs["predictors"] = list(model["predictors"])
         attrs["n_components"] = model["n_components"]
     return {
-        "quantity": OutputSpec(bands=(q,), dtype="float32", nodata=float("nan"), attrs=attrs),
-        "uncertainty": OutputSpec(bands=(f"{q}_sigma",), dtype="float32", nodata=float("nan"),
+        "quantity": OutputSpec(bands=(q,), dtype="float32", nodata=float("nan"), attrs=attrs, role=Role.QUANTITY),
+        "uncertainty": OutputSpec(bands=(f"{q}_sigma",), dtype="float32", nodata=float("nan"), role=Role.UNCERTAINTY,
                                   attrs={"units": units, "meaning": "1-sigma prediction error from CV residuals"}),
-        "out_of_range": OutputSpec(bands=(f"{q}_range",), dtype="uint8", nodata=0, kind="categorical",
+        "out_of_range": OutputSpec(bands=(f"{q}_range",), dtype="uint8", nodata=0, kind="categorical", role=Role.MASK,
                                    class_names=("within calibration range", "outside calibration range"),
                                    colors=((200, 200, 200), (215, 48, 39))),
     }

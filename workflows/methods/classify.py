@@ -75,10 +75,11 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from swathmill.tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 from swathmill.tiles.store import copy_bands, index_runs
 
-from swathmill.workflows.app.config import ctx_get
+from swathmill.workflows.params import ctx_get
 from swathmill.workflows.spectral.continuum import continuum_removed, range_mask
 from swathmill.workflows.inputs.library import SpectralLibrary, hex_to_rgb, read_library, resample_library
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
@@ -527,7 +528,7 @@ def _blank(m: int, shape: tuple[int, int], fill, dtype) -> np.ndarray:
 
 
 def _class_spec(names: Sequence[str], colors) -> OutputSpec:
-    return OutputSpec(bands=("class",), dtype="uint8", nodata=0, kind="categorical",
+    return OutputSpec(bands=("class",), dtype="uint8", nodata=0, kind="categorical", role=Role.CLASS_MAP,
                       class_names=tuple(names),
                       colors=tuple(tuple(int(v) for v in c) for c in colors) if colors else class_palette(len(names)),
                       attrs={"unclassified": 0})
@@ -696,7 +697,7 @@ def _sam_kernel(block: Block, model: dict) -> dict:
 
 def _sam_outputs(meta, model, params) -> dict[str, OutputSpec]:
     return {"classes": _class_spec(params["class_names"], params["colors"]),
-            "angle": OutputSpec(bands=_band_names(params["names"]), dtype="float32", nodata=float("nan"),
+            "angle": OutputSpec(bands=_band_names(params["names"]), dtype="float32", nodata=float("nan"), role=Role.SCORE,
                                 attrs={"units": "radian", "quantity": "spectral angle"})}
 
 
@@ -732,11 +733,11 @@ def _sff_outputs(meta, model, params) -> dict[str, OutputSpec]:
     names = _band_names(params["names"])
     rng = f"{params['range'][0]:g}-{params['range'][1]:g} nm"
     return {"classes": _class_spec(params["class_names"], params["colors"]),
-            "scale": OutputSpec(bands=names, dtype="float32", nodata=float("nan"),
+            "scale": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.SCORE,
                                 attrs={"quantity": "feature depth scale", "range": rng}),
-            "rmse": OutputSpec(bands=names, dtype="float32", nodata=float("nan"),
+            "rmse": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
                                attrs={"quantity": "feature fit RMSE (depth units)", "range": rng}),
-            "score": OutputSpec(bands=names, dtype="float32", nodata=float("nan"),
+            "score": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.SCORE,
                                 attrs={"quantity": "scale / max(RMSE, rmse_floor)", "range": rng})}
 
 
@@ -786,7 +787,7 @@ def _svm_kernel(block: Block, model: dict) -> dict:
 def _svm_outputs(meta, model, params) -> dict[str, OutputSpec]:
     out = {"classes": _class_spec(params["class_names"], params["colors"])}
     if params["probability"]:
-        out["probability"] = OutputSpec(bands=_band_names(params["class_names"]), dtype="float32",
+        out["probability"] = OutputSpec(bands=_band_names(params["class_names"]), dtype="float32", role=Role.SCORE,
                                         nodata=float("nan"), attrs={"quantity": "class probability (Platt)"})
     return out
 

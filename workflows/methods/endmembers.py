@@ -81,9 +81,10 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from swathmill.workflows.app.config import check_ref
+from swathmill.workflows.params import check_ref
 from swathmill.workflows.inputs.library import SpectralLibrary, write_library
 from swathmill.errors import SwathmillError
 
@@ -648,6 +649,7 @@ def _locations_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] |
     if model is None:
         raise StepError(f"step {params.get('step')!r}: its outputs depend on the fitted endmembers")
     return {"locations": OutputSpec(bands=("endmember",), dtype="uint8", nodata=0, kind="categorical",
+                                    role=Role.DIAGNOSTIC,
                                     class_names=tuple(model["names"]),
                                     attrs={"method": model["method"],
                                            "long_name": "pixels chosen as endmembers (class i = endmember i)"})}

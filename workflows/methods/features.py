@@ -37,9 +37,10 @@ from typing import Annotated, Any, Literal, Mapping, Sequence, Union
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, field_validator, model_validator
 
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, OutputSpec, Step, StepError
 
-from swathmill.workflows.app.config import check_ref
+from swathmill.workflows.params import check_ref
 from swathmill.workflows.spectral.continuum import band_minimum, continuum_removed
 from swathmill.errors import SwathmillError
 
@@ -399,6 +400,7 @@ def build_steps(section: FeaturesConfig | Mapping[str, Any], ctx: Any = None) ->
     cfg = section if isinstance(section, FeaturesConfig) else FeaturesConfig.model_validate(section)
     feats = list(cfg.features)
     spec = OutputSpec(
+        role=Role.FEATURE,
         bands=tuple(f.name for f in feats), dtype="float32", nodata=float("nan"),
         attrs={"units": [feature_units(f) for f in feats], "kinds": [f.kind for f in feats]},
     )

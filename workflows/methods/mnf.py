@@ -87,6 +87,7 @@ import scipy.linalg
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from swathmill.tiles.grid import Tile
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 from swathmill.tiles.store import copy_bands, index_runs
 from swathmill.errors import SwathmillError
@@ -874,6 +875,7 @@ def _component_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] |
     prefix = str(model["method"])
     lam = np.asarray(model["eigenvalues"], dtype=np.float64)[:k]
     return {COMPONENTS: OutputSpec(
+        role=Role.COMPONENTS,
         bands=tuple(f"{prefix}_{i + 1}" for i in range(k)),
         dtype="float32",
         nodata=float("nan"),
@@ -889,6 +891,7 @@ def _denoised_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | 
         raise StepError(f"the denoising step needs its input {CUBE!r}")
     spec = meta[CUBE].spec
     return {"reflectance": OutputSpec(
+        role=Role.REFLECTANCE,
         bands=tuple(spec.bands), dtype="float32", nodata=float("nan"),
         coords={k: tuple(v) for k, v in spec.coords.items()},
         attrs={"long_name": f"reflectance rebuilt from {params['denoise_components']} "

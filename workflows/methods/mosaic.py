@@ -31,6 +31,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from swathmill.tiles.grid import Grid, Tile
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, OutputSpec, Step
 
 from swathmill.workflows.inputs.ingest import (
@@ -315,6 +316,7 @@ def mosaic_outputs(plan: MosaicPlan) -> dict[str, OutputSpec]:
     cfg = plan.config
     n = len(plan.lines)
     refl = OutputSpec(
+        role=Role.REFLECTANCE,
         bands=plan.band_names, dtype="int16", nodata=cfg.output_nodata,
         coords={"wavelength": tuple(float(v) for v in plan.wavelength),
                 "fwhm": tuple(float(v) for v in plan.fwhm)},
@@ -322,6 +324,7 @@ def mosaic_outputs(plan: MosaicPlan) -> dict[str, OutputSpec]:
                "long_name": "surface reflectance", "wavelength_units": "nm"},
     )
     source = OutputSpec(
+        role=Role.SOURCE,
         bands=("source",), dtype="uint8" if n <= 255 else "uint16", nodata=0, kind="categorical",
         class_names=tuple(ln.name for ln in plan.lines),
         attrs={"long_name": "flight line each pixel came from (0 = none)", "policy": cfg.overlap},

@@ -86,9 +86,10 @@ import scipy.optimize
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from swathmill.tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
+from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from swathmill.workflows.app.config import check_ref, ctx_get
+from swathmill.workflows.params import check_ref, ctx_get
 from swathmill.workflows.methods import endmembers as _em
 from swathmill.workflows.inputs.library import SpectralLibrary, read_library, resample_library
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
@@ -1100,13 +1101,13 @@ def _unmix_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | Non
     names = tuple(str(n) for n in model["names"])
     attrs = {"method": params["method"], "endmember_source": model["source"],
              "condition_number": float(model["condition_number"])}
-    out = {"abundance": OutputSpec(bands=names, dtype="float32", nodata=float("nan"),
+    out = {"abundance": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.ABUNDANCE,
                                    attrs={**attrs, "quantity": "abundance (fraction of the pixel)"}),
-           "rmse": OutputSpec(bands=("rmse",), dtype="float32", nodata=float("nan"),
+           "rmse": OutputSpec(bands=("rmse",), dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
                               attrs={**attrs, "quantity": "root mean square residual over the bands",
                                      "units": "units of the input"})}
     if params["method"] == "unconstrained":
-        out["sum"] = OutputSpec(bands=("sum",), dtype="float32", nodata=float("nan"),
+        out["sum"] = OutputSpec(bands=("sum",), dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
                                 attrs={**attrs, "quantity": "sum of the abundances"})
     return out
 
