@@ -16,7 +16,7 @@ from swathmill.tiles.executors import LocalExecutor
 from swathmill.tiles.ledger import Ledger
 from swathmill.tiles.ops import band_transform_step, mean_filter_step, modal_filter_step
 from swathmill.tiles.run import PlanError, Run, RunOptions, run_status
-from swathmill.tiles.step import OutputSpec, canonical_json
+from swathmill.tiles.step import OutputSpec, canonical_json, params_dump
 from swathmill.tiles.store import StoreError, open_store
 from swathmill.tiles.testing import default_grid, read_output, run_on_arrays, write_source_store
 
@@ -206,7 +206,7 @@ def test_every_product_is_a_valid_cog_with_a_valid_stac_item_and_provenance(tmp_
             assert tags.get(k), f"{path.name}: provenance tag {k!r} missing"
         assert tags["config_hash"] == es.CONFIG_HASH
         assert tags["step_key"] == reports[name].key
-        assert json.loads(tags["parameters"]) == json.loads(canonical_json(dict(steps[name].params)))
+        assert json.loads(tags["parameters"]) == json.loads(canonical_json(params_dump(steps[name].params)))
         fingerprints = json.loads(tags["input_fingerprints"])
         for alias, ref in steps[name].inputs.items():
             upstream = ref.split("/")[0]

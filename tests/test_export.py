@@ -20,20 +20,17 @@ from rasterio.warp import transform_bounds
 from rio_cogeo.cogeo import cog_validate
 from scipy import stats
 
-from swathmill.tiles.export import (
+from swathmill.tiles.cog import ExportError, overview_factors, provenance_tags, write_cog
+from swathmill.tiles.palette import default_class_colors
+from swathmill.tiles.stac import (
     CLASS_URI,
     PROC_URI,
     PROJ_URI,
     RASTER_URI,
-    ExportError,
-    default_class_colors,
     item_path,
-    overview_factors,
-    provenance_tags,
     stac_collection,
     stac_item,
     validate_item_offline,
-    write_cog,
 )
 from swathmill.tiles.grid import Grid, Window
 from swathmill.tiles.step import OutputSpec
@@ -333,7 +330,7 @@ MEMORY_SCRIPT = textwrap.dedent("""
     import numpy as np
     import psutil
     from affine import Affine
-    from swathmill.tiles.export import write_cog
+    from swathmill.tiles.cog import write_cog
     from swathmill.tiles.grid import Grid
     from swathmill.tiles.step import OutputSpec
 

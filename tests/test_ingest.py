@@ -297,5 +297,5 @@ def test_bad_bands_are_dropped_from_the_cube(tmp_path, rng):
     p = write_line(tmp_path / "a.tif", cube(rng), Affine(5, 0, 500000, 0, -5, 4000000), wavelengths=wl)
     plan = plan_mosaic(_cfg([p], bad_bands=[(1340, 1460), (1790, 1960)]))
     assert np.allclose(plan.wavelength, [1200, 1520, 1680, 2000])
-    assert plan.line_params[0]["bands"] == [1, 3, 4, 6]
+    assert plan.line_params[0].bands == (1, 3, 4, 6)
     assert plan.band_names == ("b001", "b002", "b003", "b004")

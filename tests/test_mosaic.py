@@ -180,12 +180,12 @@ def test_tiled_mosaic_equals_whole_line_rasterio_warp(tmp_path, rng, resampling)
             dst = np.full((nb, grid.rows, grid.cols), np.nan, np.float32)
             # bilinear widens its kernel when downsampling, by a scale GDAL would otherwise guess per
             # chunk from the window's shape; both sides fix it at the resolution ratio (about 5 m / 6 m)
-            lp = step.params["lines"][k]
+            lp = step.params.lines[k]
             # (UTM 13 N stretches this spot, one zone west of its meridian, by about 0.4 %; from memory)
-            assert lp["xscale"] == pytest.approx(5 / 6, rel=1e-2) and lp["yscale"] == pytest.approx(5 / 6, rel=1e-2)
+            assert lp.xscale == pytest.approx(5 / 6, rel=1e-2) and lp.yscale == pytest.approx(5 / 6, rel=1e-2)
             reproject(src, dst, src_transform=ds.transform, src_crs=ds.crs, dst_transform=grid.transform,
                       dst_crs=grid.crs, src_nodata=np.nan, dst_nodata=np.nan, tolerance=0.0,
-                      XSCALE=lp["xscale"], YSCALE=lp["yscale"],
+                      XSCALE=lp.xscale, YSCALE=lp.yscale,
                       resampling=Resampling.nearest if resampling == "nearest" else Resampling.bilinear)
         warped.append(dst)
     ok1 = np.all(np.isfinite(warped[0]), axis=0)
@@ -217,11 +217,11 @@ def test_lines_on_the_grid_lattice_equal_gdal_warp(tmp_path, rng):
         paths.append(write_line(tmp_path / f"g{k}.tif", data, T0 @ Affine.translation(c0, r0), wl))
     step = build_mosaic_step(MosaicConfig(lines=[str(p) for p in paths], brightness_matching=False))
     grid = step.grid
-    for line in step.params["lines"]:
+    for line in step.params.lines:
         assert _aligned_shift(line, grid) is not None  # the window-copy path is the one under test
-        with rasterio.open(line["path"]) as ds:
+        with rasterio.open(line.path) as ds:
             whole = np.full((nb, grid.rows, grid.cols), -9999, np.int16)
-            reproject(rasterio.band(ds, line["bands"]), whole, dst_transform=grid.transform, dst_crs=grid.crs,
+            reproject(rasterio.band(ds, list(line.bands)), whole, dst_transform=grid.transform, dst_crs=grid.crs,
                       src_nodata=-9999, dst_nodata=-9999, resampling=Resampling.nearest, tolerance=0.0)
         expected = np.where(whole == -9999, np.nan, whole.astype(np.float32) * np.float32(1e-4))
         from swathmill.tiles.grid import Tiling

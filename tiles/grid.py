@@ -30,6 +30,13 @@ class Window:
     def shape(self) -> tuple[int, int]:
         return self.rows, self.cols
 
+    def contains(self, rows, cols):
+        """Whether pixels ``(rows, cols)`` (numbers or arrays that broadcast) lie in this window."""
+        import numpy as np
+
+        rows, cols = np.asarray(rows), np.asarray(cols)
+        return (rows >= self.row) & (rows < self.row + self.rows) & (cols >= self.col) & (cols < self.col + self.cols)
+
     def pad(self, halo: int, rows: int, cols: int) -> "Window":
         """This window grown by ``halo`` pixels on every side, clamped to a ``rows`` x ``cols`` grid."""
         r0, c0 = max(self.row - halo, 0), max(self.col - halo, 0)

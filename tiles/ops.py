@@ -5,12 +5,65 @@ filter cleans class maps, the band transform selects or rescales bands.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy import ndimage
 
 from .step import Block, InputMeta, OutputSpec, Step, StepError
 
-__all__ = ["band_transform_step", "mean_filter_step", "modal_filter_step", "modal_filter", "mean_filter"]
+__all__ = ["BandTransformParams", "FilterParams", "ModalFilterParams", "band_transform_step", "mean_filter_step",
+           "modal_filter_step", "modal_filter", "mean_filter"]
+
+
+# parameter sets ------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class BandTransformParams:
+    """Parameters of :func:`band_transform_step`: ``out = in[bands] * scale + offset``.
+
+    ``bands`` names the input bands kept, in order (None keeps all); ``dtype`` is the output's dtype.
+    """
+
+    scale: float = 1.0
+    offset: float = 0.0
+    bands: tuple[str, ...] | None = None
+    dtype: str = "float32"
+
+    def __post_init__(self) -> None:
+        if self.bands is not None:
+            object.__setattr__(self, "bands", tuple(self.bands))
+        try:
+            np.dtype(self.dtype)
+        except TypeError as e:
+            raise StepError(f"band_transform: dtype must be a numpy dtype name. Got {self.dtype!r}") from e
+
+
+@dataclass(frozen=True)
+class FilterParams:
+    """Parameters of the k x k mean filter: ``size`` is the odd side of the window in pixels (>= 1)."""
+
+    size: int = 3
+
+    def __post_init__(self) -> None:
+        if isinstance(self.size, bool) or int(self.size) != self.size or self.size < 1 or self.size % 2 == 0:
+            raise StepError(f"filter size must be an odd number of pixels >= 1. Got {self.size}")
+        object.__setattr__(self, "size", int(self.size))
+
+
+@dataclass(frozen=True)
+class ModalFilterParams(FilterParams):
+    """Parameters of the k x k modal filter: ``size`` as for :class:`FilterParams`, and ``n_classes``,
+    the largest class value of the map (0 is nodata and never votes)."""
+
+    n_classes: int | None = None
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        if self.n_classes is None:
+            raise StepError("modal_filter_step needs n_classes (the largest class value)")
+        if int(self.n_classes) < 1:
+            raise StepError(f"modal filter: n_classes must be >= 1. Got {self.n_classes}")
+        object.__setattr__(self, "n_classes", int(self.n_classes))
 
 
 # band transform ------------------------------------------------------------------------------------
@@ -19,13 +72,13 @@ def _band_transform_kernel(block: Block, model) -> dict:
     idx = block.static.get("bands")
     if idx is not None:
         x = x[np.asarray(idx)]
-    return {"output": x * np.float32(block.params["scale"]) + np.float32(block.params["offset"])}
+    return {"output": x * np.float32(block.params.scale) + np.float32(block.params.offset)}
 
 
-def _band_transform_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, OutputSpec]:
+def _band_transform_outputs(meta: dict[str, InputMeta], model, params: BandTransformParams) -> dict[str, OutputSpec]:
     spec = meta["input"].spec
     bands = list(spec.bands)
-    sel = params.get("bands")
+    sel = params.bands
     if sel is not None:
         missing = [b for b in sel if b not in bands]
         if missing:
@@ -34,9 +87,8 @@ def _band_transform_outputs(meta: dict[str, InputMeta], model, params) -> dict[s
     else:
         idx = list(range(len(bands)))
     coords = {k: tuple(v[i] for i in idx) for k, v in spec.coords.items()}
-    return {"output": OutputSpec(bands=tuple(bands[i] for i in idx), dtype=params.get("dtype", "float32"),
-                                 nodata=params.get("nodata", np.nan) if params.get("dtype", "float32").startswith("float")
-                                 else params.get("nodata", 0), coords=coords)}
+    return {"output": OutputSpec(bands=tuple(bands[i] for i in idx), dtype=params.dtype,
+                                 nodata=np.nan if params.dtype.startswith("float") else 0, coords=coords)}
 
 
 def band_transform_step(name: str, input_ref: str, *, scale: float = 1.0, offset: float = 0.0,
@@ -45,7 +97,8 @@ def band_transform_step(name: str, input_ref: str, *, scale: float = 1.0, offset
     """out = in[bands] * scale + offset, per pixel. ``band_index`` must match ``bands`` in the input."""
     return Step(name=name, kernel=_band_transform_kernel, outputs=_band_transform_outputs,
                 inputs={"input": input_ref},
-                params={"scale": scale, "offset": offset, "bands": bands, "dtype": dtype},
+                params=BandTransformParams(scale=scale, offset=offset,
+                                           bands=tuple(bands) if bands is not None else None, dtype=dtype),
                 static={"bands": band_index} if band_index is not None else {})
 
 
@@ -63,7 +116,7 @@ def mean_filter(x: np.ndarray, valid: np.ndarray, size: int) -> np.ndarray:
 
 
 def _mean_kernel(block: Block, model) -> dict:
-    return {"output": mean_filter(block.data["input"], block.valid, block.params["size"])}
+    return {"output": mean_filter(block.data["input"], block.valid, block.params.size)}
 
 
 def modal_filter(classes: np.ndarray, size: int, n_classes: int, ignore: int = 0) -> np.ndarray:
@@ -88,7 +141,7 @@ def _modal_kernel(block: Block, model) -> dict:
     x = block.data["input"]
     c = np.where(np.isfinite(x[0]) & block.valid, x[0], 0).astype(np.int32) if x.dtype.kind == "f" \
         else np.where(block.valid, x[0], 0).astype(np.int32)
-    return {"output": modal_filter(c, block.params["size"], block.params["n_classes"])[None]}
+    return {"output": modal_filter(c, block.params.size, block.params.n_classes)[None]}
 
 
 def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, OutputSpec]:
@@ -100,15 +153,11 @@ def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, Outpu
                                  class_names=spec.class_names, colors=spec.colors)}
 
 
-def _check_size(size: int) -> None:
-    if size < 1 or size % 2 == 0:
-        raise StepError(f"filter size must be an odd number of pixels >= 1. Got {size}")
-
-
 def mean_filter_step(name: str, input_ref: str, size: int = 3) -> Step:
-    _check_size(size)
+    """k x k mean over valid pixels, with a halo of size // 2 so tile borders leave no seam."""
+    params = FilterParams(size=size)
     return Step(name=name, kernel=_mean_kernel, outputs=_MeanOutputs(), inputs={"input": input_ref},
-                params={"size": size}, halo=size // 2)
+                params=params, halo=params.size // 2)
 
 
 class _MeanOutputs:
@@ -122,8 +171,6 @@ class _MeanOutputs:
 
 def modal_filter_step(name: str, input_ref: str, size: int = 3, n_classes: int | None = None) -> Step:
     """Majority filter of a class map, with a halo of size // 2 so tile borders leave no seam."""
-    _check_size(size)
-    if n_classes is None:
-        raise StepError("modal_filter_step needs n_classes (the largest class value)")
+    params = ModalFilterParams(size=size, n_classes=n_classes)
     return Step(name=name, kernel=_modal_kernel, outputs=_modal_outputs, inputs={"input": input_ref},
-                params={"size": size, "n_classes": int(n_classes)}, halo=size // 2, decode=False)
+                params=params, halo=params.size // 2, decode=False)

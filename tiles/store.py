@@ -28,7 +28,7 @@ from .step import OutputSpec
 from ..errors import SwathmillError
 
 __all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode",
-           "index_runs", "copy_bands"]
+           "index_runs", "copy_bands", "scale_offset"]
 
 zarr.config.set({"async.concurrency": 8})
 
@@ -152,13 +152,22 @@ def copy_bands(flat: np.ndarray, runs: list[slice], cols: slice, out: np.ndarray
     return hit
 
 
+def scale_offset(spec: OutputSpec) -> tuple[float | None, float | None]:
+    """The CF ``scale_factor`` and ``add_offset`` of an output: physical = stored * scale + offset.
+
+    None where the attribute is absent; an ``add_offset`` of zero is None too (nothing to add).
+    """
+    scale = spec.attrs.get("scale_factor")
+    offset = spec.attrs.get("add_offset")
+    return (None if scale is None else float(scale)), (float(offset) if offset else None)
+
+
 def decode(raw: np.ndarray, spec: OutputSpec) -> np.ndarray:
     """Stored values to float32 physical values (CF scale_factor/add_offset), NaN at nodata."""
     out = raw.astype(np.float32)
     if spec.nodata is not None and not (isinstance(spec.nodata, float) and np.isnan(spec.nodata)):
         out[raw == np.asarray(spec.nodata, dtype=raw.dtype)] = np.nan
-    scale = spec.attrs.get("scale_factor")
-    offset = spec.attrs.get("add_offset")
+    scale, offset = scale_offset(spec)
     if scale is not None:
         out *= np.float32(scale)
     if offset:
@@ -175,8 +184,7 @@ def encode(values: np.ndarray, spec: OutputSpec, valid: np.ndarray, physical: bo
     """
     dt = np.dtype(spec.dtype)
     v = np.asarray(values)
-    scale = spec.attrs.get("scale_factor") if physical else None
-    offset = spec.attrs.get("add_offset") if physical else None
+    scale, offset = scale_offset(spec) if physical else (None, None)
     nodata = np.asarray(spec.nodata).astype(dt)
     invalid = ~np.asarray(valid, dtype=bool)
     any_invalid = bool(invalid.any())

@@ -98,7 +98,7 @@ class PeakMemory:
         self._sample()
 
 
-def baseline(step, lines: list[dict]) -> tuple[float, list[float], float]:
+def baseline(step, lines) -> tuple[float, list[float], float]:
     """Each line warped whole onto the step's grid with rasterio (nearest, exact transformer)."""
     import rasterio
     from rasterio.enums import Resampling
@@ -109,9 +109,9 @@ def baseline(step, lines: list[dict]) -> tuple[float, list[float], float]:
     cpu0 = time.process_time()
     for ln in lines:
         t0 = time.perf_counter()
-        with rasterio.open(ln["path"]) as ds:
-            dst = np.empty((len(ln["bands"]), grid.rows, grid.cols), dtype=ds.dtypes[0])
-            reproject(rasterio.band(ds, ln["bands"]), dst, src_nodata=ln["nodata"], dst_nodata=ln["nodata"],
+        with rasterio.open(ln.path) as ds:
+            dst = np.empty((len(ln.bands), grid.rows, grid.cols), dtype=ds.dtypes[0])
+            reproject(rasterio.band(ds, list(ln.bands)), dst, src_nodata=ln.nodata, dst_nodata=ln.nodata,
                       dst_transform=grid.transform, dst_crs=grid.crs, resampling=Resampling.nearest,
                       tolerance=0.0, num_threads=1)
         del dst
@@ -173,7 +173,7 @@ def main(argv: list[str] | None = None) -> int:
     base_best, mos_best = float("inf"), {False: float("inf"), True: float("inf")}
     base_cpu_best, mos_cpu_best = float("inf"), {False: float("inf"), True: float("inf")}
     for rep in range(args.repeat):
-        base_total, base_each, base_cpu = baseline(full, full.params["lines"])
+        base_total, base_each, base_cpu = baseline(full, full.params.lines)
         base_best, base_cpu_best = min(base_best, base_total), min(base_cpu_best, base_cpu)
         print(f"[{rep + 1}] baseline, plain whole-line warps: {base_total:.1f} s, {base_cpu:.1f} CPU s "
               f"({', '.join(f'{t:.1f}' for t in base_each)})")

@@ -41,6 +41,7 @@ from swathmill.tiles.step import StepError
 __all__ = [
     "IngestError",
     "LineInfo",
+    "LineParams",
     "to_nanometres",
     "read_wavelength_table",
     "band_metadata_wavelengths",
@@ -64,6 +65,39 @@ _UNIT_KEYS = ("wavelength_units", "wavelength_unit", "wavelength_units_name")
 _DESC_UNIT_RE = re.compile(
     r"([0-9]+(?:\.[0-9]*)?)\s*(nm|nanometers?|nanometres?|um|µm|micrometers?|micrometres?|microns?)\b", re.IGNORECASE)
 _DESC_NUMBER_RE = re.compile(r"^\s*([0-9]+(?:\.[0-9]*)?)\s*$")
+
+
+@dataclass(frozen=True)
+class LineParams:
+    """How the mosaic step reads one flight line (part of its parameters, worked out by its plan).
+
+    ``bands`` are the 1-based band indexes read, ``scale`` and ``offset`` decode each of them,
+    ``xscale`` and ``yscale`` are the warper's fixed resampling scale (target pixels per source pixel),
+    ``bbox_px`` is ``(col0, row0, col1, row1)``: the grid pixels the line's footprint can touch.
+    """
+
+    number: int
+    name: str
+    path: str
+    crs: str
+    same_crs: bool
+    transform: tuple[float, ...]
+    width: int
+    height: int
+    nodata: float | None
+    bands: tuple[int, ...]
+    scale: tuple[float, ...]
+    offset: tuple[float, ...]
+    xscale: float
+    yscale: float
+    bbox_px: tuple[int, int, int, int]
+
+    def __post_init__(self) -> None:
+        for k in ("transform", "bands", "scale", "offset", "bbox_px"):
+            object.__setattr__(self, k, tuple(getattr(self, k)))
+        if len(self.scale) != len(self.bands) or len(self.offset) != len(self.bands):
+            raise IngestError(f"flight line {self.name!r}: {len(self.bands)} bands but {len(self.scale)} scales "
+                              f"and {len(self.offset)} offsets")
 
 
 class IngestError(StepError):
@@ -652,11 +686,10 @@ def edge_distance(segments: np.ndarray, window: Window, yscale: float = 1.0, blo
 # warping a window
 
 
-def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest") -> np.ndarray | None:
+def warp_window(line: LineParams, grid: Grid, resampling: str = "nearest") -> np.ndarray | None:
     """Warp the window ``grid`` of one line: float32 (bands, rows, cols) reflectance, NaN outside.
 
-    ``line`` is the JSON description the mosaic step carries (see ``swathmill.workflows.methods.mosaic``): path, crs,
-    transform, width, height, nodata, bands (1-based indexes to read), scale, offset, xscale, yscale.
+    ``line`` is the description of the line the mosaic step carries (:class:`LineParams`).
     GDAL reads from the file only the source window the grid needs; source pixel coordinates are
     computed from the whole line's transform (not a cut-out's), so every tile does the same arithmetic
     as a whole-line warp. Returns None when the grid lies wholly outside the line's raster.
@@ -667,25 +700,25 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
     from rasterio.errors import RasterioIOError
     from rasterio.warp import reproject, transform_bounds
 
-    src_t = Affine(*line["transform"])
+    src_t = Affine(*line.transform)
     left, bottom, right, top = grid.bounds
-    if line["same_crs"]:
+    if line.same_crs:
         lb = (left, bottom, right, top)
     else:
-        lb = transform_bounds(grid.crs, line["crs"], left, bottom, right, top, densify_pts=21)
+        lb = transform_bounds(grid.crs, line.crs, left, bottom, right, top, densify_pts=21)
     inv = ~src_t
     xs, ys = zip(*[inv @ (x, y) for x, y in ((lb[0], lb[1]), (lb[0], lb[3]), (lb[2], lb[1]), (lb[2], lb[3]))])
-    if max(xs) < -2 or min(xs) > line["width"] + 2 or max(ys) < -2 or min(ys) > line["height"] + 2:
+    if max(xs) < -2 or min(xs) > line.width + 2 or max(ys) < -2 or min(ys) > line.height + 2:
         return None
-    bands = [int(b) for b in line["bands"]]
-    scale = np.asarray(line["scale"], dtype=np.float32)[:, None, None]
-    offset = np.asarray(line["offset"], dtype=np.float32)[:, None, None]
-    nodata = line["nodata"]
+    bands = [int(b) for b in line.bands]
+    scale = np.asarray(line.scale, dtype=np.float32)[:, None, None]
+    offset = np.asarray(line.offset, dtype=np.float32)[:, None, None]
+    nodata = line.nodata
     opts = dict(dst_transform=grid.transform, dst_crs=grid.crs, tolerance=0.0,
-                XSCALE=line["xscale"], YSCALE=line["yscale"], num_threads=1, warp_mem_limit=256)
+                XSCALE=line.xscale, YSCALE=line.yscale, num_threads=1, warp_mem_limit=256)
     shift = _aligned_shift(line, grid) if resampling == "nearest" else None
     try:
-        with rasterio.open(line["path"]) as ds:
+        with rasterio.open(line.path) as ds:
             src = rasterio.band(ds, bands)
             dtype = np.dtype(ds.dtypes[0])
             integer = np.issubdtype(dtype, np.integer)
@@ -706,18 +739,18 @@ def warp_window(line: Mapping[str, Any], grid: Grid, resampling: str = "nearest"
                 method = Resampling.nearest if resampling == "nearest" else Resampling.bilinear
                 reproject(src, out, src_nodata=src_nodata, dst_nodata=np.nan, resampling=method, **opts)
     except (RasterioIOError, OSError) as exc:
-        raise IngestError(f"flight line {Path(line['path']).name!r} cannot be read: {exc}") from exc
+        raise IngestError(f"flight line {Path(line.path).name!r} cannot be read: {exc}") from exc
     out *= scale
     if np.any(offset):
         out += offset
     return out
 
 
-def _aligned_shift(line: Mapping[str, Any], grid: Grid) -> tuple[int, int] | None:
+def _aligned_shift(line: LineParams, grid: Grid) -> tuple[int, int] | None:
     """(row, col) of the grid's first pixel in the line's raster when both share one pixel lattice."""
-    if not line["same_crs"]:
+    if not line.same_crs:
         return None
-    a, b, c, d, e, f = line["transform"][:6]
+    a, b, c, d, e, f = line.transform[:6]
     g = grid.transform
     if b != 0 or d != 0 or g.b != 0 or g.d != 0 or a != g.a or e != g.e:
         return None
@@ -753,8 +786,11 @@ def _in_range(v: float, dtype: np.dtype) -> bool:
     return bool(np.isfinite(v) and info.min <= v <= info.max and float(v).is_integer())
 
 
-def read_lines(grid: Grid, tile: Tile, params: Mapping[str, Any], static: Mapping[str, Any]) -> tuple[dict[str, np.ndarray], np.ndarray]:
+def read_lines(grid: Grid, tile: Tile, params: Any, static: Mapping[str, Any]) -> tuple[dict[str, np.ndarray], np.ndarray]:
     """The mosaic step's reader: warp every line that meets the tile's padded window.
+
+    ``params`` is the mosaic step's parameter object: its ``lines`` (:class:`LineParams`), ``yscale``
+    and ``resampling`` are read.
 
     Returns ``({"line_<k>": float32 (bands, rows, cols), "edge_<k>": float32 (1, rows, cols)}, valid)``
     for each line k (1-based) that has a valid pixel in the window. ``line_<k>`` is reflectance on the
@@ -767,13 +803,13 @@ def read_lines(grid: Grid, tile: Tile, params: Mapping[str, Any], static: Mappin
     rows, cols = win.shape
     data: dict[str, np.ndarray] = {}
     valid = np.zeros((rows, cols), dtype=bool)
-    yscale = float(params["yscale"])
-    for line in params["lines"]:
-        k = int(line["number"])
-        c0, r0, c1, r1 = line["bbox_px"]
+    yscale = float(params.yscale)
+    for line in params.lines:
+        k = int(line.number)
+        c0, r0, c1, r1 = line.bbox_px
         if c1 <= win.col or c0 >= win.col + win.cols or r1 <= win.row or r0 >= win.row + win.rows:
             continue
-        arr = warp_window(line, grid, params.get("resampling", "nearest"))
+        arr = warp_window(line, grid, params.resampling)
         if arr is None:
             continue
         matrix = static.get(f"spectral_{k}")

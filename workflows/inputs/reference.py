@@ -50,9 +50,11 @@ from pathlib import Path
 from typing import Any, Callable, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import Field
 
 from swathmill.tiles.grid import Grid, Window
+from swathmill.tiles.paths import resolve as resolve_path
+from swathmill.workflows.params import Section
 from swathmill.errors import SwathmillError
 
 __all__ = [
@@ -191,8 +193,7 @@ class SampleTable:
 
     def in_window(self, win: Window) -> np.ndarray:
         """Indices of samples inside ``win``."""
-        return np.flatnonzero((self.row >= win.row) & (self.row < win.row + win.rows)
-                              & (self.col >= win.col) & (self.col < win.col + win.cols))
+        return np.flatnonzero(win.contains(self.row, self.col))
 
     def counts(self) -> dict[str, int]:
         """Samples per class name."""
@@ -542,7 +543,7 @@ def samples_on_grid(
 
 
 # configuration -----------------------------------------------------------------------------------
-class GroundReferenceConfig(BaseModel):
+class GroundReferenceConfig(Section):
     """YAML section describing a ground reference file and how to put it on the grid.
 
     Example::
@@ -554,8 +555,6 @@ class GroundReferenceConfig(BaseModel):
           classes: [bare soil, grass, water]   # optional: fixes codes 1..k and checks labels
           group_by: feature           # or block (with block_size) for dense points
     """
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     path: str = Field(description="GeoJSON, GeoPackage or CSV of points")
     label: str = "label"
@@ -578,9 +577,7 @@ def load_samples(cfg: GroundReferenceConfig, grid: Grid, *, base_dir: str | Path
 
     ``classes`` overrides ``cfg.classes`` (e.g. the class names of a spectral library).
     """
-    p = Path(cfg.path).expanduser()
-    if not p.is_absolute() and base_dir is not None:
-        p = Path(base_dir) / p
+    p = resolve_path(base_dir, cfg.path)
     ref = read_reference(p, label=cfg.label, split=cfg.split, crs=cfg.crs, layer=cfg.layer, x=cfg.x, y=cfg.y,
                          properties=cfg.properties)
     return samples_on_grid(ref, grid, classes=classes if classes is not None else cfg.classes, valid=valid,

@@ -49,14 +49,14 @@ from functools import partial
 from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from swathmill.tiles.samples import in_core
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 
 from swathmill.workflows.methods.accuracy import regression_metrics
-from swathmill.workflows.params import check_ref
+from swathmill.workflows.params import Section, check_ref
 from swathmill.errors import SwathmillError
 
 __all__ = [
@@ -83,17 +83,15 @@ class CalibrationError(SwathmillError, ValueError):
 # configuration
 # ----------------------------------------------------------------------------------------------
 
-class CrossValidation(BaseModel):
+class CrossValidation(Section):
     """How the calibration is cross-validated."""
-
-    model_config = ConfigDict(extra="forbid")
 
     folds: int = Field(5, ge=2, description="number of folds")
     grouped: bool = Field(False, description="keep each sample group within one fold (GroupKFold)")
     seed: int = Field(0, description="seed of the shuffled KFold split")
 
 
-class CalibrationConfig(BaseModel):
+class CalibrationConfig(Section):
     """One ``calibrations`` entry: a quantity calibrated on the predictors of one input.
 
     YAML::
@@ -115,8 +113,6 @@ class CalibrationConfig(BaseModel):
             n_components: null             # chosen by CV up to max_components
             max_components: 8
     """
-
-    model_config = ConfigDict(extra="forbid")
 
     name: str
     quantity: str
@@ -394,25 +390,25 @@ def predict_calibration(model: Mapping[str, Any], X: np.ndarray) -> tuple[np.nda
 # the step
 # ----------------------------------------------------------------------------------------------
 
-def _select_bands(meta: InputMeta, params: Mapping[str, Any], where: str) -> tuple[list[int], list[str]]:
+def _select_bands(meta: InputMeta, params: CalibrationConfig, where: str) -> tuple[list[int], list[str]]:
     names = list(meta.spec.bands)
-    if params.get("bands"):
-        missing = [b for b in params["bands"] if b not in names]
+    if params.bands:
+        missing = [b for b in params.bands if b not in names]
         if missing:
             raise CalibrationError(f"{where}: input {meta.ref!r} has no band(s) {missing}; its bands are {names}")
-        idx = [names.index(b) for b in params["bands"]]
-    elif params.get("wavelength_ranges"):
+        idx = [names.index(b) for b in params.bands]
+    elif params.wavelength_ranges:
         wl = meta.spec.coords.get("wavelength")
         if wl is None:
             raise CalibrationError(f"{where}: 'wavelength_ranges' needs a wavelength coordinate on input "
                                    f"{meta.ref!r}; it has {sorted(meta.spec.coords)}")
         wl = np.asarray(wl, dtype=float)
         keep = np.zeros(wl.size, bool)
-        for lo, hi in params["wavelength_ranges"]:
+        for lo, hi in params.wavelength_ranges:
             keep |= (wl >= lo) & (wl <= hi)
         idx = np.flatnonzero(keep).tolist()
         if not idx:
-            raise CalibrationError(f"{where}: no band of {meta.ref!r} lies in {params['wavelength_ranges']} nm")
+            raise CalibrationError(f"{where}: no band of {meta.ref!r} lies in {[list(r) for r in params.wavelength_ranges]} nm")
     else:
         idx = list(range(len(names)))
     return idx, [names[i] for i in idx]
@@ -429,14 +425,14 @@ def _merge(a: tuple[np.ndarray, np.ndarray], b: tuple[np.ndarray, np.ndarray]) -
     return np.concatenate([a[0], b[0]]), np.concatenate([a[1], b[1]], axis=0)
 
 
-def _finalize(acc: tuple[np.ndarray, np.ndarray], params: Mapping[str, Any], meta: dict[str, InputMeta],
+def _finalize(acc: tuple[np.ndarray, np.ndarray], params: CalibrationConfig, meta: dict[str, InputMeta],
               static: Mapping[str, Any]) -> dict:
-    where = f"calibration {params['name']!r}"
+    where = f"calibration {params.name!r}"
     m = meta[_ALIAS]
     rows, cols = np.asarray(static["sample_rows"]), np.asarray(static["sample_cols"])
     values = np.asarray(static["sample_values"], dtype=np.float64)
     ids = static.get("sample_ids") or [str(i) for i in range(values.size)]
-    off = np.flatnonzero((rows < 0) | (rows >= m.grid.rows) | (cols < 0) | (cols >= m.grid.cols))
+    off = np.flatnonzero(~m.grid.full.contains(rows, cols))
     if off.size:
         i = int(off[0])
         raise CalibrationError(f"{where}: sample {ids[i]} at row {rows[i]}, col {cols[i]} lies outside the "
@@ -451,16 +447,16 @@ def _finalize(acc: tuple[np.ndarray, np.ndarray], params: Mapping[str, Any], met
     X = X[:, bidx]
     ok = np.all(np.isfinite(X), axis=1)
     dropped = [ids[i] for i in np.flatnonzero(~ok)]
-    groups = static.get("sample_groups") if params["cv"]["grouped"] else None
+    groups = static.get("sample_groups") if params.cv.grouped else None
     model = fit_calibration(
-        X[ok], values[ok], method=params["method"], predictor_names=bnames,
-        groups=None if groups is None else np.asarray(groups)[ok], folds=params["cv"]["folds"],
-        seed=params["cv"]["seed"], n_components=params.get("n_components"),
-        max_components=params.get("max_components", 10), scale=params.get("scale", True),
-        range_margin=params.get("range_margin", 0.0), where=where)
+        X[ok], values[ok], method=params.method, predictor_names=bnames,
+        groups=None if groups is None else np.asarray(groups)[ok], folds=params.cv.folds,
+        seed=params.cv.seed, n_components=params.n_components,
+        max_components=params.max_components, scale=params.scale,
+        range_margin=params.range_margin, where=where)
     model.update({"predictor_index": bidx, "dropped_samples": dropped,
                   "sample_ids": [ids[i] for i in np.flatnonzero(ok)],
-                  "quantity": params["quantity"], "units": params.get("units", "")})
+                  "quantity": params.quantity, "units": params.units})
     return model
 
 
@@ -481,9 +477,10 @@ def calibration_kernel(block: Block, model: Mapping[str, Any]) -> dict[str, np.n
             "out_of_range": flag.reshape(1, r, c), "valid": valid.reshape(r, c)}
 
 
-def _outputs(meta: dict[str, InputMeta], model: Mapping[str, Any] | None, params: Mapping[str, Any]) -> dict[str, OutputSpec]:
-    q, units = params["quantity"], params.get("units", "")
-    attrs: dict[str, Any] = {"units": units, "method": params["method"]}
+def _outputs(meta: dict[str, InputMeta], model: Mapping[str, Any] | None,
+             params: CalibrationConfig) -> dict[str, OutputSpec]:
+    q, units = params.quantity, params.units
+    attrs: dict[str, Any] = {"units": units, "method": params.method}
     if model is not None:
         attrs.update({f"cv_{k}": model["cv"][k] for k in ("r2", "rmse", "bias", "n")})
         attrs["predictors"] = list(model["predictors"])
@@ -510,4 +507,4 @@ def build_steps(section: CalibrationConfig | Mapping[str, Any], samples: Calibra
     static = samples.to_static()
     fit = Fit(accumulate=_accumulate, merge=_merge, finalize=partial(_finalize, static=static))
     return [Step(name=cfg.name, kernel=calibration_kernel, outputs=_outputs, inputs={_ALIAS: cfg.input},
-                 params=cfg.model_dump(mode="json"), fit=fit, static=static)]
+                 params=cfg, fit=fit, static=static)]

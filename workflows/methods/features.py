@@ -35,12 +35,12 @@ import re
 from typing import Annotated, Any, Literal, Mapping, Sequence, Union
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, TypeAdapter, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, OutputSpec, Step, StepError
 
-from swathmill.workflows.params import check_ref
+from swathmill.workflows.params import Section, check_ref
 from swathmill.workflows.spectral.continuum import band_minimum, continuum_removed
 from swathmill.errors import SwathmillError
 
@@ -71,8 +71,7 @@ class FeatureError(SwathmillError, ValueError):
     """A feature cannot be measured on the given bands; the message names the feature and band."""
 
 
-class _Feature(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+class _Feature(Section):
 
     name: str = Field(description="name of the output band")
 
@@ -176,10 +175,9 @@ Feature = Annotated[
     Union[BandDepth, BandArea, BandMinimum, BandRatio, NormalizedDifference, Slope],
     Field(discriminator="kind"),
 ]
-_FEATURE_LIST = TypeAdapter(list[Feature])
 
 
-class FeaturesConfig(BaseModel):
+class FeaturesConfig(Section):
     """The ``features`` section: which features to measure on which input.
 
     YAML::
@@ -195,8 +193,6 @@ class FeaturesConfig(BaseModel):
             - {kind: normalized_difference, name: ndvi, a: 860, b: 660}
             - {kind: slope, name: red_slope, range: [680, 750]}
     """
-
-    model_config = ConfigDict(extra="forbid")
 
     name: str = "features"
     input: str = "mosaic/reflectance"
@@ -387,8 +383,8 @@ def _wavelengths(block: Block) -> np.ndarray:
 
 def features_kernel(block: Block, model: Any) -> dict[str, np.ndarray]:
     """Kernel of the features step: ``{"features": (n_features, rows, cols) float32}``."""
-    feats = _FEATURE_LIST.validate_python(block.params["features"])
-    return {"features": compute_features(_wavelengths(block), block.data[_ALIAS], feats, block.valid)}
+    params: FeaturesConfig = block.params
+    return {"features": compute_features(_wavelengths(block), block.data[_ALIAS], list(params.features), block.valid)}
 
 
 def build_steps(section: FeaturesConfig | Mapping[str, Any], ctx: Any = None) -> list[Step]:
@@ -406,5 +402,5 @@ def build_steps(section: FeaturesConfig | Mapping[str, Any], ctx: Any = None) ->
     )
     return [Step(
         name=cfg.name, kernel=features_kernel, outputs={"features": spec}, inputs={_ALIAS: cfg.input},
-        params={"features": [f.model_dump(mode="json") for f in feats]},
+        params=cfg,
     )]

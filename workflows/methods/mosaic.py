@@ -28,15 +28,21 @@ from pathlib import Path
 from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
+
+from affine import Affine
 
 from swathmill.tiles.grid import Grid, Tile
+from swathmill.tiles.paths import resolve as resolve_path
+from swathmill.tiles.samples import pixel_sample_mask, tiles_touching
+from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, OutputSpec, Step
 
 from swathmill.workflows.inputs.ingest import (
     IngestError,
     LineInfo,
+    LineParams,
     bad_band_mask,
     footprint_to_grid,
     footprints_geojson,
@@ -49,6 +55,7 @@ from swathmill.workflows.inputs.ingest import (
 
 __all__ = [
     "MosaicConfig",
+    "MosaicParams",
     "MosaicPlan",
     "plan_mosaic",
     "build_mosaic_step",
@@ -74,7 +81,7 @@ SUGGESTED_BAD_BANDS: tuple[tuple[float, float], ...] = ((1340.0, 1460.0), (1790.
 Policy = Literal["nearest_centre", "first", "last", "feather"]
 
 
-class MosaicConfig(BaseModel):
+class MosaicConfig(Section):
     """The ``mosaic`` section of a run's YAML.
 
     Paths are relative to the config file's folder (``base_dir``). Example::
@@ -90,8 +97,6 @@ class MosaicConfig(BaseModel):
           crs: EPSG:32612                             # default: the first line's CRS
           resolution: 5.0                             # default: the finest line's
     """
-
-    model_config = ConfigDict(extra="forbid")
 
     lines: list[str] = Field(min_length=1, description="flight line rasters, in priority order")
     names: list[str] | None = Field(None, description="line names (default: file stems)")
@@ -145,7 +150,7 @@ class MosaicPlan:
     reference: int
     wavelength: np.ndarray
     fwhm: np.ndarray
-    line_params: list[dict]
+    line_params: list[LineParams]
     spectral: dict[int, np.ndarray]
     segments: dict[int, np.ndarray]
     overlaps: list[dict]
@@ -167,10 +172,10 @@ def _table_for(cfg: MosaicConfig, path: Path, base: Path) -> Path | None:
     if t is None:
         return None
     if isinstance(t, str):
-        return (base / t).resolve()
+        return resolve_path(base, t).resolve()
     for key in (path.name, str(path), path.stem):
         if key in t:
-            return (base / t[key]).resolve()
+            return resolve_path(base, t[key]).resolve()
     return None
 
 
@@ -192,7 +197,7 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     base = Path(base_dir)
     # plain paths are relative to the config's folder; GDAL dataset names (NETCDF:..., HDF5:..., /vsi...)
     # are passed to GDAL as written
-    paths = [Path(p) if is_gdal_name(p) or Path(p).is_absolute() else (base / p).resolve() for p in cfg.lines]
+    paths = [Path(p) if is_gdal_name(p) or Path(p).is_absolute() else resolve_path(base, p).resolve() for p in cfg.lines]
     names = cfg.names or [_default_name(str(p)) for p in paths]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
@@ -223,7 +228,7 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     fw = ref.fwhm[keep]
     grid = target_grid(lines, cfg.crs, cfg.resolution, cfg.bounds)
     yscale = grid.res[1] / grid.res[0]
-    line_params: list[dict] = []
+    line_params: list[LineParams] = []
     spectral: dict[int, np.ndarray] = {}
     segments: dict[int, np.ndarray] = {}
     fps_px = {}
@@ -267,13 +272,13 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
         segments[ln.number] = segments_of(fp)
         same_crs = CRS.from_user_input(ln.crs) == CRS.from_user_input(grid.crs)
         xs, ys = _scale_ratio(ln, grid, same_crs)
-        line_params.append({
-            "number": ln.number, "name": ln.name, "path": ln.path, "crs": ln.crs, "same_crs": bool(same_crs),
-            "transform": [float(v) for v in ln.transform], "width": ln.width, "height": ln.height,
-            "nodata": ln.nodata, "bands": bands,
-            "scale": [float(ln.scale[b - 1]) for b in bands], "offset": [float(ln.offset[b - 1]) for b in bands],
-            "xscale": xs, "yscale": ys, "bbox_px": bbox,
-        })
+        line_params.append(LineParams(
+            number=ln.number, name=ln.name, path=ln.path, crs=ln.crs, same_crs=bool(same_crs),
+            transform=tuple(float(v) for v in ln.transform), width=ln.width, height=ln.height,
+            nodata=ln.nodata, bands=tuple(bands),
+            scale=tuple(float(ln.scale[b - 1]) for b in bands), offset=tuple(float(ln.offset[b - 1]) for b in bands),
+            xscale=xs, yscale=ys, bbox_px=tuple(bbox),
+        ))
     overlaps = []
     shapes: dict[str, str] = {}
     for i in range(len(lines)):
@@ -332,6 +337,41 @@ def mosaic_outputs(plan: MosaicPlan) -> dict[str, OutputSpec]:
     return {"reflectance": refl, "source": source}
 
 
+@dataclass(frozen=True)
+class MosaicParams:
+    """The mosaic step's parameters: its configuration section and what its plan worked out.
+
+    ``lines`` describe how each line is read; ``yscale`` is the grid's pixel height over its width
+    (the footprints' and overlap shapes' y unit); ``pairs`` are the overlapping line pairs (1-based),
+    ``sample_rates`` the sampled fraction of blocks per pair (``"i-j"``), ``overlap_shapes`` the WKT
+    of each pair's overlap in those pixel units, ``grid_shape`` the grid's (rows, cols).
+    """
+
+    section: MosaicConfig
+    lines: tuple[LineParams, ...]
+    n_bands: int
+    yscale: float
+    matching: bool
+    reference: int
+    pairs: tuple[tuple[int, int], ...] = ()
+    sample_rates: Mapping[str, float] = field(default_factory=dict)
+    overlap_shapes: Mapping[str, str] = field(default_factory=dict)
+    grid_shape: tuple[int, int] = (0, 0)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "lines", tuple(self.lines))
+        object.__setattr__(self, "pairs", tuple(tuple(int(v) for v in p) for p in self.pairs))
+        object.__setattr__(self, "grid_shape", tuple(int(v) for v in self.grid_shape))
+
+    @property
+    def n_lines(self) -> int:
+        return len(self.lines)
+
+    @property
+    def resampling(self) -> str:
+        return self.section.resampling
+
+
 def mosaic_step(plan: MosaicPlan) -> Step:
     """The engine step for a plan (see :func:`build_mosaic_step`)."""
     cfg = plan.config
@@ -339,23 +379,11 @@ def mosaic_step(plan: MosaicPlan) -> Step:
     nblk = cfg.match_block ** 2
     rates = {f"{i}-{j}": min(1.0, cfg.sample_size * nblk / max(o["pixels"], 1)) for o, (i, j) in zip(plan.overlaps, pairs)}
     matching = bool(cfg.brightness_matching and pairs)
-    params = {
-        "lines": plan.line_params,
-        "n_lines": len(plan.lines),
-        "n_bands": int(len(plan.wavelength)),
-        "policy": cfg.overlap,
-        "blend_width": float(cfg.blend_width),
-        "resampling": cfg.resampling,
-        "yscale": float(plan.grid.res[1] / plan.grid.res[0]),
-        "matching": matching,
-        "reference": plan.reference,
-        "pairs": pairs,
-        "sample_rates": rates,
-        "seed": int(cfg.seed),
-        "match_block": int(cfg.match_block),
-        "overlap_shapes": plan.overlap_shapes,
-        "grid_shape": [plan.grid.rows, plan.grid.cols],
-    }
+    params = MosaicParams(
+        section=cfg, lines=tuple(plan.line_params), n_bands=int(len(plan.wavelength)),
+        yscale=float(plan.grid.res[1] / plan.grid.res[0]), matching=matching, reference=plan.reference,
+        pairs=tuple(tuple(p) for p in pairs), sample_rates=rates, overlap_shapes=dict(plan.overlap_shapes),
+        grid_shape=(plan.grid.rows, plan.grid.cols))
     static: dict[str, Any] = {f"segments_{k}": v for k, v in plan.segments.items()}
     static.update({f"spectral_{k}": v for k, v in plan.spectral.items()})
     static["footprints"] = footprints_geojson(plan.lines, plan.grid, plan.overlaps)
@@ -504,8 +532,8 @@ def mosaic_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np
     rows, cols = block.valid.shape
     # the reader marks a line's missing pixels with NaN edges, and its arrays are this tile's own
     refl, source, valid = resolve_overlaps(
-        lines, edges, p["policy"], float(p["blend_width"]), gain, offset, shape=(int(p["n_bands"]), rows, cols),
-        source_dtype="uint8" if int(p["n_lines"]) <= 255 else "uint16", check_data=False, in_place=True)
+        lines, edges, p.section.overlap, float(p.section.blend_width), gain, offset, shape=(p.n_bands, rows, cols),
+        source_dtype="uint8" if p.n_lines <= 255 else "uint16", check_data=False, in_place=True)
     return {"reflectance": refl, "source": source[None], "valid": valid}
 
 
@@ -514,23 +542,12 @@ def mosaic_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np
 
 
 def sample_mask(rows: np.ndarray, cols: np.ndarray, rate: float, seed: int) -> np.ndarray:
-    """A seeded Bernoulli sample of pixels that depends only on their global (row, col).
+    """A seeded Bernoulli sample of the pixels ``rows`` x ``cols`` that depends only on their global (row, col).
 
-    Each pixel gets a 64-bit hash of (seed, row, col) (a splitmix64 finaliser, common practice); it is
-    sampled when the hash, as a fraction of 2**64, is below ``rate``. The sample is the same however
-    the grid is tiled.
+    Each pixel is sampled when its hash (:func:`swathmill.tiles.samples.pixel_sample_mask`) is below
+    ``rate``; the sample is the same however the grid is tiled. Returns (rows.size, cols.size) booleans.
     """
-    if rate >= 1.0:
-        return np.ones((rows.size, cols.size), dtype=bool)
-    with np.errstate(over="ignore"):
-        r = rows.astype(np.uint64)[:, None]
-        c = cols.astype(np.uint64)[None, :]
-        z = (r << np.uint64(32)) ^ c ^ (np.uint64(seed & 0xFFFFFFFF) * np.uint64(0x9E3779B97F4A7C15))
-        z = z + np.uint64(0x9E3779B97F4A7C15)
-        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-        z = z ^ (z >> np.uint64(31))
-    return (z >> np.uint64(11)).astype(np.float64) * (1.0 / (1 << 53)) < rate
+    return pixel_sample_mask(np.asarray(rows)[:, None], np.asarray(cols)[None, :], seed, rate)
 
 
 def pair_sums(x: np.ndarray, y: np.ndarray) -> np.ndarray:
@@ -560,9 +577,9 @@ def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
     and blocks that run past the grid's edge are not used, so each block is counted once and the sums
     do not depend on the tiling.
     """
-    p = block.params
-    b = int(p.get("match_block", 1))
-    rows_g, cols_g = (int(v) for v in p["grid_shape"])
+    p: MosaicParams = block.params
+    b = int(p.section.match_block)
+    rows_g, cols_g = p.grid_shape
     lines, _ = _line_arrays(block)
     core, pad = block.tile.core, block.tile.padded
     R0 = -(-core.row // b) * b
@@ -582,13 +599,13 @@ def accumulate_overlaps(block: Block) -> dict[str, np.ndarray]:
     brow = np.arange(R0 // b, R0 // b + nr)
     bcol = np.arange(C0 // b, C0 // b + nc)
     off = np.arange(b)
-    for i, j in p["pairs"]:
+    for i, j in p.pairs:
         if i not in lines or j not in lines:
             continue
         both = ok[i] & ok[j]
         if not both.any():
             continue
-        both &= sample_mask(brow, bcol, float(p["sample_rates"][f"{i}-{j}"]), int(p["seed"]) + 7919 * i + j)
+        both &= sample_mask(brow, bcol, float(p.sample_rates[f"{i}-{j}"]), int(p.section.seed) + 7919 * i + j)
         if not both.any():
             continue
         bi, bj = np.nonzero(both)  # gather only the sampled blocks: (bands, n, b, b) -> means (bands, n)
@@ -705,7 +722,7 @@ def overlap_statistics(s: np.ndarray, gi: np.ndarray | float = 1.0, oi: np.ndarr
     return mean, np.sqrt(np.maximum(ms, 0.0))
 
 
-def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[str, Any], meta: Any) -> dict:
+def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: MosaicParams, meta: Any) -> dict:
     """The brightness model: gains and offsets per line and band, and overlap statistics.
 
     Model keys: ``gain``, ``offset`` (n_lines, bands); ``pairs`` (P, 2); ``samples`` (P,);
@@ -714,7 +731,7 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[st
     difference ("bias", the brightness mismatch) and of the RMS difference (which keeps the noise),
     before and after, and their reductions), ``statistics`` (how they were computed).
     """
-    n_lines, nb, ref = int(params["n_lines"]), int(params["n_bands"]), int(params["reference"])
+    n_lines, nb, ref = params.n_lines, params.n_bands, int(params.reference)
     sums = {tuple(int(v) for v in k.split("-")): v for k, v in (acc or {}).items()}
     gain, offset, unmatched = solve_brightness(sums, n_lines, ref)
     if gain.shape[1] != nb:
@@ -746,7 +763,7 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: Mapping[st
     }
 
 
-def select_overlap_tiles(tiles: Sequence[Tile], params: Mapping[str, Any]) -> list[Tile]:
+def select_overlap_tiles(tiles: Sequence[Tile], params: MosaicParams) -> list[Tile]:
     """The tiles whose core meets the overlap of at least one pair of lines (the fit reads only those).
 
     Overlaps are the intersections of the footprints in the grid's pixel coordinates, grown by one
@@ -755,12 +772,6 @@ def select_overlap_tiles(tiles: Sequence[Tile], params: Mapping[str, Any]) -> li
     """
     import shapely
 
-    yscale = float(params.get("yscale", 1.0))
-    shapes = [shapely.from_wkt(w) for w in (params.get("overlap_shapes") or {}).values()]
-    out = []
-    for t in tiles:
-        w = t.core
-        box = shapely.box(w.col, w.row * yscale, w.col + w.cols, (w.row + w.rows) * yscale)
-        if any(g.intersects(box) for g in shapes):
-            out.append(t)
-    return out
+    shapes = [shapely.from_wkt(w) for w in params.overlap_shapes.values()]
+    # the shapes are in pixel units with y scaled by yscale: (col, row) -> (col, row * yscale)
+    return tiles_touching(tiles, shapes, Affine.scale(1.0, float(params.yscale)))
