@@ -134,6 +134,8 @@ def test_palette_is_okabe_ito_then_tol_muted():
     assert len(colors) == 20 and len(set(colors[:16])) == 16 and colors[16] == colors[0]
     with pytest.raises(ValueError, match="six hexadecimal"):
         hex_to_rgb("12345")
+    with pytest.raises(ValueError, match="six hexadecimal"):
+        hex_to_rgb("#GG0000")
 
 
 def test_ops_parameters_hold_their_bounds():

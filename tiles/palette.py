@@ -1,6 +1,8 @@
 """The default colours of class maps: one colour-blind-safe palette for every product and figure."""
 from __future__ import annotations
 
+import re
+
 __all__ = ["PALETTE_HEX", "hex_to_rgb", "default_class_colors"]
 
 # Colour-blind-safe default palette for class maps (RGB). First the seven colours of Okabe & Ito,
@@ -15,9 +17,9 @@ PALETTE_HEX: tuple[str, ...] = (
 
 def hex_to_rgb(h: str) -> tuple[int, int, int]:
     """``"#E69F00"`` or ``"E69F00"`` to ``(230, 159, 0)``."""
+    if not isinstance(h, str) or not re.fullmatch(r"#?[0-9A-Fa-f]{6}", h):
+        raise ValueError(f"a colour must be six hexadecimal digits (RRGGBB, optionally after '#'). Got {h!r}")
     h = h.lstrip("#")
-    if len(h) != 6:
-        raise ValueError(f"a colour must be six hexadecimal digits (RRGGBB). Got {h!r}")
     return int(h[0:2], 16), int(h[2:4], 16), int(h[4:6], 16)
 
 

@@ -34,6 +34,7 @@ from typing import Sequence
 
 import numpy as np
 
+from swathmill.tiles.palette import hex_to_rgb as palette_rgb
 from swathmill.workflows.spectral.spectra import resample, uncovered_bands
 from swathmill.errors import SwathmillError
 
@@ -59,7 +60,7 @@ def hex_to_rgb(color: str) -> tuple[int, int, int]:
     """``"#rrggbb"`` -> (r, g, b) in 0-255."""
     if not _HEX.match(color):
         raise LibraryError(f"a colour must be written #rrggbb. Got {color!r}")
-    return int(color[1:3], 16), int(color[3:5], 16), int(color[5:7], 16)
+    return palette_rgb(color)
 
 
 @dataclass(frozen=True, eq=False)
