@@ -148,3 +148,11 @@ def test_ops_parameters_hold_their_bounds():
     assert BandTransformParams(bands=["b1", "b2"]).bands == ("b1", "b2")
     step = mean_filter_step("smooth", "src/refl", size=5)
     assert step.params == FilterParams(size=5) and step.halo == 2
+
+
+def test_one_caution_text_says_what_the_project_rules_require():
+    from swathmill.workflows.caution import CAUTION
+
+    # the project's rules: products are estimates, confirmed in the field, under local rules and licensed practice
+    for words in ("estimate", "in the field", "local rules", "licensed"):
+        assert words in CAUTION
