@@ -28,7 +28,8 @@ from swathmill.workflows.methods.calibration import CalibrationConfig, Calibrati
 from swathmill.workflows.methods.calibration import build_steps as calibration_steps
 from swathmill.workflows.methods.classify import SamConfig, SffConfig, SvmConfig
 from swathmill.workflows.methods.classify import build_steps as classify_steps
-from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, Strict, config_hash, load_yaml, resolve, validate
+from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, config_hash, load_yaml, resolve, validate
+from swathmill.workflows.app.runview import StoreValid
 from swathmill.workflows.methods.endmembers import EndmemberExtractionConfig
 from swathmill.workflows.methods.endmembers import build_steps as endmember_steps
 from swathmill.workflows.methods.features import FeaturesConfig
@@ -40,21 +41,15 @@ from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_sam
 from swathmill.workflows.methods.unmix import UnmixConfig
 from swathmill.workflows.methods.unmix import build_steps as unmix_steps
 from swathmill.errors import SwathmillError
-
-SPLIT_VALIDATION = 2  # split code of validation samples in swathmill.workflows.inputs.reference
+from swathmill.workflows.params import Section
 
 __all__ = ["RunConfig", "InputError", "load_run_config", "build_steps", "run_config", "rebuild_report"]
-
-CAUTION = ("Every product is an estimate, with the accuracy measured against the reference samples named in "
-           "the report; confirm it in the field and use it under local rules and licensed practice before "
-           "any decision (drilling, spraying, water advisories).")
-
 
 class InputError(SwathmillError, ValueError):
     """Input data is missing or unusable; the message names the file, band, tile or key."""
 
 
-class ModalFilterConfig(Strict):
+class ModalFilterConfig(Section):
     """Majority filter of class maps (its own step per map, with a halo so tiles leave no seam)."""
 
     size: int = Field(3, ge=1, description="odd window side in pixels")
@@ -68,7 +63,7 @@ class ModalFilterConfig(Strict):
         return v
 
 
-class ClassifyConfig(Strict):
+class ClassifyConfig(Section):
     """Classification steps; each key takes one section or a list of them (distinct ``name`` s)."""
 
     sam: list[SamConfig] = Field(default_factory=list)
@@ -88,17 +83,17 @@ class CalibrationEntry(CalibrationConfig):
     property: str = Field(..., description="numeric column of the ground reference with the measurements")
 
 
-class AccuracyConfig(Strict):
+class AccuracyConfig(Section):
     area_unit: Literal["ha", "km2", "m2"] = Field("ha", description="unit of the area estimates")
     use_unassigned: bool = Field(False, description="also assess on samples with no train/validation split")
 
 
-class ReportConfig(Strict):
+class ReportConfig(Section):
     enabled: bool = True
     title: str | None = None
 
 
-class RunConfig(Strict):
+class RunConfig(Section):
     """The whole run. Relative paths are relative to the YAML file's folder."""
 
     name: str = Field(..., min_length=1, description="name of the run (used in product ids)")
@@ -264,7 +259,7 @@ def calibration_samples(ref: GroundReferenceConfig, prop: str, mosaic_store: Til
         raise InputError(f"ground reference {ref.path}: no numeric column {prop!r} (numeric columns: "
                          f"{sorted(table.extras)})")
     values = table.extras[prop]
-    keep = (table.split != SPLIT_VALIDATION) & np.isfinite(values)
+    keep = ~table.is_validation & np.isfinite(values)
     if not keep.any():
         raise InputError(f"ground reference {ref.path}: no training sample has a value of {prop!r}")
     t = table.subset(keep)
