@@ -12,23 +12,20 @@ from typing import Any, Literal, Mapping
 
 import yaml
 
-from swathmill.workflows.params import check_ref, ctx_get  # re-exported for older imports
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
-from swathmill.errors import SwathmillError
+from pydantic import BaseModel, Field, ValidationError, model_validator
 
-__all__ = ["ConfigError", "ExecutionConfig", "EngineConfig", "load_config", "load_yaml", "validate", "config_hash", "resolve",
-           "check_ref"]
+from swathmill.errors import SwathmillError
+from swathmill.workflows.params import Section, check_ref, ctx_get  # check_ref, ctx_get: re-exported for older imports
+
+__all__ = ["ConfigError", "JobqueueConfig", "ExecutionConfig", "EngineConfig", "load_yaml", "validate", "config_hash",
+           "resolve", "check_ref", "ctx_get"]
 
 
 class ConfigError(SwathmillError, ValueError):
     """The configuration file is unreadable or invalid; the message names the file and the key."""
 
 
-class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class JobqueueConfig(Strict):
+class JobqueueConfig(Section):
     """A batch cluster through dask-jobqueue (optional extra ``swathmill[batch]``)."""
 
     system: Literal["slurm", "pbs", "sge", "lsf", "htcondor"] = "slurm"
@@ -44,7 +41,7 @@ class JobqueueConfig(Strict):
     local_directory: str | None = None
 
 
-class ExecutionConfig(Strict):
+class ExecutionConfig(Section):
     """Where tasks run. ``local``: an in-process loop; ``dask``: a LocalCluster sized to the machine, or
     the scheduler at ``address``; ``jobqueue``: a batch cluster."""
 
@@ -70,7 +67,7 @@ class ExecutionConfig(Strict):
         return self
 
 
-class EngineConfig(Strict):
+class EngineConfig(Section):
     tile: int = Field(512, ge=8, description="tile size in pixels; every store's shard size")
     chunk: int | None = Field(None, ge=8, description="inner chunk size in pixels (divides tile)")
     zstd_level: int = Field(1, ge=0, le=22)
@@ -141,14 +138,3 @@ def resolve(base: Path, p: str | Path | None) -> Path | None:
         return None
     p = Path(p).expanduser()
     return p if p.is_absolute() else (base / p).resolve()
-
-
-
-
-
-
-def load_config(path: Path):
-    from swathmill.workflows.app.pipeline import RunConfig as _RunConfig
-
-    data = load_yaml(Path(path))
-    return validate(_RunConfig, data, Path(path)), data

@@ -9,80 +9,26 @@ from __future__ import annotations
 import json
 import time
 import warnings
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from swathmill.tiles.grid import Tiling
-from swathmill.tiles.ledger import Ledger
 from swathmill.tiles.step import OutputSpec
 from swathmill.tiles.store import TileStore, decode
-from swathmill.tiles.tasks import load_model
 
-from swathmill.workflows.methods.accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy, confusion_matrix,
-                       regression_metrics)
+from swathmill.workflows.app.caution import CAUTION_SHORT
+from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, StoreValid, is_class_map, open_run, with_role
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
+from swathmill.workflows.methods.accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy,
+                                                  confusion_matrix, regression_metrics)
+from swathmill.workflows.roles import Role
 
 __all__ = ["finish_run", "assess_accuracy", "rebuild_report", "gather_collection", "write_endmember_tables",
-           "ACCURACY_FILE"]
+           "ACCURACY_FILE", "RunView", "open_run", "is_class_map"]
 
-ACCURACY_FILE = "accuracy.json"
-SPLIT_TRAIN, SPLIT_VALIDATION = 1, 2  # swathmill.workflows.inputs.reference.SPLIT_CODES
 AREA_FACTORS = {"m2": 1.0, "ha": 1e-4, "km2": 1e-6}
-
-
-@dataclass
-class RunView:
-    """What a finished or partial run directory holds, read back from disk."""
-
-    dir: Path
-    config: dict
-    base: Path
-    steps: dict[str, dict]  # name -> ledger row (key, total, info)
-    done: dict[str, int]
-
-    def store(self, name: str) -> TileStore | None:
-        p = self.dir / "stores" / f"{name}.zarr"
-        if not (p / "zarr.json").is_file() or name not in self.steps:
-            return None
-        return TileStore(p)
-
-    def complete(self, name: str) -> bool:
-        s = self.steps.get(name)
-        return bool(s) and self.done.get(name, 0) == (s["total"] or -1)
-
-    def product(self, name: str, output: str) -> Path | None:
-        p = self.dir / "products" / f"{name}__{output}.tif"
-        return p if p.is_file() else None
-
-    def model(self, name: str) -> dict | None:
-        info = self.steps.get(name, {}).get("info", {})
-        mp = info.get("model_path")
-        if not mp or not Path(mp + ".json").is_file():
-            return None
-        return load_model(mp)
-
-    def outputs(self, name: str) -> dict[str, OutputSpec]:
-        info = self.steps.get(name, {}).get("info", {})
-        return {k: OutputSpec.from_dict(v) for k, v in (info.get("outputs") or {}).items()}
-
-
-def open_run(run_dir: Path) -> RunView:
-    run_dir = Path(run_dir).resolve()
-    resolved = run_dir / "config.resolved.json"
-    if not (run_dir / "ledger.sqlite").is_file() or not resolved.is_file():
-        raise FileNotFoundError(f"{run_dir} is not a swathmill run directory (ledger.sqlite or "
-                                "config.resolved.json missing)")
-    config = json.loads(resolved.read_text())
-    ledger = Ledger(run_dir / "ledger.sqlite")
-    try:
-        steps = {s["name"]: s for s in ledger.steps()}
-        done = {n: len(ledger.done(n, s["key"])) for n, s in steps.items()}
-    finally:
-        ledger.close()
-    return RunView(run_dir, config, Path(config["config_file"]).parent, steps, done)
 
 
 # accuracy --------------------------------------------------------------------------------------------
@@ -109,8 +55,6 @@ def _values_at(store: TileStore, output: str, rows: np.ndarray, cols: np.ndarray
 
 
 def _samples(view: RunView, ref_cfg: dict, grid, mosaic: TileStore):
-    from swathmill.workflows.app.pipeline import StoreValid
-
     cfg = GroundReferenceConfig.model_validate(ref_cfg)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -125,7 +69,8 @@ def assess_accuracy(run_dir: Path) -> dict:
     Writes and returns ``accuracy.json``. Class maps: confusion matrix (map rows x reference
     columns), overall, user's, producer's accuracy, F1, kappa, and stratified area estimates with
     95% confidence intervals (Olofsson et al., 2014) from the mapped pixel counts. Abundance and
-    quantity maps: RMSE, bias and R2 against the reference fractions and measurements.
+    quantity maps: RMSE, bias and R2 against the reference fractions and measurements. Maps are found
+    by the role their outputs declare (:class:`swathmill.workflows.roles.Role`).
     """
     view = open_run(run_dir)
     cfg = view.config
@@ -135,78 +80,82 @@ def assess_accuracy(run_dir: Path) -> dict:
     if cfg.get("reference") is None or mosaic is None:
         out["notes"].append("no ground reference in the configuration: no accuracy assessment")
         return _write(view, out)
-    table, issues = _samples(view, cfg["reference"], mosaic.grid, mosaic)
-    out["reference"] = {"file": cfg["reference"]["path"], "samples": len(table),
-                        "validation": int((table.split == SPLIT_VALIDATION).sum()),
-                        "issues": [str(i) for i in issues]}
-    if issues:
-        out["notes"].append(f"{len(issues)} ground-reference feature(s) could not be used in full "
-                            f"(outside the mosaic or on nodata): see accuracy.json")
-    use = table.split == SPLIT_VALIDATION
-    if cfg.get("accuracy", {}).get("use_unassigned"):
-        use |= table.split == 0
-    val = table.subset(use)
+    val = _validation_samples(view, cfg, mosaic, out)
     if len(val) == 0:
         out["notes"].append("the ground reference has no validation sample: no accuracy assessment")
         return _write(view, out)
     unit = cfg.get("accuracy", {}).get("area_unit", "ha")
     res = mosaic.grid.res
     pixel_area = res[0] * res[1] * AREA_FACTORS[unit]
-
-    for name, step in view.steps.items():
-        if not view.complete(name):
-            continue
+    complete = [name for name in view.steps if view.complete(name)]
+    for name in complete:
         for output, spec in view.outputs(name).items():
-            if not is_class_map(output, spec):
-                continue
-            store = view.store(name)
-            if store is None:
-                continue
-            out["class_maps"][f"{name}/{output}"] = _assess_classes(store, output, spec, val, pixel_area, unit)
-
-    for name in view.steps:
-        if not view.complete(name):
-            continue
+            store = view.store(name) if is_class_map(spec) else None
+            if store is not None:
+                out["class_maps"][f"{name}/{output}"] = _assess_classes(store, output, spec, val, pixel_area, unit)
+    for name in complete:
         outs = view.outputs(name)
-        if "abundance" in outs:
-            store = view.store(name)
-            spec = outs["abundance"]
-            wanted = [b for b in spec.bands if f"frac_{b}" in val.extras]
-            if not wanted:
-                out["notes"].append(f"{name}: the ground reference has no frac_<endmember> column for "
-                                    f"{list(spec.bands)}; abundances not assessed")
-                continue
-            est, ok = _values_at(store, "abundance", val.row, val.col)
-            ref = np.stack([val.extras[f"frac_{b}"] for b in wanted], 1)
-            idx = [spec.bands.index(b) for b in wanted]
-            keep = ok & np.all(np.isfinite(ref), 1) & np.all(np.isfinite(est[idx].T), 1)
-            if keep.sum() < 2:
-                continue
-            metrics = abundance_metrics(ref[keep].T, est[idx][:, keep], wanted)
-            out["abundance_maps"][f"{name}/abundance"] = {
-                "names": wanted, "metrics": [_metrics(m) for m in metrics],
-                "observed": ref[keep].tolist(), "predicted": est[idx].T[keep].tolist()}
+        for output in with_role(outs, Role.ABUNDANCE):
+            _assess_abundance(view, name, output, outs[output], val, out)
     for entry in cfg.get("calibrations", []):
-        name, prop = entry["name"], entry["property"]
-        store = view.store(name)
-        if store is None or not view.complete(name) or prop not in val.extras:
-            continue
-        est, ok = _values_at(store, "quantity", val.row, val.col)
+        _assess_quantity(view, entry, val, out)
+    return _write(view, out)
+
+
+def _validation_samples(view: RunView, cfg: dict, mosaic: TileStore, out: dict):
+    """The validation samples (and the unassigned ones when the configuration asks), noted in ``out``."""
+    table, issues = _samples(view, cfg["reference"], mosaic.grid, mosaic)
+    out["reference"] = {"file": cfg["reference"]["path"], "samples": len(table),
+                        "validation": int(table.is_validation.sum()),
+                        "issues": [str(i) for i in issues]}
+    if issues:
+        out["notes"].append(f"{len(issues)} ground-reference feature(s) could not be used in full "
+                            f"(outside the mosaic or on nodata): see accuracy.json")
+    use = table.is_validation
+    if cfg.get("accuracy", {}).get("use_unassigned"):
+        use = use | table.is_unassigned
+    return table.subset(use)
+
+
+def _assess_abundance(view: RunView, name: str, output: str, spec: OutputSpec, val, out: dict) -> None:
+    """RMSE, bias and R2 of an abundance output against the reference's ``frac_<endmember>`` columns."""
+    store = view.store(name)
+    if store is None:
+        return
+    wanted = [b for b in spec.bands if f"frac_{b}" in val.extras]
+    if not wanted:
+        out["notes"].append(f"{name}: the ground reference has no frac_<endmember> column for "
+                            f"{list(spec.bands)}; abundances not assessed")
+        return
+    est, ok = _values_at(store, output, val.row, val.col)
+    ref = np.stack([val.extras[f"frac_{b}"] for b in wanted], 1)
+    idx = [spec.bands.index(b) for b in wanted]
+    keep = ok & np.all(np.isfinite(ref), 1) & np.all(np.isfinite(est[idx].T), 1)
+    if keep.sum() < 2:
+        return
+    metrics = abundance_metrics(ref[keep].T, est[idx][:, keep], wanted)
+    out["abundance_maps"][f"{name}/{output}"] = {
+        "names": wanted, "metrics": [_metrics(m) for m in metrics],
+        "observed": ref[keep].tolist(), "predicted": est[idx].T[keep].tolist()}
+
+
+def _assess_quantity(view: RunView, entry: dict, val, out: dict) -> None:
+    """RMSE, bias and R2 of a calibration's quantity output against the measured property."""
+    name, prop = entry["name"], entry["property"]
+    store = view.store(name)
+    if store is None or not view.complete(name) or prop not in val.extras:
+        return
+    for output in with_role(store.specs, Role.QUANTITY):
+        est, ok = _values_at(store, output, val.row, val.col)
         obs = val.extras[prop]
         keep = ok & np.isfinite(obs) & np.isfinite(est[0])
         if keep.sum() < 2:
             out["notes"].append(f"{name}: fewer than 2 validation samples with {prop!r}; not assessed")
             continue
         m = regression_metrics(obs[keep], est[0][keep])
-        out["quantity_maps"][f"{name}/quantity"] = {"property": prop, "units": entry.get("units", ""),
+        out["quantity_maps"][f"{name}/{output}"] = {"property": prop, "units": entry.get("units", ""),
                                                     "metrics": _metrics(m), "observed": obs[keep].tolist(),
                                                     "predicted": est[0][keep].tolist()}
-    return _write(view, out)
-
-
-def is_class_map(output: str, spec: OutputSpec) -> bool:
-    """Class maps: the ``classes`` output of a classifier, or the ``output`` of its modal filter."""
-    return spec.kind == "categorical" and bool(spec.class_names) and output in ("classes", "output")
 
 
 def _metrics(m) -> dict:
@@ -274,10 +223,6 @@ def gather_collection(run_dir: Path, name: str) -> Path | None:
                           description=f"Map products of the swathmill run {name!r}. {CAUTION_SHORT}")
     validate_collection_offline(col)
     return products / "collection.json"
-
-
-CAUTION_SHORT = ("Products are estimates with the accuracy measured in the run's report; confirm them in the "
-                 "field and use them under local rules and licensed practice.")
 
 
 # finishing a run ---------------------------------------------------------------------------------------

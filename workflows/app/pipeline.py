@@ -12,13 +12,14 @@ from pathlib import Path
 from typing import Any
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
 from pydantic import Field, field_validator
 
 from swathmill.tiles.executors import make_executor
+from swathmill.tiles.grid import Grid, Tiling
 from swathmill.tiles.ops import modal_filter_step
 from swathmill.tiles.run import ENGINE_VERSION, PlanError, Run, RunOptions, RunResult
 from swathmill.tiles.step import Step, StepError
@@ -28,7 +29,8 @@ from swathmill.workflows.methods.calibration import CalibrationConfig, Calibrati
 from swathmill.workflows.methods.calibration import build_steps as calibration_steps
 from swathmill.workflows.methods.classify import SamConfig, SffConfig, SvmConfig
 from swathmill.workflows.methods.classify import build_steps as classify_steps
-from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, Strict, config_hash, load_yaml, resolve, validate
+from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, config_hash, load_yaml, resolve, validate
+from swathmill.workflows.app.runview import StoreValid
 from swathmill.workflows.methods.endmembers import EndmemberExtractionConfig
 from swathmill.workflows.methods.endmembers import build_steps as endmember_steps
 from swathmill.workflows.methods.features import FeaturesConfig
@@ -40,21 +42,15 @@ from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_sam
 from swathmill.workflows.methods.unmix import UnmixConfig
 from swathmill.workflows.methods.unmix import build_steps as unmix_steps
 from swathmill.errors import SwathmillError
-
-SPLIT_VALIDATION = 2  # split code of validation samples in swathmill.workflows.inputs.reference
+from swathmill.workflows.params import Section
 
 __all__ = ["RunConfig", "InputError", "load_run_config", "build_steps", "run_config", "rebuild_report"]
-
-CAUTION = ("Every product is an estimate, with the accuracy measured against the reference samples named in "
-           "the report; confirm it in the field and use it under local rules and licensed practice before "
-           "any decision (drilling, spraying, water advisories).")
-
 
 class InputError(SwathmillError, ValueError):
     """Input data is missing or unusable; the message names the file, band, tile or key."""
 
 
-class ModalFilterConfig(Strict):
+class ModalFilterConfig(Section):
     """Majority filter of class maps (its own step per map, with a halo so tiles leave no seam)."""
 
     size: int = Field(3, ge=1, description="odd window side in pixels")
@@ -68,7 +64,7 @@ class ModalFilterConfig(Strict):
         return v
 
 
-class ClassifyConfig(Strict):
+class ClassifyConfig(Section):
     """Classification steps; each key takes one section or a list of them (distinct ``name`` s)."""
 
     sam: list[SamConfig] = Field(default_factory=list)
@@ -88,17 +84,17 @@ class CalibrationEntry(CalibrationConfig):
     property: str = Field(..., description="numeric column of the ground reference with the measurements")
 
 
-class AccuracyConfig(Strict):
+class AccuracyConfig(Section):
     area_unit: Literal["ha", "km2", "m2"] = Field("ha", description="unit of the area estimates")
     use_unassigned: bool = Field(False, description="also assess on samples with no train/validation split")
 
 
-class ReportConfig(Strict):
+class ReportConfig(Section):
     enabled: bool = True
     title: str | None = None
 
 
-class RunConfig(Strict):
+class RunConfig(Section):
     """The whole run. Relative paths are relative to the YAML file's folder."""
 
     name: str = Field(..., min_length=1, description="name of the run (used in product ids)")
@@ -137,85 +133,99 @@ def run_dir_of(cfg: RunConfig, config_path: Path) -> Path:
 
 @dataclass
 class Plan:
-    """The steps of a run after the mosaic, and what the accuracy assessment needs to know of them."""
+    """The whole run, built before anything runs: every step in order, from the mosaic on.
+
+    ``rows()`` lists each step's inputs, its outputs (where they are known before fitting), whether it
+    fits a model first, and its tiles on the mosaic's grid.
+    """
 
     steps: list[Step]
-    class_maps: list[str]  # "step/output" of every class map
-    abundance_maps: list[str]
-    quantity_maps: dict[str, str]  # "step/output" -> ground-reference property
-    calibrations: list[str]
+    grid: Grid
+    tile: int
+    calibrations: list[str] = field(default_factory=list)
 
-
-class StoreValid:
-    """valid(rows, cols) -> bool per sample, read from the mosaic store (for ground-reference checks)."""
-
-    def __init__(self, store: TileStore):
-        self.store = store
-
-    def __call__(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-        rows, cols = np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64)
-        if rows.size == 0:
-            return np.zeros(0, dtype=bool)
-        inside = (rows >= 0) & (cols >= 0) & (rows < self.store.grid.rows) & (cols < self.store.grid.cols)
-        out = np.zeros(rows.shape, dtype=bool)
-        if inside.any():
-            vals = self.store.array("valid").get_coordinate_selection((rows[inside], cols[inside]))
-            out[inside] = np.asarray(vals).astype(bool)
+    def rows(self) -> list[dict]:
+        """One JSON-able row per step: name, inputs, outputs (None until fitted), fit, tiles."""
+        out = []
+        for s in self.steps:
+            try:
+                tiles = len(Tiling(self.grid, self.tile, s.halo))
+            except ValueError:
+                tiles = None  # the engine refuses this tiling when the step runs, naming the step
+            out.append({"step": s.name, "inputs": dict(s.inputs),
+                        "outputs": None if callable(s.outputs) else list(s.outputs),
+                        "fit": s.fit is not None, "tiles": tiles})
         return out
+
+    def write(self, path: Path) -> None:
+        """The plan as JSON (``plan.json`` in the run directory)."""
+        path.write_text(json.dumps({"grid": self.grid.to_dict(), "tile": self.tile, "steps": self.rows()},
+                                   indent=1, default=str))
 
 
 def build_mosaic(cfg: RunConfig, base: Path) -> Step:
     return build_mosaic_step(cfg.mosaic, base)
 
 
-def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Plan:
-    """The steps after the mosaic, in order. Needs the finished mosaic (its grid and valid mask)."""
-    ctx = {"grid": mosaic_store.grid, "base_dir": base, "valid": StoreValid(mosaic_store)}
+def build_plan(cfg: RunConfig, base: Path) -> Plan:
+    """Every step of the run, built from the mosaic plan's grid before anything runs."""
+    mosaic = build_mosaic(cfg, base)
+    later = build_later_steps(cfg, base, mosaic.grid)
+    return Plan([mosaic, *later.steps], mosaic.grid, cfg.engine.tile, later.calibrations)
+
+
+def _class_names(step: Step) -> list[str]:
+    p = step.params
+    return list(getattr(p, "class_names", None) or p["class_names"])
+
+
+def _classify_steps(cl: ClassifyConfig, ctx: dict) -> list[Step]:
+    """The classifiers, then a modal filter of each class map the configuration names (default: all)."""
+    made: list[Step] = []
+    for section in [*cl.sam, *cl.sff, *cl.svm]:
+        made += classify_steps(section, ctx)
+    steps = list(made)
+    if cl.modal_filter is not None:
+        wanted = cl.modal_filter.steps
+        names = [s.name for s in made]
+        unknown = [n for n in (wanted or []) if n not in names]
+        if unknown:
+            raise InputError(f"classify.modal_filter.steps names {unknown}, which are not class-map steps "
+                             f"of this run ({names})")
+        for s in made:
+            if wanted is None or s.name in wanted:
+                steps.append(modal_filter_step(f"{s.name}_modal", f"{s.name}/classes", cl.modal_filter.size,
+                                               n_classes=len(_class_names(s))))
+    return steps
+
+
+def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Plan:
+    """The steps after the mosaic, in order, on the mosaic's grid (``grid``; a finished mosaic store is
+    also taken, and then its valid mask drops ground-reference samples on nodata at build time)."""
+    store = grid if isinstance(grid, TileStore) else None
+    grid = store.grid if store is not None else grid
+    ctx = {"grid": grid, "base_dir": base, "valid": StoreValid(store) if store is not None else None}
     steps: list[Step] = []
-    class_maps: list[str] = []
     if cfg.mnf is not None:
         steps += mnf_steps(cfg.mnf, "mosaic/reflectance")
     if cfg.endmembers is not None:
         steps += endmember_steps(cfg.endmembers, ctx)
     if cfg.classify is not None:
-        cl = cfg.classify
-        made = []
-        for section in [*cl.sam, *cl.sff, *cl.svm]:
-            made += classify_steps(section, ctx)
-        steps += made
-        class_maps += [f"{s.name}/classes" for s in made]
-        if cl.modal_filter is not None:
-            wanted = cl.modal_filter.steps
-            names = [s.name for s in made]
-            unknown = [n for n in (wanted or []) if n not in names]
-            if unknown:
-                raise InputError(f"classify.modal_filter.steps names {unknown}, which are not class-map steps "
-                                 f"of this run ({names})")
-            for s in made:
-                if wanted is None or s.name in wanted:
-                    n_classes = len(s.params["class_names"])
-                    steps.append(modal_filter_step(f"{s.name}_modal", f"{s.name}/classes", cl.modal_filter.size,
-                                                   n_classes=n_classes))
-                    class_maps.append(f"{s.name}_modal/output")
-    abundance_maps: list[str] = []
+        steps += _classify_steps(cfg.classify, ctx)
     if cfg.unmix is not None and not unmix_needs_transform(cfg):
-        made = unmix_steps(cfg.unmix, ctx)
-        steps += made
-        abundance_maps += [f"{s.name}/abundance" for s in made]
+        steps += unmix_steps(cfg.unmix, ctx)
     if cfg.features is not None:
         steps += feature_steps(cfg.features, ctx)
-    quantity_maps: dict[str, str] = {}
     calibrations: list[str] = []
     for entry in cfg.calibrations:
         if cfg.reference is None:
             raise InputError(f"calibrations[{entry.name}] needs the top-level 'reference' section (the "
                              "ground reference holding the measured values)")
-        samples = calibration_samples(cfg.reference, entry.property, mosaic_store, base)
+        samples = calibration_samples(cfg.reference, entry.property, store if store is not None else grid, base)
         section = CalibrationConfig.model_validate(entry.model_dump(exclude={"property"}))
         steps += calibration_steps(section, samples)
-        quantity_maps[f"{entry.name}/quantity"] = entry.property
         calibrations.append(entry.name)
-    return Plan(steps, class_maps, abundance_maps, quantity_maps, calibrations)
+    return Plan(steps, grid, cfg.engine.tile, calibrations)
 
 
 def unmix_needs_transform(cfg: RunConfig) -> bool:
@@ -254,17 +264,23 @@ def build_unmix_on_components(cfg: RunConfig, base: Path, run: Run) -> list[Step
                        cube_fwhm=None if fwhm is None or not np.all(np.isfinite(fwhm)) else list(fwhm))]
 
 
-def calibration_samples(ref: GroundReferenceConfig, prop: str, mosaic_store: TileStore, base: Path) -> CalibrationSamples:
-    """Training samples (split train or unassigned) with a finite value of ``prop``."""
+def calibration_samples(ref: GroundReferenceConfig, prop: str, grid: Grid | TileStore, base: Path) -> CalibrationSamples:
+    """Training samples (split train or unassigned) with a finite value of ``prop``.
+
+    ``grid`` is the mosaic's grid (at plan time: samples on nodata are dropped by the fit, which gathers
+    only valid pixels), or the finished mosaic store (its valid mask drops them here).
+    """
+    store = grid if isinstance(grid, TileStore) else None
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        table, _issues = load_samples(ref.model_copy(update={"properties": None}), mosaic_store.grid,
-                                      base_dir=base, valid=StoreValid(mosaic_store))
+        table, _issues = load_samples(ref.model_copy(update={"properties": None}),
+                                      store.grid if store is not None else grid, base_dir=base,
+                                      valid=StoreValid(store) if store is not None else None)
     if prop not in table.extras:
         raise InputError(f"ground reference {ref.path}: no numeric column {prop!r} (numeric columns: "
                          f"{sorted(table.extras)})")
     values = table.extras[prop]
-    keep = (table.split != SPLIT_VALIDATION) & np.isfinite(values)
+    keep = ~table.is_validation & np.isfinite(values)
     if not keep.any():
         raise InputError(f"ground reference {ref.path}: no training sample has a value of {prop!r}")
     t = table.subset(keep)
@@ -273,8 +289,8 @@ def calibration_samples(ref: GroundReferenceConfig, prop: str, mosaic_store: Til
 
 
 def build_steps(cfg: RunConfig, base: Path) -> list[Step]:
-    """The first phase of a run: the mosaic. Later steps are built once it is finished."""
-    return [build_mosaic(cfg, base)]
+    """Every step of the run, in order (the steps of :func:`build_plan`)."""
+    return build_plan(cfg, base).steps
 
 
 def _executor(ex: ExecutionConfig):
@@ -298,15 +314,11 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     out = out or sys.stdout
     config_path = Path(config_path).resolve()
     cfg, data = load_run_config(config_path)
-    overrides = {k: v for k, v in {"executor": executor, "workers": workers, "address": address}.items() if v}
-    if overrides:
-        cfg = cfg.model_copy(update={"execution": cfg.execution.model_copy(update=overrides)})
-        if address:
-            cfg = cfg.model_copy(update={"execution": cfg.execution.model_copy(update={"executor": "dask"})})
+    cfg = _with_overrides(cfg, executor=executor, workers=workers, address=address)
     base = config_path.parent
     run_dir = run_dir_of(cfg, config_path)
     try:
-        first = build_steps(cfg, base)
+        plan = build_plan(cfg, base)
     except (StepError, FileNotFoundError, OSError, ValueError) as exc:
         raise InputError(str(exc)) from None
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
@@ -322,35 +334,12 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     try:
         with Run(run_dir, opts, progress=progress) as run:
             _freeze_config(run, config_path, cfg)
+            plan.write(run.dir / "plan.json")
             ex = _executor(cfg.execution)
             try:
                 if getattr(ex, "dashboard", None):
                     progress.message(f"dashboard: {ex.dashboard}")
-                try:
-                    result = run.execute(first, ex)
-                    plan = None
-                    if result.ok:
-                        write_footprints(first[0], run.dir / "footprints.geojson")
-                        try:
-                            plan = build_later_steps(cfg, base, run.known["mosaic"][2])
-                        except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-                            raise InputError(str(exc)) from None
-                        more = run.execute(plan.steps, ex)
-                        result.steps += more.steps
-                        result.messages += more.messages
-                        result.stopped_at = more.stopped_at
-                        if more.ok and unmix_needs_transform(cfg):
-                            try:
-                                last = build_unmix_on_components(cfg, base, run)
-                            except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-                                raise InputError(str(exc)) from None
-                            more = run.execute(last, ex)
-                            result.steps += more.steps
-                            result.messages += more.messages
-                            result.stopped_at = more.stopped_at
-                            plan.abundance_maps += [f"{s.name}/abundance" for s in last]
-                except (PlanError, StepError) as exc:
-                    raise InputError(str(exc)) from None
+                result = _execute(run, plan, cfg, base, ex)
                 _after_run(run, cfg, result, plan, base, progress)
             finally:
                 ex.close()
@@ -358,6 +347,36 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
         progress.close()
     print(f"run directory: {run_dir}", file=out)
     return _summarize(result, time.perf_counter() - t0, run_dir, out)
+
+
+def _with_overrides(cfg: RunConfig, **overrides: Any) -> RunConfig:
+    """The configuration with the command line's execution overrides (an address implies Dask)."""
+    overrides = {k: v for k, v in overrides.items() if v}
+    if overrides:
+        cfg = cfg.model_copy(update={"execution": cfg.execution.model_copy(update=overrides)})
+        if overrides.get("address"):
+            cfg = cfg.model_copy(update={"execution": cfg.execution.model_copy(update={"executor": "dask"})})
+    return cfg
+
+
+def _execute(run: Run, plan: Plan, cfg: RunConfig, base: Path, ex) -> RunResult:
+    """Every step of the plan in one call; the mosaic's footprints once it is finished."""
+    try:
+        result = run.execute(plan.steps, ex)
+        if "mosaic" in run.known:
+            write_footprints(plan.steps[0], run.dir / "footprints.geojson")
+        if result.ok and unmix_needs_transform(cfg):
+            try:
+                last = build_unmix_on_components(cfg, base, run)
+            except (StepError, FileNotFoundError, OSError, ValueError) as exc:
+                raise InputError(str(exc)) from None
+            more = run.execute(last, ex)
+            result.steps += more.steps
+            result.messages += more.messages
+            result.stopped_at = more.stopped_at
+    except (PlanError, StepError) as exc:
+        raise InputError(str(exc)) from None
+    return result
 
 
 def _freeze_config(run: Run, config_path: Path, cfg: RunConfig) -> None:

@@ -27,6 +27,7 @@ from typing import Literal, Mapping, Sequence
 
 import numpy as np
 
+from swathmill.workflows.app.caution import CAUTION
 from swathmill.workflows.methods.accuracy import AreaEstimate, ClassAccuracy, regression_metrics
 
 __all__ = [
@@ -48,14 +49,6 @@ __all__ = [
 ]
 
 REPORT_NAME = "report.html"
-
-CAUTION = (
-    "Every product of this run is an estimate. Its reliability is the accuracy measured in this report "
-    "against the reference samples, and it holds only where those samples represent the ground. "
-    "Confirm the maps in the field before acting on them, and use them under the local rules and "
-    "within licensed professional practice (for example in exploration, environmental or "
-    "agricultural decisions); they do not replace either."
-)
 
 Extent = tuple[float, float, float, float]
 """(left, right, bottom, top) in the mosaic's CRS, as matplotlib's ``imshow`` takes it."""

@@ -12,10 +12,12 @@ import numpy as np
 from swathmill.tiles.ledger import Ledger
 from swathmill.tiles.store import TileStore, decode
 
+from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine,
+                                            InputsSection, Quicklook, ReportSummary, ScatterView, SpectraView,
+                                            StepTiming, build_report)
+from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, is_class_map, with_role
 from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
-from swathmill.workflows.app.finish import ACCURACY_FILE, RunView, is_class_map
-from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine, InputsSection,
-                     Quicklook, ReportSummary, ScatterView, SpectraView, StepTiming, build_report)
+from swathmill.workflows.roles import Role
 
 __all__ = ["report_from_run"]
 
@@ -79,22 +81,19 @@ def _inputs(view: RunView, mosaic: TileStore, background: np.ndarray | None) -> 
                          resolution=mosaic.grid.res[0], background=bg, extent=_extent(mosaic))
 
 
+OUTSIDE_RANGE = 2
+"""Value of a calibration's range mask outside the range of its samples (1 inside, 0 no data)."""
+
+
 def report_from_run(view: RunView, title: str | None = None) -> Path:
+    """Fill the report's summary from a run directory and write ``report.html``; returns its path."""
     cfg = view.config
     summary = ReportSummary(title=title or (cfg.get("report") or {}).get("title") or f"swathmill run {cfg['name']}",
                             run_name=cfg["name"], created=time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()))
-    notes = summary.notes
     incomplete = [n for n in view.steps if not view.complete(n)]
     if incomplete:
-        notes.append(f"partial run: steps not finished: {', '.join(incomplete)}; their maps are left out")
-    mosaic = view.store("mosaic") if view.complete("mosaic") else None
-    if mosaic is not None:
-        summary.quicklook = _quicklook(view, mosaic)
-        summary.inputs = _inputs(view, mosaic, summary.quicklook.rgb if summary.quicklook else None)
-        mm = view.model("mosaic")
-        if mm and "overlap_stats" in mm:
-            notes.append(f"brightness matching: {json.dumps(mm['overlap_stats'])[:600]}")
-
+        summary.notes.append(f"partial run: steps not finished: {', '.join(incomplete)}; their maps are left out")
+    _mosaic(view, summary)
     for name in view.steps:
         if not view.complete(name) or name == "mosaic":
             continue
@@ -102,52 +101,8 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
         if store is None:
             continue
         model = view.model(name)
-        for output, spec in store.specs.items():
-            if output == "components" and model is not None and "eigenvalues" in model:
-                lam = np.asarray(model["eigenvalues"], dtype=float)
-                method = str(model.get("method", "mnf"))
-                summary.eigenvalues.append(EigenvalueCurve(
-                    values=lam, kept=int(model.get("n_components", len(lam))),
-                    title=f"{method.upper()} eigenvalues ({name})",
-                    ylabel="eigenvalue (SNR + 1)" if method == "mnf" else "variance"))
-            elif is_class_map(output, spec):
-                cls = _thumb(store, output)[0]
-                summary.class_maps.append(ClassMapView(
-                    name=f"{name}/{output}", classes=np.nan_to_num(cls, nan=0).astype(np.int32),
-                    class_names=list(spec.class_names), colors=[tuple(c) for c in spec.colors] if spec.colors else None,
-                    extent=_extent(store)))
-            elif output == "abundance":
-                data = _thumb(store, output)
-                for b, band in enumerate(spec.bands):
-                    summary.continuous_maps.append(ContinuousMapView(
-                        name=f"{name}: {band}", values=data[b], units="fraction", kind="abundance", vmin=0.0,
-                        vmax=1.0, extent=_extent(store)))
-            elif output == "rmse" and "abundance" in store.specs:
-                summary.continuous_maps.append(ContinuousMapView(
-                    name=f"{name}: residual RMSE", values=_thumb(store, output)[0], units="reflectance",
-                    kind="other", extent=_extent(store)))
-            elif output == "quantity":
-                outside = None
-                if "out_of_range" in store.specs:
-                    outside = _thumb(store, "out_of_range")[0] == 2
-                units = str(spec.attrs.get("units", ""))
-                summary.continuous_maps.append(ContinuousMapView(
-                    name=f"{name}: {spec.bands[0]}", values=_thumb(store, output)[0], units=units, kind="quantity",
-                    extent=_extent(store), outside=outside,
-                    note="hatched: outside the range of the calibration samples"))
-                if "uncertainty" in store.specs:
-                    summary.continuous_maps.append(ContinuousMapView(
-                        name=f"{name}: uncertainty (1 sigma)", values=_thumb(store, "uncertainty")[0], units=units,
-                        kind="uncertainty", extent=_extent(store)))
-        if model is not None and "cv_predicted" in model and "observed" in model:
-            summary.scatters.append(ScatterView.from_calibration(name, model))
-        if model is not None and "spectra" in model and "wavelengths" in model and "names" in model:
-            spectra = np.asarray(model["spectra"], dtype=float)
-            wl = np.asarray(model["wavelengths"], dtype=float)
-            if spectra.ndim == 2 and spectra.shape[-1] == wl.size:
-                summary.spectra.append(SpectraView(
-                    title=f"endmembers found by {name} ({model.get('method', '')})", wavelengths=wl,
-                    spectra={str(n): spectra[i] for i, n in enumerate(model["names"])}, kind="endmember"))
+        _step_maps(name, store, model, summary)
+        _step_models(name, model, summary)
     _library_spectra(view, summary)
     _accuracy(view, summary)
     _timings(view, summary)
@@ -157,6 +112,83 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
         **{f"step {n}": s["key"] for n, s in view.steps.items()},
     }
     return build_report(view.dir, summary, max_pixels=MAX_PIXELS)
+
+
+def _mosaic(view: RunView, summary: ReportSummary) -> None:
+    """The quicklook, the input flight lines and the brightness-matching note of a finished mosaic."""
+    mosaic = view.store("mosaic") if view.complete("mosaic") else None
+    if mosaic is None:
+        return
+    summary.quicklook = _quicklook(view, mosaic)
+    summary.inputs = _inputs(view, mosaic, summary.quicklook.rgb if summary.quicklook else None)
+    mm = view.model("mosaic")
+    if mm and "overlap_stats" in mm:
+        summary.notes.append(f"brightness matching: {json.dumps(mm['overlap_stats'])[:600]}")
+
+
+def _step_maps(name: str, store: TileStore, model: dict | None, summary: ReportSummary) -> None:
+    """The maps of one step's store, chosen by the role of each output."""
+    specs = store.specs
+    has_abundance = bool(with_role(specs, Role.ABUNDANCE))
+    for output, spec in specs.items():
+        if spec.role == Role.COMPONENTS and model is not None and "eigenvalues" in model:
+            lam = np.asarray(model["eigenvalues"], dtype=float)
+            method = str(model.get("method", "mnf"))
+            summary.eigenvalues.append(EigenvalueCurve(
+                values=lam, kept=int(model.get("n_components", len(lam))),
+                title=f"{method.upper()} eigenvalues ({name})",
+                ylabel="eigenvalue (SNR + 1)" if method == "mnf" else "variance"))
+        elif is_class_map(spec):
+            cls = _thumb(store, output)[0]
+            summary.class_maps.append(ClassMapView(
+                name=f"{name}/{output}", classes=np.nan_to_num(cls, nan=0).astype(np.int32),
+                class_names=list(spec.class_names), colors=[tuple(c) for c in spec.colors] if spec.colors else None,
+                extent=_extent(store)))
+        elif spec.role == Role.ABUNDANCE:
+            data = _thumb(store, output)
+            for b, band in enumerate(spec.bands):
+                summary.continuous_maps.append(ContinuousMapView(
+                    name=f"{name}: {band}", values=data[b], units="fraction", kind="abundance", vmin=0.0,
+                    vmax=1.0, extent=_extent(store)))
+        elif spec.role == Role.DIAGNOSTIC and has_abundance and _is_residual(spec):
+            summary.continuous_maps.append(ContinuousMapView(
+                name=f"{name}: residual RMSE", values=_thumb(store, output)[0], units="reflectance",
+                kind="other", extent=_extent(store)))
+        elif spec.role == Role.QUANTITY:
+            _quantity_maps(name, store, output, spec, summary)
+
+
+def _is_residual(spec) -> bool:
+    """The unmixing fit's residual: its one-band diagnostic carrying units (the abundance sum has none)."""
+    return len(spec.bands) == 1 and "units" in spec.attrs
+
+
+def _quantity_maps(name: str, store: TileStore, output: str, spec, summary: ReportSummary) -> None:
+    """A calibrated quantity, hatched outside its samples' range (the store's mask), and its uncertainty."""
+    masks = with_role(store.specs, Role.MASK)
+    outside = _thumb(store, masks[0])[0] == OUTSIDE_RANGE if masks else None
+    units = str(spec.attrs.get("units", ""))
+    summary.continuous_maps.append(ContinuousMapView(
+        name=f"{name}: {spec.bands[0]}", values=_thumb(store, output)[0], units=units, kind="quantity",
+        extent=_extent(store), outside=outside,
+        note="hatched: outside the range of the calibration samples"))
+    for unc in with_role(store.specs, Role.UNCERTAINTY):
+        summary.continuous_maps.append(ContinuousMapView(
+            name=f"{name}: uncertainty (1 sigma)", values=_thumb(store, unc)[0], units=units,
+            kind="uncertainty", extent=_extent(store)))
+
+
+def _step_models(name: str, model: dict | None, summary: ReportSummary) -> None:
+    """Figures from a step's fitted model: calibration scatter, endmember spectra found in the image."""
+    if model is not None and "cv_predicted" in model and "observed" in model:
+        summary.scatters.append(ScatterView.from_calibration(name, model))
+    if model is not None and "spectra" in model and "wavelengths" in model and "names" in model:
+        spectra = np.asarray(model["spectra"], dtype=float)
+        wl = np.asarray(model["wavelengths"], dtype=float)
+        if spectra.ndim == 2 and spectra.shape[-1] == wl.size:
+            summary.spectra.append(SpectraView(
+                title=f"endmembers found by {name} ({model.get('method', '')})", wavelengths=wl,
+                spectra={str(n): spectra[i] for i, n in enumerate(model["names"])}, kind="endmember"))
 
 
 def _version() -> str:

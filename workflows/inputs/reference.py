@@ -45,6 +45,7 @@ import csv
 import io
 import math
 import warnings
+from enum import IntEnum
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Literal, Mapping, Sequence
@@ -62,6 +63,7 @@ __all__ = [
     "GroundReference",
     "SampleTable",
     "SampleIssue",
+    "Split",
     "SPLIT_CODES",
     "read_reference",
     "samples_on_grid",
@@ -70,8 +72,16 @@ __all__ = [
     "load_samples",
 ]
 
-SPLIT_CODES = {"": 0, "train": 1, "validation": 2}
-"""Sample split codes: 0 unassigned, 1 train, 2 validation."""
+class Split(IntEnum):
+    """The side of the train/validation split a sample is on, as stored in :attr:`SampleTable.split`."""
+
+    UNASSIGNED = 0
+    TRAIN = 1
+    VALIDATION = 2
+
+
+SPLIT_CODES = {"": Split.UNASSIGNED, "train": Split.TRAIN, "validation": Split.VALIDATION}
+"""Split codes of the split column's values (see :class:`Split`)."""
 _SPLIT_ALIASES = {"": "", "train": "train", "training": "train", "validation": "validation",
                   "valid": "validation", "val": "validation"}
 
@@ -163,6 +173,21 @@ class SampleTable:
 
     def __len__(self) -> int:
         return len(self.row)
+
+    @property
+    def is_validation(self) -> np.ndarray:
+        """(n,) bool: the sample is on the validation side of the split."""
+        return self.split == Split.VALIDATION
+
+    @property
+    def is_training(self) -> np.ndarray:
+        """(n,) bool: the sample is on the training side of the split."""
+        return self.split == Split.TRAIN
+
+    @property
+    def is_unassigned(self) -> np.ndarray:
+        """(n,) bool: the sample's feature names no side of the split."""
+        return self.split == Split.UNASSIGNED
 
     _COLS = (("row", np.int64), ("col", np.int64), ("label", np.int32), ("group", np.int64),
              ("feature", np.int64), ("split", np.uint8))
