@@ -1,11 +1,11 @@
-"""The one caution text every face of a run shows (report, run summary, STAC collection, README).
+"""The one place of the caution texts every product carries: a long one for the report, a short one for metadata.
 
-Products are estimates: their reliability is the accuracy measured against the reference samples,
-and they are to be confirmed in the field and used under local rules and licensed practice.
+Products are estimates; both texts say so, and that they are to be confirmed in the field and used
+under local rules and licensed practice.
 """
 from __future__ import annotations
 
-__all__ = ["CAUTION"]
+__all__ = ["CAUTION", "CAUTION_SHORT"]
 
 CAUTION = (
     "Every product of this run is an estimate. Its reliability is the accuracy measured in this report "
@@ -14,3 +14,8 @@ CAUTION = (
     "within licensed professional practice (for example in exploration, environmental or "
     "agricultural decisions); they do not replace either."
 )
+"""The report's caution (shown at its top)."""
+
+CAUTION_SHORT = ("Products are estimates with the accuracy measured in the run's report; confirm them in the "
+                 "field and use them under local rules and licensed practice.")
+"""The caution of the STAC collection's description."""

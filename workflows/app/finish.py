@@ -18,7 +18,7 @@ from swathmill.tiles.grid import Tiling
 from swathmill.tiles.step import OutputSpec
 from swathmill.tiles.store import TileStore, decode
 
-from swathmill.workflows.app.caution import CAUTION_SHORT
+from swathmill.workflows.caution import CAUTION_SHORT
 from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, StoreValid, is_class_map, open_run, with_role
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
 from swathmill.workflows.methods.accuracy import (AccuracyError, abundance_metrics, area_estimate, class_accuracy,

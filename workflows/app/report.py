@@ -27,7 +27,7 @@ from typing import Literal, Mapping, Sequence
 
 import numpy as np
 
-from swathmill.workflows.app.caution import CAUTION
+from swathmill.workflows.caution import CAUTION
 from swathmill.workflows.methods.accuracy import AreaEstimate, ClassAccuracy, regression_metrics
 
 __all__ = [
