@@ -259,3 +259,13 @@ def test_retrieval_on_spectra_outside_the_table():
     err = np.abs(est_l[:, 0] - truth[:, 0])
     hi = sd_l[:, 0] > np.median(sd_l[:, 0])
     assert err[hi].mean() > err[~hi].mean()
+
+
+def test_run_config_takes_a_canopy_section():
+    from swathmill.workflows.app.pipeline import RunConfig
+
+    cfg = RunConfig.model_validate({"name": "r", "mosaic": {"lines": ["a.tif"]},
+                                    "canopy": {"lut_size": 500, "geometry": {"sun_zenith": 42.0}}})
+    assert cfg.canopy.geometry.sun_zenith == 42.0 and cfg.canopy.input == "mosaic/reflectance"
+    with pytest.raises(ValueError, match="sun_zenith"):
+        RunConfig.model_validate({"name": "r", "mosaic": {"lines": ["a.tif"]}, "canopy": {"geometry": {"sun_zenith": 95}}})

@@ -39,6 +39,8 @@ from swathmill.workflows.app.progress import make_progress
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
 from swathmill.workflows.methods.unmix import UnmixConfig
 from swathmill.workflows.methods.unmix import build_steps as unmix_steps
+from swathmill.workflows.methods.rtm.step import CanopyConfig
+from swathmill.workflows.methods.rtm.step import build_steps as canopy_steps
 from swathmill.errors import SwathmillError
 
 SPLIT_VALIDATION = 2  # split code of validation samples in swathmill.workflows.inputs.reference
@@ -113,6 +115,7 @@ class RunConfig(Strict):
     classify: ClassifyConfig | None = None
     unmix: UnmixConfig | None = None
     features: FeaturesConfig | None = None
+    canopy: CanopyConfig | None = Field(None, description="leaf and canopy properties by model inversion")
     calibrations: list[CalibrationEntry] = Field(default_factory=list)
     accuracy: AccuracyConfig = AccuracyConfig()
     report: ReportConfig = ReportConfig()
@@ -204,6 +207,8 @@ def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Pl
         abundance_maps += [f"{s.name}/abundance" for s in made]
     if cfg.features is not None:
         steps += feature_steps(cfg.features, ctx)
+    if cfg.canopy is not None:
+        steps += canopy_steps(cfg.canopy, ctx)
     quantity_maps: dict[str, str] = {}
     calibrations: list[str] = []
     for entry in cfg.calibrations:
