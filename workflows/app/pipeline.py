@@ -41,6 +41,8 @@ from swathmill.workflows.app.progress import make_progress
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, load_samples
 from swathmill.workflows.methods.unmix import UnmixConfig
 from swathmill.workflows.methods.unmix import build_steps as unmix_steps
+from swathmill.workflows.methods.rtm.step import CanopyConfig
+from swathmill.workflows.methods.rtm.step import build_steps as canopy_steps
 from swathmill.errors import SwathmillError
 from swathmill.workflows.params import Section
 
@@ -109,6 +111,7 @@ class RunConfig(Section):
     classify: ClassifyConfig | None = None
     unmix: UnmixConfig | None = None
     features: FeaturesConfig | None = None
+    canopy: CanopyConfig | None = Field(None, description="leaf and canopy properties by model inversion")
     calibrations: list[CalibrationEntry] = Field(default_factory=list)
     accuracy: AccuracyConfig = AccuracyConfig()
     report: ReportConfig = ReportConfig()
@@ -216,6 +219,8 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
         steps += unmix_steps(cfg.unmix, ctx)
     if cfg.features is not None:
         steps += feature_steps(cfg.features, ctx)
+    if cfg.canopy is not None:
+        steps += canopy_steps(cfg.canopy, ctx)
     calibrations: list[str] = []
     for entry in cfg.calibrations:
         if cfg.reference is None:

@@ -1,0 +1,196 @@
+"""The look-up table and the two inversions: table search and a hybrid regressor trained on the table.
+
+Pure numpy / scikit-learn, no I/O, no engine imports.
+
+Table
+    :func:`sample_parameters` draws ``size`` parameter sets by Latin hypercube sampling (scipy.stats.qmc)
+    over uniform ranges; the draw depends only on the ranges, the size and the seed, so entry ``j`` is
+    the same whoever simulates it. :func:`simulate_entries` runs the forward model for a subset of the
+    entries and convolves to the campaign's bands.
+
+Search (:func:`lut_search`)
+    The cost of entry ``e`` for pixel ``x`` over ``b`` bands is the RMSE,
+    ``sqrt((||x||^2 - 2 x.L_e + ||L_e||^2) / b)``, computed for a chunk of pixels against the whole table
+    by one matrix product. The estimate is the mean of the parameters of the ``k`` best entries
+    (``k = max(1, round(fraction * size))``), their standard deviation the uncertainty, and the RMSE of
+    the best entry the fit diagnostic.
+
+Hybrid (:func:`train_hybrid`, :func:`predict_hybrid`)
+    A scikit-learn random forest trained on the table's spectra with added noise (multiplicative and
+    additive Gaussian, seeded) against the standardised parameters (so no parameter dominates the
+    multi-output splits). Its uncertainty is the standard deviation of the individual trees' predictions:
+    the spread of trees grown on bootstrap samples of the noisy table, a measure of how well the table
+    constrains the pixel, not a calibrated error (documented in the README).
+"""
+from __future__ import annotations
+
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from .forward import Geometry, RtmError, simulate_canopy, to_bands
+
+__all__ = [
+    "TARGETS",
+    "UNITS",
+    "sample_parameters",
+    "simulate_entries",
+    "lut_search",
+    "add_noise",
+    "train_hybrid",
+    "predict_hybrid",
+    "hybrid_to_bytes",
+    "hybrid_from_bytes",
+]
+
+TARGETS = ("lai", "cab", "cw", "cm")  # the retrieved parameters, in output band order
+UNITS = {"lai": "m2 m-2", "cab": "ug cm-2", "cw": "g cm-2", "cm": "g cm-2"}
+
+
+def sample_parameters(ranges: Mapping[str, tuple[float, float]], size: int, seed: int) -> tuple[list[str], np.ndarray]:
+    """Latin hypercube sample of ``size`` parameter sets over uniform ``ranges`` (name -> (low, high)).
+
+    A range with low == high fixes the parameter. Returns (names in sorted order, array (size, n_names)).
+    """
+    from scipy.stats import qmc
+
+    if size < 1:
+        raise RtmError(f"the table needs at least one entry. Got size={size}")
+    names = sorted(ranges)
+    lo = np.array([float(ranges[k][0]) for k in names])
+    hi = np.array([float(ranges[k][1]) for k in names])
+    bad = [k for k, a, b in zip(names, lo, hi) if not (np.isfinite(a) and np.isfinite(b) and a <= b)]
+    if bad:
+        raise RtmError(f"parameter ranges must be finite (low, high) with low <= high; wrong: {bad}")
+    unit = qmc.LatinHypercube(d=len(names), seed=np.random.default_rng(seed)).random(size)
+    return names, lo + unit * (hi - lo)
+
+
+def simulate_entries(names: Sequence[str], table: np.ndarray, rows: np.ndarray, geometry: Geometry,
+                     wavelengths: np.ndarray, fwhm: np.ndarray | None) -> np.ndarray:
+    """Simulated reflectance (len(rows), m) of table entries ``rows`` at the campaign's bands."""
+    rows = np.asarray(rows, dtype=np.int64)
+    if rows.size == 0:
+        return np.empty((0, np.asarray(wavelengths).size))
+    p = {k: table[rows, i] for i, k in enumerate(names)}
+    spectra = simulate_canopy(geometry=geometry, **p)
+    return to_bands(spectra, wavelengths, fwhm)
+
+
+def lut_search(x: np.ndarray, spectra: np.ndarray, params: np.ndarray, fraction: float, *,
+               chunk: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Look-up table search by RMSE over the bands.
+
+    Parameters
+    ----------
+    x : (p, b) pixel spectra (finite).
+    spectra : (e, b) table spectra.
+    params : (e, q) table parameters.
+    fraction : share of the best entries averaged (at least one entry).
+    chunk : pixels per matrix product (default: keeps the (chunk, e) cost matrix near 64 MB).
+
+    Returns
+    -------
+    estimate (p, q), spread (p, q) (standard deviation over the best entries, ddof=0), best RMSE (p,).
+    """
+    x = np.asarray(x, dtype=np.float64)
+    L = np.asarray(spectra, dtype=np.float64)
+    P = np.asarray(params, dtype=np.float64)
+    if x.ndim != 2 or L.ndim != 2 or x.shape[1] != L.shape[1]:
+        raise RtmError(f"pixels (p, b) and table spectra (e, b) must share their band count. "
+                       f"Got {x.shape} and {L.shape}")
+    if P.shape[0] != L.shape[0]:
+        raise RtmError(f"table parameters have {P.shape[0]} rows for {L.shape[0]} spectra")
+    if not (0.0 < fraction <= 1.0):
+        raise RtmError(f"fraction must lie in (0, 1]. Got {fraction}")
+    e, b = L.shape
+    k = max(1, int(round(fraction * e)))
+    chunk = chunk or max(16, int(8_000_000 // max(e, 1)))
+    l2 = np.einsum("eb,eb->e", L, L)
+    est = np.empty((x.shape[0], P.shape[1]))
+    spread = np.empty_like(est)
+    best = np.empty(x.shape[0])
+    for s in range(0, x.shape[0], chunk):
+        xs = x[s:s + chunk]
+        cost = xs @ L.T
+        cost *= -2.0
+        cost += l2[None, :]
+        cost += np.einsum("pb,pb->p", xs, xs)[:, None]
+        np.maximum(cost, 0.0, out=cost)
+        if k < e:
+            idx = np.argpartition(cost, k - 1, axis=1)[:, :k]
+        else:
+            idx = np.broadcast_to(np.arange(e), (xs.shape[0], e))
+        sel = P[idx]  # (c, k, q)
+        est[s:s + chunk] = sel.mean(axis=1)
+        spread[s:s + chunk] = sel.std(axis=1)
+        best[s:s + chunk] = np.sqrt(cost.min(axis=1) / b)
+    return est, spread, best
+
+
+def add_noise(spectra: np.ndarray, relative: float, absolute: float, seed: int) -> np.ndarray:
+    """``spectra * (1 + relative * N1) + absolute * N2`` with independent standard normal N1, N2 (seeded)."""
+    rng = np.random.default_rng(seed)
+    s = np.asarray(spectra, dtype=np.float64)
+    return s * (1.0 + relative * rng.standard_normal(s.shape)) + absolute * rng.standard_normal(s.shape)
+
+
+def _scaler(params: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    mu = params.mean(axis=0)
+    sd = params.std(axis=0)
+    return mu, np.where(sd > 0, sd, 1.0)
+
+
+def train_hybrid(spectra: np.ndarray, params: np.ndarray, *, trees: int, min_leaf: int, training_size: int,
+                 noise_relative: float, noise_absolute: float, seed: int) -> dict[str, Any]:
+    """Train the hybrid regressor on (up to ``training_size`` entries of) the noisy table.
+
+    Returns {"forest": RandomForestRegressor, "mean": (q,), "scale": (q,)}: the forest predicts the
+    standardised parameters ``(params - mean) / scale``.
+    """
+    from sklearn.ensemble import RandomForestRegressor
+
+    L = np.asarray(spectra, dtype=np.float64)
+    P = np.asarray(params, dtype=np.float64)
+    rng = np.random.default_rng(seed)
+    rows = np.sort(rng.choice(L.shape[0], size=min(training_size, L.shape[0]), replace=False))
+    X = add_noise(L[rows], noise_relative, noise_absolute, seed + 1)
+    mu, sd = _scaler(P[rows])
+    forest = RandomForestRegressor(n_estimators=trees, min_samples_leaf=min_leaf, random_state=seed, n_jobs=1)
+    forest.fit(X, (P[rows] - mu) / sd)
+    return {"forest": forest, "mean": mu, "scale": sd}
+
+
+def predict_hybrid(model: Mapping[str, Any], x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Estimate (p, q) and uncertainty (p, q): mean and standard deviation of the trees' predictions."""
+    x = np.asarray(x, dtype=np.float64)
+    forest = model["forest"]
+    mu, sd = np.asarray(model["mean"]), np.asarray(model["scale"])
+    per_tree = np.stack([t.predict(x).reshape(x.shape[0], -1) for t in forest.estimators_])
+    # the forest's prediction is the mean of its trees' (scikit-learn's RandomForestRegressor.predict)
+    return per_tree.mean(axis=0) * sd + mu, per_tree.std(axis=0) * sd
+
+
+def hybrid_to_bytes(model: Mapping[str, Any]) -> np.ndarray:
+    """The forest serialised with skops (no pickle), as uint8 for the engine's model file."""
+    import skops.io as sio
+
+    return np.frombuffer(sio.dumps(model["forest"]), dtype=np.uint8).copy()
+
+
+TRUSTED = ("sklearn.ensemble._forest.RandomForestRegressor", "sklearn.tree._classes.DecisionTreeRegressor",
+           "sklearn.tree._tree.Tree")
+
+
+def hybrid_from_bytes(raw: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> dict[str, Any]:
+    """Load a forest saved by :func:`hybrid_to_bytes`, refusing any type outside skops' own trusted set
+    and :data:`TRUSTED`."""
+    import skops.io as sio
+
+    data = np.asarray(raw, dtype=np.uint8).tobytes()
+    untrusted = sio.get_untrusted_types(data=data)
+    refused = sorted(set(untrusted) - set(TRUSTED))
+    if refused:
+        raise RtmError(f"the hybrid model names types that are not trusted: {refused}; refusing to load it")
+    forest = sio.loads(data, trusted=list(untrusted))
+    return {"forest": forest, "mean": np.asarray(mean, dtype=np.float64), "scale": np.asarray(scale, dtype=np.float64)}
