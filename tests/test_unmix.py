@@ -330,7 +330,7 @@ def test_config_and_build_steps(tmp_path):
     write_library(lib, tmp_path / "lib.csv")
     cfg = UnmixConfig.model_validate({"method": "sum_to_one", "shade": True, "endmembers": {"library": "lib.csv"}})
     steps = build_steps(cfg, {"base_dir": tmp_path})
-    assert steps[0].name == "unmix" and steps[0].params["shade"] is True
+    assert steps[0].name == "unmix" and steps[0].params.settings.shade is True
     img = UnmixConfig.model_validate({"endmembers": {"image": {"method": "vca", "n_endmembers": 4,
                                                                "reduced": "mnf/components"}}})
     step = build_steps(img)[0]
