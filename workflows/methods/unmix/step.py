@@ -40,6 +40,7 @@ from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepEr
 from swathmill.workflows.inputs.library import SpectralLibrary, read_library, resample_library
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable, load_samples
 from swathmill.workflows.methods import endmembers as _em
+from swathmill.workflows.methods.mnf import FORWARD_TRANSFORM
 from swathmill.workflows.methods.unmix.solver import (METHODS, SUM_TO_ONE, IllConditionedWarning, LinearTransform,
                                                       Method, UnmixError, Unmixer, _prepare_endmembers,
                                                       check_endmembers, unmix_cube)
@@ -47,7 +48,6 @@ from swathmill.workflows.params import Section, check_ref, ctx_get
 from swathmill.workflows.roles import Role
 
 __all__ = [
-    "FORWARD_TRANSFORM",
     "UnmixSettings",
     "ComponentTransform",
     "UnmixParams",
@@ -59,7 +59,6 @@ __all__ = [
 ]
 
 X = "x"  # input alias of the data to unmix
-FORWARD_TRANSFORM = "forward_transform"  # output attribute of MNF/PCA components holding their transform
 Source = Literal["library", "samples", "image", "endmembers"]
 _UNMIXERS: "OrderedDict[str, Unmixer]" = OrderedDict()
 
