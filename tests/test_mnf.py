@@ -536,6 +536,14 @@ def test_step_declarations_and_kernels(rng):
     block = next(_blocks(cube, np.ones((20, 20), bool), 20, fwd.params))
     y = fwd.kernel(block, model)["components"]
     np.testing.assert_array_equal(y, forward(cube, model, 3))
+    # The forward transform travels in the components' attributes, with the cube's wavelengths and FWHM:
+    # (x[band_index] - mean) @ matrix, by plain numpy, gives the components.
+    ft = spec.attrs["forward_transform"]
+    assert ft["n_components"] == 3 and ft["bands"] == list(meta["cube"].spec.bands)
+    assert ft["wavelength"] == list(meta["cube"].spec.coords["wavelength"]) and ft["fwhm"] == [10.0] * 6
+    flat = cube.reshape(6, -1).T.astype(np.float64)
+    by_attrs = ((flat[:, ft["band_index"]] - np.array(ft["mean"])) @ np.array(ft["matrix"])).T.reshape(3, 20, 20)
+    np.testing.assert_allclose(y, by_attrs, rtol=1e-5, atol=1e-5 * np.abs(by_attrs).max())
     # The denoising step gets the inverse through the components' attributes.
     dmeta = {"components": InputMeta("mnf/components", grid, spec), "cube": meta["cube"]}
     out_spec = den.resolve_outputs(dmeta, None)["reflectance"]

@@ -198,7 +198,7 @@ def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Pl
                                                    n_classes=n_classes))
                     class_maps.append(f"{s.name}_modal/output")
     abundance_maps: list[str] = []
-    if cfg.unmix is not None and not unmix_needs_transform(cfg):
+    if cfg.unmix is not None:  # on MNF/PCA components it takes their transform from their metadata
         made = unmix_steps(cfg.unmix, ctx)
         steps += made
         abundance_maps += [f"{s.name}/abundance" for s in made]
@@ -216,42 +216,6 @@ def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Pl
         quantity_maps[f"{entry.name}/quantity"] = entry.property
         calibrations.append(entry.name)
     return Plan(steps, class_maps, abundance_maps, quantity_maps, calibrations)
-
-
-def unmix_needs_transform(cfg: RunConfig) -> bool:
-    """Library endmembers unmixing MNF/PCA components: built once that step's model is fitted."""
-    u = cfg.unmix
-    if u is None or u.endmembers.library is None or cfg.mnf is None:
-        return False
-    return u.input.split("/")[0] in {s.name for s in mnf_steps(cfg.mnf, "mosaic/reflectance")}
-
-
-def build_unmix_on_components(cfg: RunConfig, base: Path, run: Run) -> list[Step]:
-    """The unmixing step on MNF/PCA components, its library endmembers transformed like the cube."""
-    from swathmill.tiles.tasks import load_model
-
-    from swathmill.workflows.methods.unmix import LinearTransform
-
-    src = cfg.unmix.input.split("/")[0]
-    info = next((s["info"] for s in run.ledger.steps() if s["name"] == src), None)
-    if info is None or not info.get("model_path"):
-        raise InputError(f"unmix.input {cfg.unmix.input!r}: step {src!r} has no fitted model in this run")
-    model = load_model(info["model_path"])
-    k = len(run.known[src][2].specs[cfg.unmix.input.split("/")[1]].bands)
-    cube = run.known["mosaic"][2].specs["reflectance"]
-    fwhm = cube.coords.get("fwhm")
-    from swathmill.workflows.inputs.library import read_library
-    from swathmill.workflows.methods.unmix import unmix_step
-
-    lib_path = Path(cfg.unmix.endmembers.library)
-    lib = read_library(lib_path if lib_path.is_absolute() else base / lib_path)
-    if cfg.unmix.endmembers.materials is not None:
-        lib = lib.subset(cfg.unmix.endmembers.materials)
-    return [unmix_step(cfg.unmix.name, cfg.unmix.input, method=cfg.unmix.method, library=lib,
-                       shade=cfg.unmix.shade, max_condition=cfg.unmix.max_condition, kkt_rtol=cfg.unmix.kkt_rtol,
-                       transform=LinearTransform.from_mnf_model(model, k),
-                       cube_wavelengths=list(cube.coords["wavelength"]),
-                       cube_fwhm=None if fwhm is None or not np.all(np.isfinite(fwhm)) else list(fwhm))]
 
 
 def calibration_samples(ref: GroundReferenceConfig, prop: str, mosaic_store: TileStore, base: Path) -> CalibrationSamples:
@@ -339,16 +303,6 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
                         result.steps += more.steps
                         result.messages += more.messages
                         result.stopped_at = more.stopped_at
-                        if more.ok and unmix_needs_transform(cfg):
-                            try:
-                                last = build_unmix_on_components(cfg, base, run)
-                            except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-                                raise InputError(str(exc)) from None
-                            more = run.execute(last, ex)
-                            result.steps += more.steps
-                            result.messages += more.messages
-                            result.stopped_at = more.stopped_at
-                            plan.abundance_maps += [f"{s.name}/abundance" for s in last]
                 except (PlanError, StepError) as exc:
                     raise InputError(str(exc)) from None
                 _after_run(run, cfg, result, plan, base, progress)
