@@ -406,7 +406,8 @@ def accumulate(block: Block) -> MnfAccumulator:
     """Moments of the valid pixels of the tile core and of the shift differences inside it.
 
     ``block.data["cube"]`` is (bands, rows, cols) over the tile (stored values in the engine, decoded
-    values also work); ``block.params`` is the step's :class:`MnfConfig`. A pixel is valid where ``block.valid`` holds and no band is non-finite or nodata. Pairs
+    values also work); ``block.params`` is the step's :class:`MnfConfig`. A pixel is valid where
+    ``block.valid`` holds and no band is non-finite or nodata. Pairs
     across the tile's borders are left to :func:`merge`: the accumulator keeps the border rows and
     columns (:class:`Strip`) that such pairs need, so no tile reads its neighbours' pixels.
     """

@@ -353,9 +353,6 @@ def _problems(exc: ValidationError) -> str:
 
 def _settings(name: str, settings: UnmixSettings | None, given: Mapping[str, Any]) -> UnmixSettings:
     """``settings`` (default: the fields' defaults) with the keyword arguments given to :func:`unmix_step`."""
-    if given.get("method") is not None and given["method"] not in METHODS:
-        raise UnmixError(f"step {name!r}: unknown unmixing method {given['method']!r}; choose one of "
-                         f"{', '.join(METHODS)}")
     if settings is not None and not given:
         return settings
     base = {} if settings is None else settings.model_dump()
@@ -411,6 +408,8 @@ def unmix_step(name: str, input_ref: str, *, settings: UnmixSettings | None = No
     (1 band) and, for the unconstrained variant, ``sum`` (1 band). Its ``params`` is a
     :class:`UnmixParams`.
     """
+    if method is not None and method not in METHODS:
+        raise UnmixError(f"step {name!r}: unknown unmixing method {method!r}; choose one of {', '.join(METHODS)}")
     given_settings = {k: v for k, v in (("method", method), ("shade", shade), ("max_condition", max_condition),
                                         ("kkt_rtol", kkt_rtol)) if v is not None}
     sources = [k for k, v in (("library", library), ("samples", samples), ("image", image),
