@@ -508,6 +508,10 @@ def test_step_warns_and_refuses(rng, tmp_path):
         unmix_step("u", "src/cube", endmembers=m, image={"method": "atgp", "n_endmembers": 3})
     with pytest.raises(UnmixError, match="unknown unmixing method 'lsq'"):
         unmix_step("u", "src/cube", method="lsq", endmembers=m)
+    with pytest.raises(UnmixError, match=r"step 'u': max_condition: .*greater than 1. Got 0.5"):  # UnmixSettings bound
+        unmix_step("u", "src/cube", max_condition=0.5, endmembers=m)
+    with pytest.raises(UnmixError, match="shade needs method sum_to_one or fully_constrained. Got 'nonnegative'"):
+        unmix_step("u", "src/cube", method="nonnegative", shade=True, endmembers=m)
     with pytest.raises(UnmixError, match="endmembers have 23 bands but input 'src/cube' has 24"):
         run_on_arrays([unmix_step("v", "src/cube", endmembers=m[:-1])], {"cube": x}, tmp_path / "b", tile=16)
 
@@ -556,3 +560,16 @@ def test_library_on_components_takes_the_transform_from_the_input_metadata(rng, 
     if reduction == "pca":
         ref = unmix_cube(x, m, "sum_to_one")["abundance"]
         np.testing.assert_allclose(out["u/abundance"], ref, atol=1e-4)  # float32 data and components
+
+
+def test_library_on_components_without_wavelengths_is_refused(rng, tmp_path):
+    """Components of a cube with no wavelength coordinate carry a transform with no wavelengths: the
+    library cannot be resampled to its bands, and the error says so (naming the step and the input)."""
+    from swathmill.workflows.methods.mnf import MnfConfig, mnf_steps
+    lib = SpectralLibrary(("a", "b"), np.array([400.0, 700.0, 1000.0]), np.array([[.1, .2, .3], [.3, .2, .1]]),
+                          source="lib.csv")
+    x = rng.random((6, 16, 16)).astype(np.float32)  # run_on_arrays gives it no coordinates
+    steps = [*mnf_steps(MnfConfig(method="pca", components=3), input_ref="src/refl"),
+             unmix_step("u", "pca/components", method="sum_to_one", library=lib)]
+    with pytest.raises(UnmixError, match="step 'u', input 'pca/components'.*names no band wavelengths"):
+        run_on_arrays(steps, {"refl": x}, tmp_path, tile=8)

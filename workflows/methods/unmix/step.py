@@ -348,7 +348,9 @@ def _library_dict(lib: SpectralLibrary) -> dict:
 
 
 def _problems(exc: ValidationError) -> str:
-    return "; ".join(f"{'.'.join(str(p) for p in e['loc']) or 'settings'}: {e['msg']}" for e in exc.errors())
+    """The problems of a validation error, each naming its key and the value found."""
+    return "; ".join(f"{'.'.join(str(p) for p in e['loc'])}: {e['msg']}. Got {e['input']!r}" if e["loc"]
+                     else e["msg"] for e in exc.errors())
 
 
 def _settings(name: str, settings: UnmixSettings | None, given: Mapping[str, Any]) -> UnmixSettings:
