@@ -56,11 +56,11 @@ def _meta(p: int, grid: Grid) -> dict[str, InputMeta]:
     return {"cube": InputMeta("mosaic/reflectance", grid, spec)}
 
 
-def _params(**kw) -> dict:
-    return MnfConfig(**kw).model_dump(mode="json")
+def _params(**kw) -> MnfConfig:
+    return MnfConfig(**kw)
 
 
-def _blocks(cube: np.ndarray, valid: np.ndarray, size: int, params: dict, nan_invalid: bool = True):
+def _blocks(cube: np.ndarray, valid: np.ndarray, size: int, params: MnfConfig, nan_invalid: bool = True):
     """Blocks as the engine builds them: the padded window (halo 1) of each tile of a Tiling."""
     p, rows, cols = cube.shape
     grid = _grid(rows, cols)
@@ -424,15 +424,15 @@ def test_plain_eigh_fails_on_such_data(rng):
 
 def test_keep_components_by_count_threshold_and_fraction():
     lam = np.array([50.0, 20.0, 5.0, 1.2, 1.0, 0.9])
-    assert keep_components(lam, {"components": 2}) == 2
-    assert keep_components(lam, {"min_eigenvalue": 1.1}) == 4
-    assert keep_components(lam, {"cumulative_fraction": 70 / lam.sum()}) == 2  # exactly reached at 2
-    assert keep_components(lam, {"cumulative_fraction": 0.9}) == 3
-    assert keep_components(lam, {}) == 6
+    assert keep_components(lam, MnfConfig(components=2)) == 2
+    assert keep_components(lam, MnfConfig(min_eigenvalue=1.1)) == 4
+    assert keep_components(lam, MnfConfig(cumulative_fraction=70 / lam.sum())) == 2  # exactly reached at 2
+    assert keep_components(lam, MnfConfig(cumulative_fraction=0.9)) == 3
+    assert keep_components(lam, MnfConfig()) == 6
     with pytest.raises(MnfError, match="largest is 50"):
-        keep_components(lam, {"min_eigenvalue": 60})
+        keep_components(lam, MnfConfig(min_eigenvalue=60))
     with pytest.raises(MnfError, match="components = 7 but only 6"):
-        keep_components(lam, {"components": 7})
+        keep_components(lam, MnfConfig(components=7))
 
 
 def test_pixel_sample_is_seeded_and_independent_of_tiling(rng):
@@ -529,20 +529,28 @@ def test_step_declarations_and_kernels(rng):
     cube, _, _ = _scene(rng, rows=20, cols=20, p=6)
     grid = _grid(20, 20)
     meta = _meta(6, grid)
-    model = _fit(cube, size=20, params=dict(fwd.params))
+    model = _fit(cube, size=20, params=fwd.params)
     spec = fwd.resolve_outputs(meta, model)["components"]
     assert spec.bands == ("mnf_1", "mnf_2", "mnf_3") and spec.dtype == "float32"
     np.testing.assert_allclose(spec.coords["eigenvalue"], model["eigenvalues"][:3])
-    block = next(_blocks(cube, np.ones((20, 20), bool), 20, dict(fwd.params)))
+    block = next(_blocks(cube, np.ones((20, 20), bool), 20, fwd.params))
     y = fwd.kernel(block, model)["components"]
     np.testing.assert_array_equal(y, forward(cube, model, 3))
+    # The forward transform travels in the components' attributes, with the cube's wavelengths and FWHM:
+    # (x[band_index] - mean) @ matrix, by plain numpy, gives the components.
+    ft = spec.attrs["forward_transform"]
+    assert ft["n_components"] == 3 and ft["bands"] == list(meta["cube"].spec.bands)
+    assert ft["wavelength"] == list(meta["cube"].spec.coords["wavelength"]) and ft["fwhm"] == [10.0] * 6
+    flat = cube.reshape(6, -1).T.astype(np.float64)
+    by_attrs = ((flat[:, ft["band_index"]] - np.array(ft["mean"])) @ np.array(ft["matrix"])).T.reshape(3, 20, 20)
+    np.testing.assert_allclose(y, by_attrs, rtol=1e-5, atol=1e-5 * np.abs(by_attrs).max())
     # The denoising step gets the inverse through the components' attributes.
     dmeta = {"components": InputMeta("mnf/components", grid, spec), "cube": meta["cube"]}
     out_spec = den.resolve_outputs(dmeta, None)["reflectance"]
     assert out_spec.bands == meta["cube"].spec.bands
     assert out_spec.coords["wavelength"] == meta["cube"].spec.coords["wavelength"]
     dblock = Block(data={"components": y, "cube": cube}, valid=np.ones((20, 20), bool), tile=block.tile,
-                   grid=grid, params=dict(den.params), static={}, meta=dmeta)
+                   grid=grid, params=den.params, static={}, meta=dmeta)
     got = den.kernel(dblock, None)["reflectance"]
     np.testing.assert_allclose(got, denoise(cube, model, 2), atol=1e-6)
     assert got.dtype == np.float32
@@ -554,7 +562,7 @@ def test_denoise_kernel_without_transform_attrs_is_refused(rng):
     spec = OutputSpec(bands=("a", "b"), dtype="float32", nodata=float("nan"))
     tile = next(iter(Tiling(grid, 8)))
     block = Block(data={"components": cube[:2], "cube": cube}, valid=np.ones((8, 8), bool), tile=tile, grid=grid,
-                  params={"denoise_components": 2, "method": "mnf"}, static={},
+                  params=MnfConfig(denoise_components=2), static={},
                   meta={"components": InputMeta("x/components", grid, spec), **_meta(3, grid)})
     with pytest.raises(MnfError, match="no 'inverse_transform'"):
         denoise_kernel(block, None)
@@ -593,7 +601,7 @@ def test_engine_tiled_equals_untiled_and_matches_pure_functions(rng, tmp_path):
         np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
         np.testing.assert_allclose(a[~np.isnan(a)], b[~np.isnan(b)], rtol=1e-6, atol=1e-6 * np.nanmax(np.abs(b)))
     # The engine's result equals the pure functions on the whole array.
-    model = _fit(cube, valid, size=48, params=dict(steps[0].params))
+    model = _fit(cube, valid, size=48, params=steps[0].params)
     y = forward(cube, model)
     np.testing.assert_allclose(small["mnf/components"][:, valid], y[:, valid], rtol=1e-6, atol=1e-6)
     assert np.isnan(small["mnf/components"][:, ~valid]).all()

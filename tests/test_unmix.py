@@ -330,7 +330,7 @@ def test_config_and_build_steps(tmp_path):
     write_library(lib, tmp_path / "lib.csv")
     cfg = UnmixConfig.model_validate({"method": "sum_to_one", "shade": True, "endmembers": {"library": "lib.csv"}})
     steps = build_steps(cfg, {"base_dir": tmp_path})
-    assert steps[0].name == "unmix" and steps[0].params["shade"] is True
+    assert steps[0].name == "unmix" and steps[0].params.settings.shade is True
     img = UnmixConfig.model_validate({"endmembers": {"image": {"method": "vca", "n_endmembers": 4,
                                                                "reduced": "mnf/components"}}})
     step = build_steps(img)[0]
@@ -508,5 +508,68 @@ def test_step_warns_and_refuses(rng, tmp_path):
         unmix_step("u", "src/cube", endmembers=m, image={"method": "atgp", "n_endmembers": 3})
     with pytest.raises(UnmixError, match="unknown unmixing method 'lsq'"):
         unmix_step("u", "src/cube", method="lsq", endmembers=m)
+    with pytest.raises(UnmixError, match=r"step 'u': max_condition: .*greater than 1. Got 0.5"):  # UnmixSettings bound
+        unmix_step("u", "src/cube", max_condition=0.5, endmembers=m)
+    with pytest.raises(UnmixError, match="shade needs method sum_to_one or fully_constrained. Got 'nonnegative'"):
+        unmix_step("u", "src/cube", method="nonnegative", shade=True, endmembers=m)
     with pytest.raises(UnmixError, match="endmembers have 23 bands but input 'src/cube' has 24"):
         run_on_arrays([unmix_step("v", "src/cube", endmembers=m[:-1])], {"cube": x}, tmp_path / "b", tile=16)
+
+
+@pytest.mark.parametrize("reduction", ["mnf", "pca"])
+def test_library_on_components_takes_the_transform_from_the_input_metadata(rng, tmp_path, reduction):
+    """Built before anything runs, the unmixing step on MNF/PCA components reads the forward transform
+    the components publish (attrs["forward_transform"]) when it is fitted. Its endmembers and
+    abundances are identical to the previous route, a second run whose step gets
+    LinearTransform.from_mnf_model of the fitted model and the cube's wavelengths. With PCA and every
+    component (an orthonormal rotation about the mean) sum-to-one abundances on components equal those
+    on reflectance (least squares algebra; common practice)."""
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.store import open_store
+    from swathmill.tiles.tasks import load_model
+    from swathmill.workflows.methods.mnf import FORWARD_TRANSFORM, MnfConfig, mnf_steps
+    bands, rows, cols = 16, 24, 20
+    wl = np.linspace(450.0, 950.0, bands)
+    lib_wl = np.arange(400.0, 1001.0, 2.0)
+    spectra = np.stack([0.2 + 0.1 * np.sin(lib_wl / 60.0), 0.5 - 0.0003 * (lib_wl - 400),
+                        0.05 + 0.02 * np.cos(lib_wl / 90.0)])
+    lib = SpectralLibrary(("rock", "leaf", "water"), lib_wl, spectra, source="lib.csv")
+    m = np.stack([np.interp(wl, lib_wl, s) for s in spectra], axis=1)  # numpy linear interpolation
+    a = rng.dirichlet(np.ones(3), rows * cols).T
+    x = (m @ a + rng.normal(0, 0.01, (bands, rows * cols))).reshape(bands, rows, cols).astype(np.float32)
+    spec = OutputSpec(tuple(f"b{i + 1:03d}" for i in range(bands)), "float32", float("nan"),
+                      coords={"wavelength": tuple(wl), "fwhm": tuple(np.full(bands, np.nan))})
+    mnf = mnf_steps(MnfConfig(method=reduction, components=bands), input_ref="src/refl")
+    new = unmix_step("u", f"{reduction}/components", method="sum_to_one", library=lib)
+    out, result = run_on_arrays([*mnf, new], {"refl": (x, spec)}, tmp_path / "new", tile=8)
+    assert result.ok
+    comp = open_store(tmp_path / "new" / "run" / "stores" / f"{reduction}.zarr").specs["components"]
+    assert comp.attrs[FORWARD_TRANSFORM]["n_components"] == bands
+    assert comp.attrs[FORWARD_TRANSFORM]["wavelength"] == list(wl)
+    models = tmp_path / "new" / "run" / "models"
+    mnf_model = load_model(next(models.glob(f"{reduction}-*.json")).with_suffix(""))
+    tf = LinearTransform.from_mnf_model(mnf_model, bands)
+    old = unmix_step("u", "src/comp", method="sum_to_one", library=lib, transform=tf, cube_wavelengths=list(wl))
+    prev, result = run_on_arrays([old], {"comp": (out[f"{reduction}/components"], comp)}, tmp_path / "old", tile=8)
+    assert result.ok
+    new_model = load_model(next(models.glob("u-*.json")).with_suffix(""))
+    old_model = load_model(next((tmp_path / "old" / "run" / "models").glob("u-*.json")).with_suffix(""))
+    np.testing.assert_array_equal(new_model["endmembers"], old_model["endmembers"])
+    for key in ("abundance", "rmse"):
+        np.testing.assert_array_equal(out[f"u/{key}"], prev[f"u/{key}"])
+    if reduction == "pca":
+        ref = unmix_cube(x, m, "sum_to_one")["abundance"]
+        np.testing.assert_allclose(out["u/abundance"], ref, atol=1e-4)  # float32 data and components
+
+
+def test_library_on_components_without_wavelengths_is_refused(rng, tmp_path):
+    """Components of a cube with no wavelength coordinate carry a transform with no wavelengths: the
+    library cannot be resampled to its bands, and the error says so (naming the step and the input)."""
+    from swathmill.workflows.methods.mnf import MnfConfig, mnf_steps
+    lib = SpectralLibrary(("a", "b"), np.array([400.0, 700.0, 1000.0]), np.array([[.1, .2, .3], [.3, .2, .1]]),
+                          source="lib.csv")
+    x = rng.random((6, 16, 16)).astype(np.float32)  # run_on_arrays gives it no coordinates
+    steps = [*mnf_steps(MnfConfig(method="pca", components=3), input_ref="src/refl"),
+             unmix_step("u", "pca/components", method="sum_to_one", library=lib)]
+    with pytest.raises(UnmixError, match="step 'u', input 'pca/components'.*names no band wavelengths"):
+        run_on_arrays(steps, {"refl": x}, tmp_path, tile=8)

@@ -478,7 +478,7 @@ def tile_breakdown(run_dir: Path, src: Path, tile: int, index: tuple[int, int], 
     from swathmill.tiles.grid import Tiling
     from swathmill.tiles.store import TileStore, create_store, decode, encode
     from swathmill.tiles.tasks import load_model
-    from swathmill.workflows.methods.unmix import _unmixer
+    from swathmill.workflows.methods.unmix import UnmixSettings, _unmixer
 
     store = TileStore(src)
     out_store = TileStore(run_dir / "stores" / "unmix.zarr")
@@ -486,8 +486,7 @@ def tile_breakdown(run_dir: Path, src: Path, tile: int, index: tuple[int, int], 
     t = Tiling(store.grid, tile)[index]
     base = sorted(glob.glob(str(run_dir / "models" / "unmix-*.json")))[0][:-5]
     model = load_model(base)
-    params = {"method": "fully_constrained", "kkt_rtol": 1e-9}
-    u = _unmixer(model, params)
+    u = _unmixer(model, UnmixSettings(method="fully_constrained"))
     scratch_store = create_store(scratch, store.grid, out_store.specs, out_store.layout)
     times: dict[str, float] = {}
     cpu: dict[str, float] = {}

@@ -215,7 +215,7 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
         steps += endmember_steps(cfg.endmembers, ctx)
     if cfg.classify is not None:
         steps += _classify_steps(cfg.classify, ctx)
-    if cfg.unmix is not None and not unmix_needs_transform(cfg):
+    if cfg.unmix is not None:  # on MNF/PCA components it takes their transform from their metadata
         steps += unmix_steps(cfg.unmix, ctx)
     if cfg.features is not None:
         steps += feature_steps(cfg.features, ctx)
@@ -231,42 +231,6 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
         steps += calibration_steps(section, samples)
         calibrations.append(entry.name)
     return Plan(steps, grid, cfg.engine.tile, calibrations)
-
-
-def unmix_needs_transform(cfg: RunConfig) -> bool:
-    """Library endmembers unmixing MNF/PCA components: built once that step's model is fitted."""
-    u = cfg.unmix
-    if u is None or u.endmembers.library is None or cfg.mnf is None:
-        return False
-    return u.input.split("/")[0] in {s.name for s in mnf_steps(cfg.mnf, "mosaic/reflectance")}
-
-
-def build_unmix_on_components(cfg: RunConfig, base: Path, run: Run) -> list[Step]:
-    """The unmixing step on MNF/PCA components, its library endmembers transformed like the cube."""
-    from swathmill.tiles.tasks import load_model
-
-    from swathmill.workflows.methods.unmix import LinearTransform
-
-    src = cfg.unmix.input.split("/")[0]
-    info = next((s["info"] for s in run.ledger.steps() if s["name"] == src), None)
-    if info is None or not info.get("model_path"):
-        raise InputError(f"unmix.input {cfg.unmix.input!r}: step {src!r} has no fitted model in this run")
-    model = load_model(info["model_path"])
-    k = len(run.known[src][2].specs[cfg.unmix.input.split("/")[1]].bands)
-    cube = run.known["mosaic"][2].specs["reflectance"]
-    fwhm = cube.coords.get("fwhm")
-    from swathmill.workflows.inputs.library import read_library
-    from swathmill.workflows.methods.unmix import unmix_step
-
-    lib_path = Path(cfg.unmix.endmembers.library)
-    lib = read_library(lib_path if lib_path.is_absolute() else base / lib_path)
-    if cfg.unmix.endmembers.materials is not None:
-        lib = lib.subset(cfg.unmix.endmembers.materials)
-    return [unmix_step(cfg.unmix.name, cfg.unmix.input, method=cfg.unmix.method, library=lib,
-                       shade=cfg.unmix.shade, max_condition=cfg.unmix.max_condition, kkt_rtol=cfg.unmix.kkt_rtol,
-                       transform=LinearTransform.from_mnf_model(model, k),
-                       cube_wavelengths=list(cube.coords["wavelength"]),
-                       cube_fwhm=None if fwhm is None or not np.all(np.isfinite(fwhm)) else list(fwhm))]
 
 
 def calibration_samples(ref: GroundReferenceConfig, prop: str, grid: Grid | TileStore, base: Path) -> CalibrationSamples:
@@ -370,15 +334,6 @@ def _execute(run: Run, plan: Plan, cfg: RunConfig, base: Path, ex) -> RunResult:
         result = run.execute(plan.steps, ex)
         if "mosaic" in run.known:
             write_footprints(plan.steps[0], run.dir / "footprints.geojson")
-        if result.ok and unmix_needs_transform(cfg):
-            try:
-                last = build_unmix_on_components(cfg, base, run)
-            except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-                raise InputError(str(exc)) from None
-            more = run.execute(last, ex)
-            result.steps += more.steps
-            result.messages += more.messages
-            result.stopped_at = more.stopped_at
     except (PlanError, StepError) as exc:
         raise InputError(str(exc)) from None
     return result

@@ -73,7 +73,14 @@ Steps
 bands ``mnf_1..k`` or ``pca_1..k``) and, when ``denoise_components`` is set, a denoising step
 (``<name>_denoised``, output ``reflectance`` on the original bands). The denoising step reads the
 forward step's components and the cube; the mean and the inverse rows it needs travel in the
-components' output attributes (``attrs["inverse_transform"]``), so the fit runs once.
+components' output attributes (``attrs["inverse_transform"]``), so the fit runs once. The forward
+transform travels the same way (``attrs["forward_transform"]``: mean, the kept eigenvectors, the bands
+they take with their wavelengths and FWHM), so a step on the components (e.g. unmixing with library
+endmembers) can move spectra into component space from its input's metadata, and every step of a run
+can be built before any runs.
+
+Both steps take the validated :class:`MnfConfig` itself as their parameter object (``Step.params``);
+defaults and bounds live only on its fields.
 """
 from __future__ import annotations
 
@@ -84,15 +91,18 @@ from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
 import scipy.linalg
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from swathmill.tiles.grid import Tile
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 from swathmill.tiles.store import copy_bands, index_runs
 from swathmill.errors import SwathmillError
+from swathmill.workflows.params import Section
 
 __all__ = [
+    "FORWARD_TRANSFORM",
+    "INVERSE_TRANSFORM",
     "MnfConfig",
     "NoiseArea",
     "MnfError",
@@ -118,6 +128,8 @@ __all__ = [
 
 CUBE = "cube"  # input alias of the cube in both steps
 COMPONENTS = "components"  # output of the forward step, input alias of the denoising step
+FORWARD_TRANSFORM = "forward_transform"  # attribute of the components: the transform from the cube's bands
+INVERSE_TRANSFORM = "inverse_transform"  # attribute of the components: the transform back to the cube's bands
 _DIRECTIONS = {"both": ("horizontal", "vertical"), "horizontal": ("horizontal",), "vertical": ("vertical",)}
 _CHUNK_VALUES = 2_000_000  # float64 values per working chunk (16 MB) in accumulate and the kernels
 
@@ -134,7 +146,7 @@ class MnfWarning(UserWarning):
 # configuration
 
 
-class NoiseArea(BaseModel):
+class NoiseArea(Section):
     """A homogeneous area to estimate the noise from: a pixel window or a polygon (one of them).
 
     window: ``[row, col, rows, cols]`` in the pixel coordinates of the mosaic grid.
@@ -142,8 +154,6 @@ class NoiseArea(BaseModel):
     A difference pair enters the noise estimate only when both of its pixels lie in the area (pixel
     centres for the polygon).
     """
-
-    model_config = ConfigDict(extra="forbid")
 
     window: tuple[int, int, int, int] | None = None
     polygon: list[tuple[float, float]] | str | None = None
@@ -172,7 +182,7 @@ class NoiseArea(BaseModel):
         return self
 
 
-class MnfConfig(BaseModel):
+class MnfConfig(Section):
     """The ``mnf`` section of a run config.
 
     YAML shape (all keys optional)::
@@ -194,9 +204,10 @@ class MnfConfig(BaseModel):
           denoise_components: null # k: add a step returning reflectance rebuilt from k components
 
     With none of ``components``, ``min_eigenvalue``, ``cumulative_fraction`` all components are kept.
-    """
 
-    model_config = ConfigDict(extra="forbid")
+    The section is the parameter object of both steps (``Step.params``): the accumulator, the tile
+    selection, the finalizer and the kernels read its attributes.
+    """
 
     method: Literal["mnf", "pca"] = "mnf"
     name: str | None = None
@@ -360,20 +371,20 @@ def _polygon(spec: Sequence[Sequence[float]] | str):
     return geom
 
 
-def _area_mask(block: Block, area: Mapping[str, Any] | None) -> np.ndarray | None:
+def _area_mask(block: Block, area: NoiseArea | None) -> np.ndarray | None:
     """Boolean mask (padded rows, cols) of the noise area, or None when there is no area."""
-    if not area:
+    if area is None:
         return None
     pr, pc = block.tile.padded.row, block.tile.padded.col
     rows, cols = block.tile.padded.shape
-    if area.get("window") is not None:
-        r0, c0, nr, nc = (int(v) for v in area["window"])
+    if area.window is not None:
+        r0, c0, nr, nc = (int(v) for v in area.window)
         rr = np.arange(pr, pr + rows)[:, None]
         cc = np.arange(pc, pc + cols)[None, :]
         return (rr >= r0) & (rr < r0 + nr) & (cc >= c0) & (cc < c0 + nc)
     import shapely
 
-    geom = _polygon(area["polygon"])
+    geom = _polygon(area.polygon)
     t = block.grid.transform
     jj, ii = np.meshgrid(np.arange(cols) + 0.5, np.arange(rows) + 0.5)
     x = t.a * jj + t.b * ii + t.c
@@ -395,8 +406,8 @@ def accumulate(block: Block) -> MnfAccumulator:
     """Moments of the valid pixels of the tile core and of the shift differences inside it.
 
     ``block.data["cube"]`` is (bands, rows, cols) over the tile (stored values in the engine, decoded
-    values also work); ``block.params`` are the step's parameters (:class:`MnfConfig` dumped to
-    JSON). A pixel is valid where ``block.valid`` holds and no band is non-finite or nodata. Pairs
+    values also work); ``block.params`` is the step's :class:`MnfConfig`. A pixel is valid where
+    ``block.valid`` holds and no band is non-finite or nodata. Pairs
     across the tile's borders are left to :func:`merge`: the accumulator keeps the border rows and
     columns (:class:`Strip`) that such pairs need, so no tile reads its neighbours' pixels.
     """
@@ -415,13 +426,13 @@ def accumulate(block: Block) -> MnfAccumulator:
     ok = _ok_mask(x, block.valid[rs, cs], nodata)
     core = block.tile.core
     h, w = core.rows, core.cols
-    seed, frac = int(params.get("seed", 0)), float(params.get("pixel_fraction", 1.0))
+    seed, frac = params.seed, params.pixel_fraction
     keep = pixel_sample_mask(np.arange(core.row, core.row + h)[:, None],
                              np.arange(core.col, core.col + w)[None, :], seed, frac)
     use = ok & keep  # pixels (and first pixels of pairs) that enter the statistics
-    method = params.get("method", "mnf")
-    directions = _DIRECTIONS[params.get("noise_direction", "both")] if method == "mnf" else ()
-    area = _area_mask(block, params.get("noise_area")) if method == "mnf" else None
+    method = params.method
+    directions = _DIRECTIONS[params.noise_direction] if method == "mnf" else ()
+    area = _area_mask(block, params.noise_area) if method == "mnf" else None
     pair_ok = ok if area is None else ok & area[rs, cs]
 
     data = Moments.empty(p)
@@ -506,13 +517,13 @@ def merge(a: MnfAccumulator, b: MnfAccumulator) -> MnfAccumulator:
     return MnfAccumulator(merge_moments(a.data, b.data), noise, a.tiles + b.tiles, edges, a.stored)
 
 
-def select_tiles(tiles: list[Tile], params: Mapping[str, Any]) -> list[Tile]:
+def select_tiles(tiles: list[Tile], params: MnfConfig) -> list[Tile]:
     """A seeded random subset of ``tile_fraction`` of the tiles (at least one), in their given order."""
-    frac = float(params.get("tile_fraction", 1.0))
+    frac = params.tile_fraction
     if frac >= 1 or len(tiles) <= 1:
         return list(tiles)
     n = max(1, int(round(frac * len(tiles))))
-    rng = np.random.default_rng(int(params.get("seed", 0)))
+    rng = np.random.default_rng(params.seed)
     idx = np.sort(rng.choice(len(tiles), size=n, replace=False))
     return [tiles[i] for i in idx]
 
@@ -571,23 +582,23 @@ def screen_noise_bands(noise: np.ndarray, data: np.ndarray, bands: Sequence[str]
     return out
 
 
-def keep_components(eigenvalues: np.ndarray, params: Mapping[str, Any]) -> int:
+def keep_components(eigenvalues: np.ndarray, params: MnfConfig) -> int:
     """How many components to keep: by ``components``, ``min_eigenvalue`` or ``cumulative_fraction``."""
     lam = np.asarray(eigenvalues, dtype=np.float64)
     p = lam.size
-    if params.get("components") is not None:
-        k = int(params["components"])
+    if params.components is not None:
+        k = params.components
         if k > p:
             raise MnfError(f"components = {k} but only {p} bands enter the transform")
         return k
-    if params.get("min_eigenvalue") is not None:
-        thr = float(params["min_eigenvalue"])
+    if params.min_eigenvalue is not None:
+        thr = params.min_eigenvalue
         k = int(np.sum(lam >= thr))
         if k == 0:
             raise MnfError(f"no component has an eigenvalue >= min_eigenvalue = {thr}; the largest is {lam[0]:.6g}")
         return k
-    if params.get("cumulative_fraction") is not None:
-        f = float(params["cumulative_fraction"])
+    if params.cumulative_fraction is not None:
+        f = params.cumulative_fraction
         pos = np.clip(lam, 0, None)
         total = pos.sum()
         if total <= 0:
@@ -628,9 +639,9 @@ def _to_physical(acc: MnfAccumulator, spec: OutputSpec) -> MnfAccumulator:
     return MnfAccumulator(data, noise, acc.tiles, {}, stored=False)
 
 
-def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, InputMeta]) -> dict:
+def finalize(acc: MnfAccumulator, params: MnfConfig, meta: Mapping[str, InputMeta]) -> dict:
     """The MNF (or PCA) model from the merged statistics; see the module docstring for its keys."""
-    method = params.get("method", "mnf")
+    method = params.method
     spec = meta[CUBE].spec if CUBE in meta else None
     p = acc.data.p
     bands = list(spec.bands) if spec is not None else [f"band_{i + 1}" for i in range(p)]
@@ -643,7 +654,7 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
         raise MnfError(f"the {method.upper()} fit saw {n} valid pixel(s); it needs more than the number of "
                        f"bands ({p}). Raise pixel_fraction/tile_fraction or check the valid area")
     s_full = acc.data.covariance()
-    tol = float(params.get("singular_tolerance", 1e-8))
+    tol = params.singular_tolerance
     flagged: dict[str, str] = {}
     ridge = 0.0
     if method == "pca":
@@ -652,7 +663,7 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
     else:
         n_full, counts = _noise_covariance(acc, p)
         flagged = screen_noise_bands(n_full, s_full, bands, tol)
-        mode = params.get("singular", "exclude")
+        mode = params.singular
         used = np.array([i for i, b in enumerate(bands) if b not in flagged], dtype=int)
         if flagged:
             listing = "; ".join(f"{b}: {why}" for b, why in flagged.items())
@@ -668,7 +679,7 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
                 used = np.arange(p)
                 diag = np.diag(n_full)
                 scale = float(np.mean(diag[diag > 0])) if (diag > 0).any() else 1.0
-                ridge = float(params.get("regularization", 1e-6)) * scale
+                ridge = params.regularization * scale
                 warnings.warn(f"MNF: noise covariance regularized (+{ridge:.3g} on the diagonal) because of "
                               f"band(s) {listing}", MnfWarning, stacklevel=2)
     s = s_full[np.ix_(used, used)]
@@ -690,9 +701,9 @@ def finalize(acc: MnfAccumulator, params: Mapping[str, Any], meta: Mapping[str, 
     k = keep_components(lam, params)
     used_names = {bands[i] for i in used}
     selection = {
-        "tile_fraction": float(params.get("tile_fraction", 1.0)),
-        "pixel_fraction": float(params.get("pixel_fraction", 1.0)),
-        "seed": int(params.get("seed", 0)),
+        "tile_fraction": float(params.tile_fraction),
+        "pixel_fraction": float(params.pixel_fraction),
+        "seed": int(params.seed),
         "n_tiles": len(acc.tiles),
     }
     if selection["tile_fraction"] < 1:
@@ -832,6 +843,7 @@ def forward_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, n
 
 
 def _transform_attrs(model: Mapping[str, Any]) -> dict:
+    """The components' ``inverse_transform`` attribute: what the denoising step needs."""
     k = int(model["n_components"])
     return {
         "method": model["method"],
@@ -843,6 +855,39 @@ def _transform_attrs(model: Mapping[str, Any]) -> dict:
     }
 
 
+def _coord_values(values: Sequence[Any] | None) -> list[float | None] | None:
+    """A coordinate of the cube as JSON floats (non-finite values as null); None when absent or not numeric."""
+    if values is None:
+        return None
+    out: list[float | None] = []
+    for v in values:
+        try:
+            f = float(v) if v is not None else math.nan
+        except (TypeError, ValueError):
+            return None
+        out.append(f if math.isfinite(f) else None)
+    return out
+
+
+def _forward_attrs(model: Mapping[str, Any], spec: OutputSpec | None) -> dict:
+    """The components' ``forward_transform`` attribute: ``y = (x[band_index] - mean) @ matrix`` with
+    ``matrix`` the first ``n_components`` eigenvectors as columns (used bands x components), and the
+    wavelengths and FWHM of the cube's bands (null where unknown), so that a later step can move
+    spectra (e.g. library endmembers) into component space from the metadata alone."""
+    k = int(model["n_components"])
+    coords = {} if spec is None else spec.coords
+    return {
+        "method": model["method"],
+        "bands": list(model["bands"]),
+        "band_index": [int(i) for i in np.asarray(model["band_index"])],
+        "mean": [float(v) for v in np.asarray(model["mean"])],
+        "matrix": np.asarray(model["eigenvectors"], dtype=np.float64)[:, :k].tolist(),
+        "n_components": k,
+        "wavelength": _coord_values(coords.get("wavelength")),
+        "fwhm": _coord_values(coords.get("fwhm")),
+    }
+
+
 def denoise_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, np.ndarray]:
     """Engine kernel: reflectance rebuilt from the first ``denoise_components`` components.
 
@@ -850,11 +895,13 @@ def denoise_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, n
     the bands left out of the transform); the mean and inverse rows come from the components' output
     attribute ``inverse_transform``.
     """
-    info = block.meta[COMPONENTS].spec.attrs.get("inverse_transform") if COMPONENTS in block.meta else None
+    info = block.meta[COMPONENTS].spec.attrs.get(INVERSE_TRANSFORM) if COMPONENTS in block.meta else None
     if not info:
-        raise MnfError(f"input {COMPONENTS!r} carries no 'inverse_transform' attribute: it must be the "
+        raise MnfError(f"input {COMPONENTS!r} carries no {INVERSE_TRANSFORM!r} attribute: it must be the "
                        "'components' output of an MNF/PCA step")
-    k = int(block.params["denoise_components"])
+    k = block.params.denoise_components
+    if k is None:
+        raise MnfError("the denoising kernel needs denoise_components in its MnfConfig")
     y = block.data[COMPONENTS]
     if k > y.shape[0]:
         raise MnfError(f"denoise_components = {k} but the forward step keeps {y.shape[0]} components")
@@ -868,9 +915,9 @@ def denoise_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str, n
 
 
 def _component_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | None,
-                       params: Mapping[str, Any]) -> dict[str, OutputSpec]:
+                       params: MnfConfig) -> dict[str, OutputSpec]:
     if model is None:
-        raise StepError(f"the {params.get('method', 'mnf')} step's outputs depend on its fitted model")
+        raise StepError(f"the {params.method} step's outputs depend on its fitted model")
     k = int(model["n_components"])
     prefix = str(model["method"])
     lam = np.asarray(model["eigenvalues"], dtype=np.float64)[:k]
@@ -881,12 +928,13 @@ def _component_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] |
         nodata=float("nan"),
         coords={"eigenvalue": tuple(float(v) for v in lam)},
         attrs={"long_name": f"{prefix.upper()} components", "used_bands": list(model["used_bands"]),
-               "excluded_bands": dict(model["excluded_bands"]), "inverse_transform": _transform_attrs(model)},
+               "excluded_bands": dict(model["excluded_bands"]), INVERSE_TRANSFORM: _transform_attrs(model),
+               FORWARD_TRANSFORM: _forward_attrs(model, meta[CUBE].spec if CUBE in meta else None)},
     )}
 
 
 def _denoised_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | None,
-                      params: Mapping[str, Any]) -> dict[str, OutputSpec]:
+                      params: MnfConfig) -> dict[str, OutputSpec]:
     if CUBE not in meta:
         raise StepError(f"the denoising step needs its input {CUBE!r}")
     spec = meta[CUBE].spec
@@ -894,8 +942,8 @@ def _denoised_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | 
         role=Role.REFLECTANCE,
         bands=tuple(spec.bands), dtype="float32", nodata=float("nan"),
         coords={k: tuple(v) for k, v in spec.coords.items()},
-        attrs={"long_name": f"reflectance rebuilt from {params['denoise_components']} "
-                            f"{str(params['method']).upper()} components"},
+        attrs={"long_name": f"reflectance rebuilt from {params.denoise_components} "
+                            f"{params.method.upper()} components"},
     )}
 
 
@@ -916,14 +964,13 @@ def mnf_steps(section: MnfConfig, input_ref: str = "mosaic/reflectance") -> list
         ("mnf" or "pca" by default) with output ``components``; the denoising step
         ``<name>_denoised`` with output ``reflectance`` (float32, the cube's bands and coordinates).
     """
-    params = section.model_dump(mode="json")
     name = section.step_name
     fit = Fit(accumulate=accumulate, merge=merge, finalize=finalize, select=select_tiles, halo=0)
     steps = [Step(name=name, kernel=forward_kernel, outputs=_component_outputs, inputs={CUBE: input_ref},
-                  params=params, halo=0, fit=fit, decode=False, version="2")]
+                  params=section, halo=0, fit=fit, decode=False, version="2")]
     if section.denoise_components is not None:
         steps.append(Step(
             name=f"{name}_denoised", kernel=denoise_kernel, outputs=_denoised_outputs,
             inputs={COMPONENTS: f"{name}/{COMPONENTS}", CUBE: input_ref},
-            params={"method": section.method, "denoise_components": section.denoise_components}, halo=0))
+            params=section, halo=0))
     return steps
