@@ -305,3 +305,22 @@ def test_mineral_classes_select_their_diagnostic_band(col) -> None:
     name, lo, hi = DIAGNOSTIC[col]
     first = w[res["order"][0]]
     assert lo - 10 <= first <= hi + 10, f"{name}: first band {first:.1f} nm outside {lo}-{hi} nm (+-1 band)"
+
+
+# wiring into a run ------------------------------------------------------------------------------
+def test_run_config_runs_a_band_selection(tmp_path, capsys) -> None:
+    # a whole run from YAML with an unsupervised selection after the mosaic
+    from test_cli import WL, _config
+
+    from swathmill.tiles.store import open_store
+    from swathmill.workflows.app.cli import main
+
+    cfg = _config(tmp_path, band_selection={"name": "bands", "method": "linear_prediction", "n_bands": 5,
+                                            "sample_pixels": 500})
+    assert main(["run", str(cfg), "--plain"]) == 0, capsys.readouterr().out
+    store = open_store(tmp_path / "run" / "stores" / "bands.zarr")
+    spec = store.specs["selected"]
+    assert spec.role == "reflectance" and len(spec.bands) == 5
+    w = np.asarray(spec.coords["wavelength"], dtype=float)
+    assert set(np.round(w, 3)) <= set(np.round(WL, 3))
+    assert not np.any((w >= 1340) & (w <= 1460)) and not np.any((w >= 1790) & (w <= 1960))

@@ -526,7 +526,7 @@ class BandSelectionConfig(Section):
     criterion: Literal["jm", "cv_accuracy"] = "jm"
     n_bands: int = Field(10, ge=2, description="number of bands to select")
     reference: GroundReferenceConfig | None = Field(None, description="training samples (sffs)")
-    exclude: list[tuple[float, float]] = Field(default_factory=lambda: [list(w) for w in DEFAULT_EXCLUDE],
+    exclude: list[tuple[float, float]] = Field(default_factory=lambda: [tuple(w) for w in DEFAULT_EXCLUDE],
                                                description="wavelength windows (nm) never selected")
     wavelength_ranges: list[tuple[float, float]] | None = Field(
         None, description="select only bands inside one of these [low, high] nm ranges")
