@@ -262,3 +262,28 @@ def test_svr_step_tiled_equals_whole(tmp_path, rng, tile):
     np.testing.assert_allclose(out["clay_svr/quantity"][0].ravel(), v, rtol=1e-6, equal_nan=True)
     np.testing.assert_allclose(out["clay_svr/uncertainty"][0].ravel(), s, rtol=1e-6, equal_nan=True)
     np.testing.assert_array_equal(out["clay_svr/out_of_range"][0].ravel(), np.where(o, 2, 1))
+
+
+def test_calibration_curve_peaks_at_the_informative_count():
+    # the quantity depends on the first 3 predictors; 17 noise predictors follow, few samples: the
+    # blocked-CV R2 of OLS rises to 3, stays on a plateau and then falls (Hughes phenomenon for
+    # regression, common practice); the one-standard-error rule gives the informative count
+    from swathmill.workflows.methods.calibration import calibration_curve
+
+    rng = np.random.default_rng(0)
+    n = 30
+    X = rng.normal(size=(n, 20))
+    y = X[:, :3] @ np.array([2.0, 1.5, 1.0]) + rng.normal(0, 0.3, n)
+    groups = np.arange(n) % 6
+    m = fit_calibration(X, y, method="linear", predictor_names=[f"p{i}" for i in range(20)], groups=groups,
+                        folds=3)
+    curve = calibration_curve(X, y, m, groups, folds=3, seed=0)
+    assert curve["one_se"] == 3 and curve["peak"] >= 3
+    mean = np.array(curve["mean"])
+    assert mean[2] > mean[-1]
+    # one fold's R2 at 3 predictors, recomputed with scikit-learn directly (LinearRegression, GroupKFold)
+    tr, te = next(iter(GroupKFold(3).split(X, y, groups)))
+    r2 = skm.r2_score(y[te], LinearRegression().fit(X[tr, :3], y[tr]).predict(X[te, :3]))
+    folds = [skm.r2_score(y[b], LinearRegression().fit(X[a, :3], y[a]).predict(X[b, :3]))
+             for a, b in GroupKFold(3).split(X, y, groups)]
+    assert curve["mean"][2] == pytest.approx(np.mean(folds)) and r2 in folds

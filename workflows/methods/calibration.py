@@ -83,6 +83,7 @@ __all__ = [
     "CalibrationSamples",
     "fit_calibration",
     "predict_calibration",
+    "calibration_curve",
     "build_steps",
     "calibration_kernel",
 ]
@@ -161,6 +162,9 @@ class CalibrationConfig(BaseModel):
                                                   description="SVR: RBF gamma grid (on standardised predictors)")
     epsilon: list[float] | None = Field(None, description="SVR: epsilon grid in units of the quantity; "
                                                           "None: 0, 0.05, 0.1, 0.2 x std of the measured values")
+    curve: bool = Field(False, description="record the CV R2 against the number of leading predictors "
+                                           "(components in order, bands in selection order)")
+    curve_max: int = Field(20, ge=1, description="largest predictor count of the curve")
 
     @field_validator("C")
     @classmethod
@@ -561,6 +565,50 @@ def predict_calibration(model: Mapping[str, Any], X: np.ndarray) -> tuple[np.nda
 # the step
 # ----------------------------------------------------------------------------------------------
 
+def calibration_curve(X: np.ndarray, y: np.ndarray, model: Mapping[str, Any], groups: np.ndarray | None, *,
+                      folds: int, seed: int, max_count: int = 20) -> dict[str, Any]:
+    """Cross-validated R2 against the number of leading predictors (the dimensionality curve).
+
+    Uses :func:`swathmill.workflows.methods.bandselect.feature_count_curve` with the fitted method's
+    estimator (OLS; PLS with min(k, chosen components); the SVR of the chosen C, gamma and epsilon) on
+    the first k predictors, on GroupKFold folds of the sample groups, or, without groups, of a seeded
+    random assignment of the samples to ``folds`` groups.
+    """
+    from sklearn.cross_decomposition import PLSRegression
+    from sklearn.linear_model import LinearRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVR
+
+    from swathmill.workflows.methods.bandselect import feature_count_curve
+
+    n, p = X.shape
+    if groups is None:
+        groups = np.random.default_rng(seed).permutation(n) % folds
+    counts = list(range(1, min(p, max_count) + 1))
+    method = model["method"]
+    if method == "svr":
+        b = model["svr_best"]
+        est = lambda: make_pipeline(StandardScaler(), SVR(C=b["C"], gamma=b["gamma"], epsilon=b["epsilon"]))  # noqa: E731
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds, estimator=est)
+    elif method == "pls":
+        kc = int(model["n_components"])
+
+        class _Pls(PLSRegression):
+            def fit(self, A, t):  # type: ignore[override]
+                self.n_components = min(kc, A.shape[1])
+                return super().fit(A, t)
+
+            def predict(self, A, copy=True):  # type: ignore[override]
+                return super().predict(A, copy=copy).ravel()
+
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds,
+                                    estimator=lambda: _Pls(n_components=1, scale=True))
+    else:
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds, estimator=LinearRegression)
+    return {**curve, "features": "leading predictors in input order"}
+
+
 def _select_bands(meta: InputMeta, params: Mapping[str, Any], where: str) -> tuple[list[int], list[str]]:
     names = list(meta.spec.bands)
     if params.get("bands"):
@@ -627,6 +675,10 @@ def _finalize(acc: tuple[np.ndarray, np.ndarray], params: Mapping[str, Any], met
         range_margin=params.get("range_margin", 0.0), where=where,
         C=params.get("C", (1.0, 10.0, 100.0)), gamma=params.get("gamma", ("scale", 0.01, 0.1)),
         epsilon=params.get("epsilon"))
+    if params.get("curve"):
+        model["feature_curve"] = calibration_curve(
+            X[ok], values[ok], model, None if groups is None else np.asarray(groups)[ok],
+            folds=params["cv"]["folds"], seed=params["cv"]["seed"], max_count=params.get("curve_max", 20))
     model.update({"predictor_index": bidx, "dropped_samples": dropped,
                   "sample_ids": [ids[i] for i in np.flatnonzero(ok)],
                   "quantity": params["quantity"], "units": params.get("units", "")})
