@@ -182,3 +182,108 @@ def test_step_rejects_sample_outside_grid(tmp_path, rng):
     section = {"name": "q", "quantity": "q", "method": "linear", "input": "src/feat", "bands": ["depth"]}
     with pytest.raises(Exception, match="row 25, col 6 lies outside the 20 x 20 grid"):
         run_on_arrays(build_steps(section, samples), {"feat": (f, spec)}, tmp_path, tile=16)
+
+
+# SVR ---------------------------------------------------------------------------------------------
+def test_svr_matches_sklearn_on_same_samples_and_parameters(rng):
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVR
+
+    X, y = _spectral_data(rng, n=70, bands=12)
+    groups = np.repeat(np.arange(14), 5)
+    m = fit_calibration(X, y, method="svr", predictor_names=[f"b{i}" for i in range(12)], groups=groups,
+                        folds=5, C=[10.0], gamma=[0.05], epsilon=[0.1])
+    # sklearn.svm.SVR in a StandardScaler pipeline, fitted directly on the same samples and parameters
+    ref = make_pipeline(StandardScaler(), SVR(C=10.0, gamma=0.05, epsilon=0.1)).fit(X, y)
+    Xn = X + rng.normal(0, 0.01, X.shape)
+    v, s, _o = predict_calibration(m, Xn)
+    np.testing.assert_allclose(v, ref.predict(Xn), rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(m["fitted"], ref.predict(X), rtol=1e-9, atol=1e-9)
+    # cross-validated predictions: sklearn's cross_val_predict on the same GroupKFold (blocked) folds
+    cvp = cross_val_predict(make_pipeline(StandardScaler(), SVR(C=10.0, gamma=0.05, epsilon=0.1)), X, y,
+                            groups=groups, cv=GroupKFold(5))
+    np.testing.assert_allclose(m["cv_predicted"], cvp, rtol=1e-9, atol=1e-9)
+    assert m["cv"]["rmse"] == pytest.approx(np.sqrt(skm.mean_squared_error(y, cvp)))
+    # uncertainty: binned CV residual combined with the jackknife spread of the fold models (module notes)
+    folds = [make_pipeline(StandardScaler(), SVR(C=10.0, gamma=0.05, epsilon=0.1)).fit(X[tr], y[tr])
+             for tr, _te in GroupKFold(5).split(X, y, groups)]
+    preds = np.array([f.predict(Xn) for f in folds])
+    jack = 4 / 5 * np.sum((preds - preds.mean(0)) ** 2, axis=0)
+    s_cv = np.interp(v, m["sigma_at"], m["sigma"])
+    np.testing.assert_allclose(s, np.sqrt(s_cv ** 2 + jack), rtol=1e-8)
+    assert np.all(s >= s_cv)
+
+
+def test_svr_scale_gamma_and_grid_choice(rng):
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVR
+
+    X, y = _spectral_data(rng, n=60, bands=8)
+    m = fit_calibration(X, y, method="svr", predictor_names=list("abcdefgh"), folds=4, seed=1,
+                        C=[1.0, 100.0], gamma=["scale"], epsilon=None)
+    assert len(m["svr_grid"]) == 2 * 4  # C x default epsilon grid
+    best = m["svr_best"]
+    assert m["cv"]["rmse"] == pytest.approx(min(m["svr_grid"].values()))
+    ref = make_pipeline(StandardScaler(), SVR(C=best["C"], gamma="scale", epsilon=best["epsilon"])).fit(X, y)
+    np.testing.assert_allclose(predict_calibration(m, X)[0], ref.predict(X), rtol=1e-9, atol=1e-9)
+
+
+def test_svr_out_of_range_flags_far_pixels(rng):
+    X, y = _spectral_data(rng, n=60, bands=8)
+    m = fit_calibration(X, y, method="svr", predictor_names=list("abcdefgh"), folds=4, C=[10.0], gamma=[0.1],
+                        epsilon=[0.1])
+    _v, _s, out = predict_calibration(m, np.vstack([X[:5], X[:5] + 1.0]))
+    assert not out[:5].any() and out[5:].all()
+
+
+@pytest.mark.parametrize("tile", [16, 48])
+def test_svr_step_tiled_equals_whole(tmp_path, rng, tile):
+    from swathmill.tiles.tasks import load_model
+    from swathmill.tiles.testing import run_on_arrays
+
+    f, spec = _predictor_map(rng)
+    rows, cols = rng.integers(0, 48, 60), rng.integers(0, 40, 60)
+    keep = np.unique(rows * 40 + cols, return_index=True)[1]
+    rows, cols = rows[keep], cols[keep]
+    values = 2.0 + 4.0 * f[0, rows, cols] ** 2 - 1.5 * f[1, rows, cols] + rng.normal(0, 0.05, rows.size)
+    samples = CalibrationSamples(rows=rows, cols=cols, values=values, groups=np.arange(rows.size) % 6)
+    section = {"name": "clay_svr", "quantity": "clay", "method": "svr", "input": "src/feat",
+               "bands": ["depth", "area"], "C": [10.0], "gamma": ["scale", 0.5], "epsilon": [0.05],
+               "cv": {"folds": 3, "grouped": True}}
+    out, _ = run_on_arrays(build_steps(section, samples), {"feat": (f, spec)}, tmp_path, tile=tile)
+    model = load_model(next((tmp_path / "run" / "models").glob("clay_svr-*.json")).with_suffix(""))
+    whole = fit_calibration(f[:2, rows, cols].T, values, method="svr", predictor_names=["depth", "area"],
+                            groups=np.arange(rows.size) % 6, folds=3, C=[10.0], gamma=["scale", 0.5], epsilon=[0.05])
+    np.testing.assert_allclose(model["cv_predicted"], whole["cv_predicted"], rtol=1e-10)
+    v, s, o = predict_calibration(whole, f[:2].reshape(2, -1).T)
+    # DESIGN.md invariant 1: tiled equals untiled (floats to 1e-6 relative)
+    np.testing.assert_allclose(out["clay_svr/quantity"][0].ravel(), v, rtol=1e-6, equal_nan=True)
+    np.testing.assert_allclose(out["clay_svr/uncertainty"][0].ravel(), s, rtol=1e-6, equal_nan=True)
+    np.testing.assert_array_equal(out["clay_svr/out_of_range"][0].ravel(), np.where(o, 2, 1))
+
+
+def test_calibration_curve_peaks_at_the_informative_count():
+    # the quantity depends on the first 3 predictors; 17 noise predictors follow, few samples: the
+    # blocked-CV R2 of OLS rises to 3, stays on a plateau and then falls (Hughes phenomenon for
+    # regression, common practice); the one-standard-error rule gives the informative count
+    from swathmill.workflows.methods.calibration import calibration_curve
+
+    rng = np.random.default_rng(0)
+    n = 30
+    X = rng.normal(size=(n, 20))
+    y = X[:, :3] @ np.array([2.0, 1.5, 1.0]) + rng.normal(0, 0.3, n)
+    groups = np.arange(n) % 6
+    m = fit_calibration(X, y, method="linear", predictor_names=[f"p{i}" for i in range(20)], groups=groups,
+                        folds=3)
+    curve = calibration_curve(X, y, m, groups, folds=3, seed=0)
+    assert curve["one_se"] == 3 and curve["peak"] >= 3
+    mean = np.array(curve["mean"])
+    assert mean[2] > mean[-1]
+    # one fold's R2 at 3 predictors, recomputed with scikit-learn directly (LinearRegression, GroupKFold)
+    tr, te = next(iter(GroupKFold(3).split(X, y, groups)))
+    r2 = skm.r2_score(y[te], LinearRegression().fit(X[tr, :3], y[tr]).predict(X[te, :3]))
+    folds = [skm.r2_score(y[b], LinearRegression().fit(X[a, :3], y[a]).predict(X[b, :3]))
+             for a, b in GroupKFold(3).split(X, y, groups)]
+    assert curve["mean"][2] == pytest.approx(np.mean(folds)) and r2 in folds

@@ -25,6 +25,8 @@ from swathmill.tiles.run import ENGINE_VERSION, PlanError, Run, RunOptions, RunR
 from swathmill.tiles.step import Step, StepError
 from swathmill.tiles.store import TileStore
 
+from swathmill.workflows.methods.bandselect import BandSelectionConfig
+from swathmill.workflows.methods.bandselect import build_steps as band_selection_steps
 from swathmill.workflows.methods.calibration import CalibrationConfig, CalibrationSamples
 from swathmill.workflows.methods.calibration import build_steps as calibration_steps
 from swathmill.workflows.methods.classify import SamConfig, SffConfig, SvmConfig
@@ -107,6 +109,9 @@ class RunConfig(Section):
     reference: GroundReferenceConfig | None = Field(
         None, description="ground reference: validation samples for accuracy, measurements for calibration")
     mnf: MnfConfig | None = None
+    band_selection: list[BandSelectionConfig] = Field(
+        default_factory=list, description="band selections (one section or a list); input of later steps as "
+                                          "'<name>/selected'")
     endmembers: EndmemberExtractionConfig | None = None
     classify: ClassifyConfig | None = None
     unmix: UnmixConfig | None = None
@@ -115,6 +120,11 @@ class RunConfig(Section):
     calibrations: list[CalibrationEntry] = Field(default_factory=list)
     accuracy: AccuracyConfig = AccuracyConfig()
     report: ReportConfig = ReportConfig()
+
+    @field_validator("band_selection", mode="before")
+    @classmethod
+    def _listify_band_selection(cls, v: Any) -> Any:
+        return [v] if isinstance(v, dict) else v
 
 
 def load_run_config(path: Path) -> tuple[RunConfig, dict]:
@@ -211,6 +221,8 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
     steps: list[Step] = []
     if cfg.mnf is not None:
         steps += mnf_steps(cfg.mnf, "mosaic/reflectance")
+    for section in cfg.band_selection:
+        steps += band_selection_steps(section, ctx)
     if cfg.endmembers is not None:
         steps += endmember_steps(cfg.endmembers, ctx)
     if cfg.classify is not None:

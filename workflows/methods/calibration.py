@@ -11,6 +11,15 @@ Two regressions, fitted on the predictor values at the reference samples:
     is fixed or chosen by the smallest cross-validated RMSE (then the reported CV figures are
     slightly optimistic, as the choice is made on the same folds).
 
+``svr``
+    Support vector regression (``sklearn.svm.SVR``, RBF kernel, in a pipeline after
+    ``StandardScaler``; Drucker et al., 1997; Smola and Schoelkopf, 2004) on spectra, selected bands,
+    components or feature bands. ``C``, ``gamma`` and ``epsilon`` come from a grid searched with the
+    same cross-validation folds (the combination of the smallest CV RMSE; the reported CV figures are
+    then slightly optimistic, as for the PLS component count). ``epsilon`` is given in units of the
+    quantity; by default the grid is 0, 0.05, 0.1 and 0.2 times the sample standard deviation of the
+    measured values.
+
 Cross-validation (``sklearn.model_selection.KFold`` shuffled with a seed, or ``GroupKFold`` when
 samples carry groups, e.g. one group per field site so that neighbouring samples never sit on both
 sides) gives a prediction for every sample from a model that did not see it; R2, RMSE and bias
@@ -19,7 +28,10 @@ sides) gives a prediction for every sample from a model that did not see it; R2,
 Model storage
     The fitted model is plain arrays plus JSON (no pickle): the regression is stored as its affine
     map ``y = X b + c`` over the predictors, which is exact for both methods, and for PLS also the
-    affine map from predictors to latent scores. Applying the model needs numpy only.
+    affine map from predictors to latent scores. Applying the model needs numpy only. An SVR is
+    stored as its scaler (mean, scale), support vectors (in scaled units), dual coefficients,
+    intercept and numeric ``gamma``: ``y = sum_i a_i exp(-gamma |z - s_i|^2) + b`` with
+    ``z = (x - mean) / scale``, which is what ``SVR.predict`` computes; the same for each CV-fold model.
 
 Per-pixel uncertainty (the choice made here)
     A 1-sigma prediction error taken from the cross-validation residuals: the samples are split
@@ -29,10 +41,16 @@ Per-pixel uncertainty (the choice made here)
     With fewer than 20 samples it is one value, the CV RMSE. It thus follows the error where it
     changes with the level of the quantity (often larger at high values), includes any bias, and is
     only meaningful inside the calibration range.
+    For ``svr`` the 1-sigma is ``sqrt(s_cv(y)^2 + v_jack(x))``: the binned CV residual above plus the
+    delete-a-fold jackknife variance of the k CV-fold models' predictions at the pixel,
+    ``v_jack = (k - 1) / k * sum_i (f_i(x) - mean f(x))^2`` (Efron and Stein, 1981, from memory). The
+    second term grows where the fold models disagree, typically away from the calibration samples; as
+    the CV residuals already hold part of that spread, the sum errs on the large side.
 
 Out-of-range mask
     A pixel is outside when any predictor (``linear``) or any PLS latent score (``pls``; raw
-    spectra have too many bands for a per-band box to be useful) lies outside the minimum-maximum
+    spectra have too many bands for a per-band box to be useful), or, for ``svr``, any of the first
+    ``min(5, p, n - 1)`` principal-component scores of the standardised predictors, lies outside the minimum-maximum
     of the calibration samples, widened by ``range_margin`` times that range. The output
     ``out_of_range`` is 1 inside, 2 outside (0 no data).
 
@@ -66,6 +84,7 @@ __all__ = [
     "CalibrationSamples",
     "fit_calibration",
     "predict_calibration",
+    "calibration_curve",
     "build_steps",
     "calibration_kernel",
 ]
@@ -112,12 +131,20 @@ class CalibrationConfig(Section):
             wavelength_ranges: [[2000, 2450]]
             n_components: null             # chosen by CV up to max_components
             max_components: 8
+          - name: clay_svr
+            quantity: clay
+            method: svr
+            input: bands/selected          # selected bands, components or feature bands too
+            C: [1, 10, 100]
+            gamma: [scale, 0.01, 0.1]
+            epsilon: null                  # 0, 0.05, 0.1, 0.2 x std of the measured values
+            cv: {folds: 5, grouped: true}
     """
 
     name: str
     quantity: str
     units: str = ""
-    method: Literal["linear", "pls"]
+    method: Literal["linear", "pls", "svr"]
     input: str
     bands: list[str] | None = Field(None, description="predictor band names; all bands if omitted (pls)")
     wavelength_ranges: list[tuple[float, float]] | None = Field(
@@ -127,6 +154,28 @@ class CalibrationConfig(Section):
     scale: bool = Field(True, description="PLS: scale predictors to unit variance")
     cv: CrossValidation = Field(default_factory=CrossValidation)
     range_margin: float = Field(0.0, ge=0.0, description="widen the calibration range by this fraction")
+    C: list[float] = Field(default_factory=lambda: [1.0, 10.0, 100.0], min_length=1, description="SVR: C grid")
+    gamma: list[float | Literal["scale"]] = Field(default_factory=lambda: ["scale", 0.01, 0.1], min_length=1,
+                                                  description="SVR: RBF gamma grid (on standardised predictors)")
+    epsilon: list[float] | None = Field(None, description="SVR: epsilon grid in units of the quantity; "
+                                                          "None: 0, 0.05, 0.1, 0.2 x std of the measured values")
+    curve: bool = Field(False, description="record the CV R2 against the number of leading predictors "
+                                           "(components in order, bands in selection order)")
+    curve_max: int = Field(20, ge=1, description="largest predictor count of the curve")
+
+    @field_validator("C")
+    @classmethod
+    def _positive_c(cls, v: list[float]) -> list[float]:
+        if any(not c > 0 for c in v):
+            raise ValueError(f"C values must be positive. Got {v}")
+        return v
+
+    @field_validator("epsilon")
+    @classmethod
+    def _epsilon(cls, v: list[float] | None) -> list[float] | None:
+        if v is not None and (not v or any(e < 0 for e in v)):
+            raise ValueError(f"epsilon values must be >= 0 (at least one). Got {v}")
+        return v
 
     @field_validator("name", "quantity")
     @classmethod
@@ -250,10 +299,86 @@ def _uncertainty_bins(pred: np.ndarray, resid: np.ndarray) -> tuple[np.ndarray, 
     return np.array(centres), np.array(values)
 
 
+def _svr_fit(X: np.ndarray, y: np.ndarray, C: float, gamma: float | str, epsilon: float) -> dict[str, np.ndarray]:
+    """A standardised RBF SVR fitted with scikit-learn, returned as plain arrays (see the module notes)."""
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVR
+
+    pipe = Pipeline([("scale", StandardScaler()), ("svr", SVR(kernel="rbf", C=C, gamma=gamma, epsilon=epsilon))])
+    pipe.fit(X, y)
+    sc, svr = pipe.named_steps["scale"], pipe.named_steps["svr"]
+    if isinstance(gamma, str):  # 'scale': 1 / (n_features * Z.var()) on the standardised data (sklearn SVR docs)
+        Z = sc.transform(X)
+        var = float(Z.var())
+        g = 1.0 / (Z.shape[1] * var) if var > 0 else 1.0
+    else:
+        g = float(gamma)
+    return {"mean": np.asarray(sc.mean_, dtype=np.float64), "scale": np.asarray(sc.scale_, dtype=np.float64),
+            "sv": np.asarray(svr.support_vectors_, dtype=np.float64),
+            "dual": np.asarray(svr.dual_coef_, dtype=np.float64).ravel(),
+            "b": np.asarray(float(svr.intercept_[0])), "gamma": np.asarray(g)}
+
+
+def _svr_apply(m: Mapping[str, np.ndarray], X: np.ndarray, chunk: int = 16384) -> np.ndarray:
+    """``sum_i a_i exp(-gamma |z - s_i|^2) + b`` in chunks of pixels (numpy only)."""
+    sv = np.asarray(m["sv"], dtype=np.float64)
+    dual = np.asarray(m["dual"], dtype=np.float64)
+    g, b = float(m["gamma"]), float(m["b"])
+    mean, scale = np.asarray(m["mean"]), np.asarray(m["scale"])
+    sv2 = np.einsum("ij,ij->i", sv, sv)
+    out = np.empty(X.shape[0])
+    for s in range(0, X.shape[0], chunk):
+        Z = (X[s:s + chunk] - mean) / scale
+        d2 = np.einsum("ij,ij->i", Z, Z)[:, None] + sv2[None, :] - 2.0 * Z @ sv.T
+        out[s:s + chunk] = np.exp(-g * np.maximum(d2, 0.0)) @ dual + b
+    return out
+
+
+def _svr_pack(prefix: str, m: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    return {f"{prefix}_{k}": np.asarray(v) for k, v in m.items()}
+
+
+def _svr_unpack(model: Mapping[str, Any], prefix: str) -> dict[str, np.ndarray]:
+    return {k: np.asarray(model[f"{prefix}_{k}"]) for k in ("mean", "scale", "sv", "dual", "b", "gamma")}
+
+
+def _svr_folds(model: Mapping[str, Any]) -> list[dict[str, np.ndarray]]:
+    sizes = np.asarray(model["svr_fold_sizes"], dtype=np.int64)
+    ends = np.cumsum(sizes)
+    out = []
+    for i, (e, n) in enumerate(zip(ends, sizes)):
+        out.append({"mean": np.asarray(model["svr_fold_mean"])[i], "scale": np.asarray(model["svr_fold_scale"])[i],
+                    "sv": np.asarray(model["svr_fold_sv"])[e - n:e], "dual": np.asarray(model["svr_fold_dual"])[e - n:e],
+                    "b": np.asarray(model["svr_fold_b"])[i], "gamma": np.asarray(model["svr_fold_gamma"])[i]})
+    return out
+
+
+def _svr_sigma(model: Mapping[str, Any], X: np.ndarray, value: np.ndarray) -> np.ndarray:
+    preds = np.array([_svr_apply(m, X) for m in _svr_folds(model)])
+    k = preds.shape[0]
+    jack = (k - 1) / k * np.sum((preds - preds.mean(axis=0)) ** 2, axis=0)
+    s_cv = np.interp(value, np.asarray(model["sigma_at"]), np.asarray(model["sigma"]))
+    return np.sqrt(s_cv ** 2 + jack)
+
+
+def _pca_score_map(X: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Affine map of rows of X to the first k principal-component scores of the standardised X."""
+    mean = X.mean(axis=0)
+    scale = X.std(axis=0)
+    scale[scale == 0] = 1.0
+    Z = (X - mean) / scale
+    _, _, vt = np.linalg.svd(Z, full_matrices=False)
+    V = vt[:k].T
+    return V / scale[:, None], -(mean / scale) @ V
+
+
 def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "pls"],
                     predictor_names: Sequence[str], groups: np.ndarray | None = None, folds: int = 5,
                     seed: int = 0, n_components: int | None = None, max_components: int = 10,
-                    scale: bool = True, range_margin: float = 0.0, where: str = "calibration") -> dict:
+                    scale: bool = True, range_margin: float = 0.0, where: str = "calibration",
+                    C: Sequence[float] = (1.0, 10.0, 100.0), gamma: Sequence[float | str] = ("scale", 0.01, 0.1),
+                    epsilon: Sequence[float] | None = None) -> dict:
     """Fit a calibration and cross-validate it.
 
     Parameters
@@ -263,13 +388,15 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
     y
         (n_samples,) measured values.
     method
-        ``"linear"`` (OLS with intercept) or ``"pls"``.
+        ``"linear"`` (OLS with intercept), ``"pls"`` or ``"svr"``.
     groups
         Optional (n_samples,) group labels: GroupKFold instead of a shuffled KFold.
     n_components
         PLS components; None chooses the count with the smallest CV RMSE in 1..max_components.
     where
         Label used in error messages (e.g. the step name).
+    C, gamma, epsilon
+        SVR grids (``epsilon`` None: 0, 0.05, 0.1, 0.2 times the standard deviation of ``y``).
 
     Returns
     -------
@@ -277,6 +404,8 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
         The model: arrays (``coef``, ``intercept``, ``range_low``/``range_high``, ``sigma_at``/
         ``sigma``, ``observed``, ``cv_predicted``, ``fitted``, PLS ``score_map``/``score_offset``)
         and JSON values (``method``, ``predictors``, ``n_components``, ``cv`` and ``fit`` metrics).
+        SVR models hold ``svr_*`` arrays (the refitted model and, ``svr_fold_*``, the CV-fold
+        models), ``svr_best`` and ``svr_grid`` (CV RMSE per combination) instead of an affine map.
     """
     X = np.asarray(X, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64).ravel()
@@ -288,6 +417,8 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
     if not np.all(np.isfinite(X)):
         raise CalibrationError(f"{where}: predictor values must be finite")
     need = max(folds, p + 2) if method == "linear" else max(folds, 3)
+    if method == "svr" and (not C or not gamma or (epsilon is not None and not epsilon)):
+        raise CalibrationError(f"{where}: the SVR grids C, gamma and epsilon need at least one value each")
     if n < need:
         raise CalibrationError(f"{where}: method {method!r} with {p} predictors and {folds} folds needs at least "
                                f"{need} samples with valid predictors. Got {n}")
@@ -305,7 +436,41 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
         return out
 
     curve: list[float] = []
-    if method == "linear":
+    extra: dict[str, Any] = {}
+    if method == "svr":
+        eps = list(epsilon) if epsilon is not None else [f * float(np.std(y)) for f in (0.0, 0.05, 0.1, 0.2)]
+        grid = [(float(c), g if isinstance(g, str) else float(g), float(e)) for c in C for g in gamma for e in eps]
+        best_rmse, best, best_pred, best_folds = np.inf, None, None, None
+        scores: dict[str, float] = {}
+        for c, g, e in grid:
+            pred = np.empty(n)
+            folds_m = []
+            for tr, te in splits:
+                fm = _svr_fit(X[tr], y[tr], c, g, e)
+                pred[te] = _svr_apply(fm, X[te])
+                folds_m.append(fm)
+            rmse = float(np.sqrt(np.mean((pred - y) ** 2)))
+            scores[f"C={c:g},gamma={g},epsilon={e:g}"] = rmse
+            if rmse < best_rmse:
+                best_rmse, best, best_pred, best_folds = rmse, (c, g, e), pred, folds_m
+        k = None
+        cv_pred = best_pred
+        full = _svr_fit(X, y, *best)
+        fitted = _svr_apply(full, X)
+        coef, intercept = np.zeros(p), 0.0
+        nk = int(min(5, p, n - 1))
+        score_map, score_offset = _pca_score_map(X, nk)
+        scores_x = X @ score_map + score_offset
+        low, high = scores_x.min(0), scores_x.max(0)
+        extra = {**_svr_pack("svr", full),
+                 "svr_fold_sizes": np.array([f["sv"].shape[0] for f in best_folds], dtype=np.int64),
+                 "svr_fold_sv": np.concatenate([f["sv"] for f in best_folds], axis=0),
+                 "svr_fold_dual": np.concatenate([f["dual"] for f in best_folds]),
+                 **{f"svr_fold_{key}": np.array([f[key] for f in best_folds]) for key in ("mean", "scale", "b", "gamma")},
+                 "svr_best": {"C": best[0], "gamma": best[1], "epsilon": best[2],
+                              "gamma_value": float(full["gamma"])},
+                 "svr_grid": scores}
+    elif method == "linear":
         k = None
         cv_pred = cv_predict(None)
         coef, intercept = _ols(X, y)
@@ -334,8 +499,9 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
         scores = X @ score_map + score_offset
         low, high = scores.min(0), scores.max(0)
     else:
-        raise CalibrationError(f"{where}: method must be 'linear' or 'pls'. Got {method!r}")
-    fitted = X @ coef + intercept
+        raise CalibrationError(f"{where}: method must be 'linear', 'pls' or 'svr'. Got {method!r}")
+    if method != "svr":
+        fitted = X @ coef + intercept
     widen = range_margin * (high - low)
     sigma_at, sigma = _uncertainty_bins(cv_pred, cv_pred - y)
     cvm, fitm = regression_metrics(y, cv_pred), regression_metrics(y, fitted)
@@ -345,7 +511,7 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
                "grouped": groups is not None, "seed": seed},
         "fit": {"r2": fitm.r2, "rmse": fitm.rmse, "bias": fitm.bias, "n": fitm.n},
         "cv_rmse_by_components": curve,
-        "range_space": "predictors" if method == "linear" else "pls_scores",
+        "range_space": {"linear": "predictors", "pls": "pls_scores", "svr": "pca_scores"}[method],
         "coef": np.asarray(coef, dtype=np.float64), "intercept": np.asarray(intercept, dtype=np.float64),
         "range_low": low - widen, "range_high": high + widen,
         "sigma_at": sigma_at, "sigma": sigma,
@@ -354,6 +520,7 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
     if score_map is not None:
         model["score_map"] = score_map
         model["score_offset"] = score_offset
+    model.update(extra)
     return model
 
 
@@ -378,8 +545,13 @@ def predict_calibration(model: Mapping[str, Any], X: np.ndarray) -> tuple[np.nda
     if X.ndim != 2 or X.shape[1] != coef.size:
         raise CalibrationError(f"the calibration needs {coef.size} predictors per pixel. Got shape {X.shape}")
     ok = np.all(np.isfinite(X), axis=1)
-    value = X @ coef + float(model["intercept"])
-    sigma = np.interp(value, np.asarray(model["sigma_at"]), np.asarray(model["sigma"]))
+    if model["method"] == "svr":
+        Xs = np.where(ok[:, None], X, 0.0)
+        value = _svr_apply(_svr_unpack(model, "svr"), Xs)
+        sigma = _svr_sigma(model, Xs, value)
+    else:
+        value = X @ coef + float(model["intercept"])
+        sigma = np.interp(value, np.asarray(model["sigma_at"]), np.asarray(model["sigma"]))
     space = X if model["range_space"] == "predictors" else X @ np.asarray(model["score_map"]) + np.asarray(model["score_offset"])
     with np.errstate(invalid="ignore"):
         outside = np.any((space < np.asarray(model["range_low"])) | (space > np.asarray(model["range_high"])), axis=1)
@@ -389,6 +561,50 @@ def predict_calibration(model: Mapping[str, Any], X: np.ndarray) -> tuple[np.nda
 # ----------------------------------------------------------------------------------------------
 # the step
 # ----------------------------------------------------------------------------------------------
+
+def calibration_curve(X: np.ndarray, y: np.ndarray, model: Mapping[str, Any], groups: np.ndarray | None, *,
+                      folds: int, seed: int, max_count: int = 20) -> dict[str, Any]:
+    """Cross-validated R2 against the number of leading predictors (the dimensionality curve).
+
+    Uses :func:`swathmill.workflows.methods.bandselect.feature_count_curve` with the fitted method's
+    estimator (OLS; PLS with min(k, chosen components); the SVR of the chosen C, gamma and epsilon) on
+    the first k predictors, on GroupKFold folds of the sample groups, or, without groups, of a seeded
+    random assignment of the samples to ``folds`` groups.
+    """
+    from sklearn.cross_decomposition import PLSRegression
+    from sklearn.linear_model import LinearRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVR
+
+    from swathmill.workflows.methods.bandselect import feature_count_curve
+
+    n, p = X.shape
+    if groups is None:
+        groups = np.random.default_rng(seed).permutation(n) % folds
+    counts = list(range(1, min(p, max_count) + 1))
+    method = model["method"]
+    if method == "svr":
+        b = model["svr_best"]
+        est = lambda: make_pipeline(StandardScaler(), SVR(C=b["C"], gamma=b["gamma"], epsilon=b["epsilon"]))  # noqa: E731
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds, estimator=est)
+    elif method == "pls":
+        kc = int(model["n_components"])
+
+        class _Pls(PLSRegression):
+            def fit(self, A, t):  # type: ignore[override]
+                self.n_components = min(kc, A.shape[1])
+                return super().fit(A, t)
+
+            def predict(self, A, copy=True):  # type: ignore[override]
+                return super().predict(A, copy=copy).ravel()
+
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds,
+                                    estimator=lambda: _Pls(n_components=1, scale=True))
+    else:
+        curve = feature_count_curve(X, y, groups, counts, task="regress", folds=folds, estimator=LinearRegression)
+    return {**curve, "features": "leading predictors in input order"}
+
 
 def _select_bands(meta: InputMeta, params: CalibrationConfig, where: str) -> tuple[list[int], list[str]]:
     names = list(meta.spec.bands)
@@ -453,7 +669,12 @@ def _finalize(acc: tuple[np.ndarray, np.ndarray], params: CalibrationConfig, met
         groups=None if groups is None else np.asarray(groups)[ok], folds=params.cv.folds,
         seed=params.cv.seed, n_components=params.n_components,
         max_components=params.max_components, scale=params.scale,
-        range_margin=params.range_margin, where=where)
+        range_margin=params.range_margin, where=where,
+        C=tuple(params.C), gamma=tuple(params.gamma), epsilon=params.epsilon)
+    if params.curve:
+        model["feature_curve"] = calibration_curve(
+            X[ok], values[ok], model, None if groups is None else np.asarray(groups)[ok],
+            folds=params.cv.folds, seed=params.cv.seed, max_count=params.curve_max)
     model.update({"predictor_index": bidx, "dropped_samples": dropped,
                   "sample_ids": [ids[i] for i in np.flatnonzero(ok)],
                   "quantity": params.quantity, "units": params.units})
@@ -485,10 +706,13 @@ def _outputs(meta: dict[str, InputMeta], model: Mapping[str, Any] | None,
         attrs.update({f"cv_{k}": model["cv"][k] for k in ("r2", "rmse", "bias", "n")})
         attrs["predictors"] = list(model["predictors"])
         attrs["n_components"] = model["n_components"]
+        if model.get("svr_best"):
+            attrs["svr"] = dict(model["svr_best"])
     return {
         "quantity": OutputSpec(bands=(q,), dtype="float32", nodata=float("nan"), attrs=attrs, role=Role.QUANTITY),
         "uncertainty": OutputSpec(bands=(f"{q}_sigma",), dtype="float32", nodata=float("nan"), role=Role.UNCERTAINTY,
-                                  attrs={"units": units, "meaning": "1-sigma prediction error from CV residuals"}),
+                                  attrs={"units": units, "meaning": "1-sigma prediction error from CV residuals"
+                                         + (" and the spread of the CV-fold models" if params.method == "svr" else "")}),
         "out_of_range": OutputSpec(bands=(f"{q}_range",), dtype="uint8", nodata=0, kind="categorical", role=Role.MASK,
                                    class_names=("within calibration range", "outside calibration range"),
                                    colors=((200, 200, 200), (215, 48, 39))),
