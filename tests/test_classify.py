@@ -404,10 +404,11 @@ def test_config_models_and_build_steps(tmp_path: Path) -> None:
     ctx = {"grid": default_grid(16, 16), "base_dir": tmp_path}
     [s] = build_steps(SamConfig(references={"library": "lib.csv", "materials": ["beta", "alpha"]},
                                 class_thresholds={"alpha": 0.2}), ctx)
-    assert s.name == "sam" and s.params["names"] == ["beta", "alpha"] and s.inputs == {"x": "mosaic/reflectance"}
+    assert s.name == "sam" and s.params.names == ("beta", "alpha") and s.inputs == {"x": "mosaic/reflectance"}
+    assert s.params.settings.class_thresholds == {"alpha": 0.2} and s.params.settings.threshold == 0.1
     [s] = build_steps(SffConfig(name="sff_clay", references={"library": str(tmp_path / "lib.csv")},
                                 range=(2100, 2400), max_rmse=0.02), ctx)
-    assert s.params["range"] == [2100.0, 2400.0] and s.params["max_rmse"] == 0.02
+    assert s.params.settings.range == (2100.0, 2400.0) and s.params.settings.max_rmse == 0.02
     with pytest.raises(ClassifyError, match=r"fewer samples than the 5 cross-validation folds"):
         build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633"}), ctx)
     from swathmill.workflows.inputs.reference import GroundReferenceError

@@ -193,7 +193,7 @@ def build_later_steps(cfg: RunConfig, base: Path, mosaic_store: TileStore) -> Pl
                                  f"of this run ({names})")
             for s in made:
                 if wanted is None or s.name in wanted:
-                    n_classes = len(s.params["class_names"])
+                    n_classes = len(s.params.class_names)
                     steps.append(modal_filter_step(f"{s.name}_modal", f"{s.name}/classes", cl.modal_filter.size,
                                                    n_classes=n_classes))
                     class_maps.append(f"{s.name}_modal/output")
