@@ -222,7 +222,8 @@ def test_config_builds_the_step():
     cfg = EndmemberExtractionConfig.model_validate({"method": "vca", "n_endmembers": 5, "seed": 3})
     (step,) = build_steps(cfg)
     assert step.inputs == {"reduced": "mnf/components", "spectra": "mosaic/reflectance"}
-    assert step.params["extraction"]["method"] == "vca" and step.params["extraction"]["seed"] == 3
+    assert step.params.extraction.method == "vca" and step.params.extraction.seed == 3
+    assert step.params.step == "endmembers" and step.params.extraction.n_directions == 512
     with pytest.raises(ValueError, match="step/output"):
         EndmemberExtractionConfig.model_validate({"input": "mnf"})
     with pytest.raises(ValueError):
