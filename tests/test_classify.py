@@ -17,8 +17,12 @@ from sklearn.svm import SVC
 from swathmill.tiles.step import OutputSpec
 from swathmill.tiles.testing import default_grid, run_on_arrays
 from swathmill.workflows.methods.classify import (
+    ClassifierParams,
     ClassifyError,
     SamConfig,
+    SamSettings,
+    SffSettings,
+    SvmSettings,
     SffConfig,
     SvmConfig,
     assign_best_fit,
@@ -404,10 +408,11 @@ def test_config_models_and_build_steps(tmp_path: Path) -> None:
     ctx = {"grid": default_grid(16, 16), "base_dir": tmp_path}
     [s] = build_steps(SamConfig(references={"library": "lib.csv", "materials": ["beta", "alpha"]},
                                 class_thresholds={"alpha": 0.2}), ctx)
-    assert s.name == "sam" and s.params["names"] == ["beta", "alpha"] and s.inputs == {"x": "mosaic/reflectance"}
+    assert s.name == "sam" and s.params.names == ("beta", "alpha") and s.inputs == {"x": "mosaic/reflectance"}
+    assert s.params.settings.class_thresholds == {"alpha": 0.2} and s.params.settings.threshold == 0.1
     [s] = build_steps(SffConfig(name="sff_clay", references={"library": str(tmp_path / "lib.csv")},
                                 range=(2100, 2400), max_rmse=0.02), ctx)
-    assert s.params["range"] == [2100.0, 2400.0] and s.params["max_rmse"] == 0.02
+    assert s.params.settings.range == (2100.0, 2400.0) and s.params.settings.max_rmse == 0.02
     with pytest.raises(ClassifyError, match=r"fewer samples than the 5 cross-validation folds"):
         build_steps(SvmConfig(reference={"path": "pts.csv", "crs": "EPSG:32633"}), ctx)
     from swathmill.workflows.inputs.reference import GroundReferenceError
@@ -478,3 +483,34 @@ def test_jasper_ridge_sam_and_svm(shared_data: Path, tmp_path: Path) -> None:
     # The SVM is validated on blocks it never saw, and blocks differ (the road is in few of them),
     # so it gets the same floor rather than a tighter one.
     assert oa_svm >= 0.95
+
+
+def test_settings_are_declared_once_and_are_the_step_parameters(tmp_path: Path) -> None:
+    lib = library()
+    by_keywords = sam_step("sam", "src/cube", library=lib, threshold=0.2, exclude=[[1340, 1450]])
+    by_object = sam_step("sam", "src/cube", library=lib, settings=SamSettings(threshold=0.2, exclude=[(1340, 1450)]))
+    assert isinstance(by_keywords.params, ClassifierParams)
+    assert by_keywords.describe() == by_object.describe()  # the same step key either way
+    assert by_keywords.params.class_names == tuple(NAMES) and by_keywords.params.ref_class == (1, 2, 3, 4)
+    # defaults come from the settings' fields only
+    assert sam_step("sam", "src/cube", library=lib).params.settings == SamSettings()
+    assert sff_step("sff", "src/cube", library=lib, wl_range=(2100, 2400)).params.settings == SffSettings(range=(2100, 2400))
+    table = patch_samples()
+    assert svm_step("svm", "src/cube", samples=table, folds=3).params.settings == SvmSettings(folds=3)
+    # a section builds the step with its settings fields (name, input and references are not parameters)
+    write_library(lib, tmp_path / "lib.csv")
+    [s] = build_steps(SamConfig(name="sam2", references={"library": "lib.csv"}, threshold=0.2,
+                                exclude=[(1340, 1450)]), {"base_dir": tmp_path})
+    assert type(s.params.settings) is SamSettings and s.params.settings == by_keywords.params.settings
+    # a changed setting changes the step's identity (its key)
+    assert sam_step("sam", "src/cube", library=lib, threshold=0.21, exclude=[[1340, 1450]]).describe() != \
+        by_keywords.describe()
+    # bad settings name the step and the key
+    with pytest.raises(ClassifyError, match=r"step 'sam': bad setting\(s\): threshold: .*greater than 0"):
+        sam_step("sam", "src/cube", library=lib, threshold=-0.1)
+    with pytest.raises(ClassifyError, match=r"step 'sff': bad setting\(s\): treshold: Extra inputs"):
+        sff_step("sff", "src/cube", library=lib, wl_range=(2100, 2400), treshold=1)
+    with pytest.raises(ClassifyError, match=r"step 'svm': bad setting\(s\): C: .*at least 1 item"):
+        svm_step("svm", "src/cube", samples=table, C=[])
+    with pytest.raises(ClassifyError, match="not both"):
+        sam_step("sam", "src/cube", library=lib, settings=SamSettings(), threshold=0.2)

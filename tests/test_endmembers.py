@@ -13,7 +13,8 @@ import scipy.linalg
 from swathmill.tiles.grid import Tiling
 from swathmill.tiles.step import Block, InputMeta, OutputSpec
 from swathmill.tiles.testing import default_grid, run_on_arrays
-from swathmill.workflows.methods.endmembers import (EndmemberError, EndmemberExtractionConfig, atgp, build_steps, candidate_accumulate,
+from swathmill.workflows.methods.endmembers import (EndmemberError, EndmemberExtractionConfig, EndmemberParams,
+                                  ExtractionSettings, atgp, build_steps, candidate_accumulate, extraction_settings,
                                   candidate_merge, endmember_fit_step, endmember_library, endmember_points,
                                   extract_endmembers, extraction_params, nfindr, simplex_volume,
                                   suggest_endmember_count, vca, write_endmember_products)
@@ -222,7 +223,8 @@ def test_config_builds_the_step():
     cfg = EndmemberExtractionConfig.model_validate({"method": "vca", "n_endmembers": 5, "seed": 3})
     (step,) = build_steps(cfg)
     assert step.inputs == {"reduced": "mnf/components", "spectra": "mosaic/reflectance"}
-    assert step.params["extraction"]["method"] == "vca" and step.params["extraction"]["seed"] == 3
+    assert step.params.extraction.method == "vca" and step.params.extraction.seed == 3
+    assert step.params.step == "endmembers" and step.params.extraction.n_directions == 512
     with pytest.raises(ValueError, match="step/output"):
         EndmemberExtractionConfig.model_validate({"input": "mnf"})
     with pytest.raises(ValueError):
@@ -241,3 +243,25 @@ def test_extraction_on_reflectance_warns(rng):
                   params=params, static={}, meta=meta)
     with pytest.warns(UserWarning, match="looks like reflectance, not reduced data"):
         extraction_finalize(acc_fn(block), params, meta)
+
+
+def test_settings_are_declared_once_and_are_the_step_parameters():
+    by_keywords = endmember_fit_step("em", "src/red", "src/cube", method="vca", n_endmembers=5, seed=3)
+    by_object = endmember_fit_step("em", "src/red", "src/cube",
+                                   settings=ExtractionSettings(method="vca", n_endmembers=5, seed=3))
+    assert isinstance(by_keywords.params, EndmemberParams) and by_keywords.params.step == "em"
+    assert by_keywords.describe() == by_object.describe()  # the same step key either way
+    assert endmember_fit_step("em", "src/red").params.extraction == ExtractionSettings()  # defaults: the fields'
+    cfg = EndmemberExtractionConfig.model_validate({"name": "em", "input": "src/red", "spectra": "src/cube",
+                                                    "method": "vca", "n_endmembers": 5, "seed": 3})
+    (step,) = build_steps(cfg)
+    assert type(step.params.extraction) is ExtractionSettings and step.describe() == by_keywords.describe()
+    # the settings are found in the parameter object, or are it; an untyped mapping is refused
+    settings = extraction_params("atgp", 4)
+    assert extraction_settings(settings) is settings and extraction_settings(by_keywords.params).method == "vca"
+    with pytest.raises(EndmemberError, match="no extraction settings"):
+        extraction_settings({"extraction": {"method": "atgp", "n_endmembers": 4}})
+    with pytest.raises(EndmemberError, match=r"n_directions: .*greater than or equal to 1"):
+        extraction_params("atgp", 4, n_directions=0)
+    with pytest.raises(EndmemberError, match="not both"):
+        endmember_fit_step("em", "src/red", settings=settings, seed=1)

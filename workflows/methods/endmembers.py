@@ -75,16 +75,17 @@ from __future__ import annotations
 import json
 import math
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import Field, ValidationError, model_validator
 
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from swathmill.workflows.params import check_ref
+from swathmill.workflows.params import Section, check_ref
 from swathmill.workflows.inputs.library import SpectralLibrary, write_library
 from swathmill.errors import SwathmillError
 
@@ -103,6 +104,8 @@ __all__ = [
     "extraction_finalize",
     "extraction_fit",
     "extraction_params",
+    "extraction_settings",
+    "EndmemberParams",
     "extract_endmembers",
     "endmember_library",
     "endmember_points",
@@ -119,6 +122,66 @@ _CHUNK = 4096
 
 class EndmemberError(SwathmillError, ValueError):
     """Extraction cannot run as asked; the message names the parameter or input at fault."""
+
+
+class ExtractionSettings(Section):
+    """How endmembers are found in the image: the parameters shared by the ``endmembers`` section and
+    the ``image`` endmember source of unmixing. Defaults and bounds are declared here only."""
+
+    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
+    n_endmembers: int | None = Field(default=None, ge=2, le=64,
+                                     description="null: suggested from the reduced input's MNF eigenvalues")
+    n_dims: int | None = Field(default=None, ge=1, description="reduced dimensions used (null: n_endmembers - 1)")
+    seed: int = Field(default=0, ge=0, description="seeds the candidate directions, N-FINDR's starts and VCA's "
+                                                   "directions")
+    n_directions: int = Field(default=512, ge=1, le=100_000, description="candidate directions (two extremes each)")
+    n_brightest: int = Field(default=16, ge=1, le=10_000, description="brightest candidates kept")
+    restarts: int = Field(default=5, ge=1, le=1000, description="N-FINDR starts")
+    snr: float | None = Field(default=None, description="VCA's SNR in dB (null: estimated)")
+    min_snr: float = Field(default=1.0, gt=0, description="suggestion rule: signal at least min_snr x noise")
+
+
+@dataclass(frozen=True)
+class EndmemberParams:
+    """The parameter object of an endmember extraction step: its name and its extraction settings."""
+
+    step: str
+    extraction: ExtractionSettings
+
+
+def extraction_params(method: str | None = None, n_endmembers: int | None = None, **fields: Any
+                      ) -> ExtractionSettings:
+    """Validated extraction settings from keywords (``method`` and ``n_endmembers`` may be positional).
+
+    Raises :class:`EndmemberError` naming the key at fault.
+    """
+    if method is not None:
+        fields["method"] = method
+    if n_endmembers is not None:
+        fields["n_endmembers"] = n_endmembers
+    if "method" in fields and fields["method"] not in EXTRACTION_METHODS:
+        raise EndmemberError(f"unknown extraction method {fields['method']!r}; choose one of "
+                             f"{', '.join(EXTRACTION_METHODS)}")
+    try:
+        return ExtractionSettings(**fields)
+    except ValidationError as e:
+        bad = "; ".join(f"{'.'.join(map(str, err['loc'])) or '(settings)'}: {err['msg']} (got {err.get('input')!r})"
+                        for err in e.errors())
+        raise EndmemberError(f"bad extraction setting(s): {bad}") from None
+
+
+def extraction_settings(params: Any) -> ExtractionSettings:
+    """The extraction settings of a step's parameter object.
+
+    ``params`` is the settings themselves, or an object whose ``extraction`` attribute holds them (an
+    :class:`EndmemberParams`, or the parameters of an unmixing step with image endmembers).
+    """
+    if isinstance(params, ExtractionSettings):
+        return params
+    nested = getattr(params, "extraction", None)
+    if isinstance(nested, ExtractionSettings):
+        return nested
+    raise EndmemberError(f"no extraction settings in the step parameters ({type(params).__name__})")
 
 
 # --------------------------------------------------------------------------------------------------
@@ -336,10 +399,10 @@ def _empty_acc(dims: int, nspec: int | None, ndir: int, nbright: int) -> dict:
     }
 
 
-def _resolve_counts(params: Mapping[str, Any], meta: Mapping[str, InputMeta] | None) -> tuple[int, int, dict]:
+def _resolve_counts(params: ExtractionSettings, meta: Mapping[str, InputMeta] | None) -> tuple[int, int, dict]:
     """(p, dims, info): the number of endmembers (given or suggested) and reduced dimensions used."""
     info: dict[str, Any] = {}
-    p = params.get("n_endmembers")
+    p = params.n_endmembers
     if p is None:
         spec = meta["reduced"].spec if meta and "reduced" in meta else None
         eig = None if spec is None else spec.coords.get("eigenvalue")
@@ -348,10 +411,10 @@ def _resolve_counts(params: Mapping[str, Any], meta: Mapping[str, InputMeta] | N
                                  "to suggest it from (give n_endmembers, or use MNF components as input)")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            p, info = suggest_endmember_count(np.asarray(eig, dtype=np.float64), min_snr=params.get("min_snr", 1.0))
+            p, info = suggest_endmember_count(np.asarray(eig, dtype=np.float64), min_snr=params.min_snr)
         info["rule"] = "MNF eigenvalues above the noise floor, plus one"
     p = int(p)
-    dims = int(params.get("n_dims") or p - 1)
+    dims = int(params.n_dims or p - 1)
     if meta and "reduced" in meta:
         have = len(meta["reduced"].spec.bands)
         if dims > have:
@@ -359,7 +422,7 @@ def _resolve_counts(params: Mapping[str, Any], meta: Mapping[str, InputMeta] | N
                                  f"{meta['reduced'].ref!r} has {have} bands")
     need = p - 1
     if dims < need:
-        raise EndmemberError(f"{params.get('method')} with {p} endmembers needs at least {need} reduced "
+        raise EndmemberError(f"{params.method} with {p} endmembers needs at least {need} reduced "
                              f"dimensions. Got n_dims = {dims}")
     return p, dims, info
 
@@ -370,9 +433,9 @@ def candidate_accumulate(block: Block) -> dict:
     Reads ``block.data["reduced"]`` (first ``dims`` bands) and, when present, ``block.data["spectra"]``
     over the tile core.
     """
-    params = block.params.get("extraction", block.params)
+    params = extraction_settings(block.params)
     _p, dims, _ = _resolve_counts(params, block.meta)
-    ndir, nbright = int(params["n_directions"]), int(params["n_brightest"])
+    ndir, nbright = int(params.n_directions), int(params.n_brightest)
     crop = block.tile.crop
     red = block.data["reduced"][:dims][:, crop[0], crop[1]]
     spec_in = block.data.get("spectra")
@@ -390,7 +453,7 @@ def candidate_accumulate(block: Block) -> dict:
     acc["n"] = int(rr.size)
     acc["sum"] = y.sum(axis=1)
     acc["outer"] = y @ y.T
-    dirs = random_directions(int(params["seed"]), dims, ndir)
+    dirs = random_directions(int(params.seed), dims, ndir)
     for lo in range(0, rr.size, _CHUNK):
         hi = min(lo + _CHUNK, rr.size)
         proj = dirs.T @ y[:, lo:hi]  # (ndir, m)
@@ -450,14 +513,14 @@ def _homogeneous(y: np.ndarray) -> tuple[np.ndarray, float]:
     return np.hstack([y, np.full((y.shape[0], 1), c)]), c
 
 
-def _select(method: str, y: np.ndarray, p: int, params: Mapping[str, Any], stats: Mapping[str, Any] | None
+def _select(method: str, y: np.ndarray, p: int, params: ExtractionSettings, stats: Mapping[str, Any] | None
             ) -> tuple[np.ndarray, dict]:
-    seed = int(params.get("seed", 0))
+    seed = int(params.seed)
     if method == "atgp":
         yh, c = _homogeneous(y)
         return atgp(yh, p), {"constant": c}
     if method == "nfindr":
-        idx, vol = nfindr(y, p, seed=seed, restarts=int(params.get("restarts", 5)))
+        idx, vol = nfindr(y, p, seed=seed, restarts=int(params.restarts))
         return idx, {"volume": vol}
     if method == "vca":
         yh, c = _homogeneous(y)
@@ -468,17 +531,20 @@ def _select(method: str, y: np.ndarray, p: int, params: Mapping[str, Any], stats
             so = np.zeros((d + 1, d + 1))
             so[:d, :d], so[:d, d], so[d, :d], so[d, d] = o, c * s, c * s, c * c * n
             hstats = {"n": n, "sum": np.r_[s, c * n], "outer": so}
-        idx, info = vca(yh, p, seed=seed, snr=params.get("snr"), stats=hstats)
+        idx, info = vca(yh, p, seed=seed, snr=params.snr, stats=hstats)
         info["constant"] = c
         return idx, info
     raise EndmemberError(f"unknown extraction method {method!r}; choose one of {', '.join(EXTRACTION_METHODS)}")
 
 
-def extraction_finalize(acc: dict | None, params: Mapping[str, Any], meta: Mapping[str, InputMeta]) -> dict:
-    """The global selection on the merged candidates; returns the endmember model (see the module notes)."""
-    params = params.get("extraction", params)
+def extraction_finalize(acc: dict | None, params: Any, meta: Mapping[str, InputMeta]) -> dict:
+    """The global selection on the merged candidates; returns the endmember model (see the module notes).
+
+    ``params``: the extraction settings or a parameter object holding them (:func:`extraction_settings`).
+    """
+    params = extraction_settings(params)
     p, dims, info = _resolve_counts(params, meta)
-    method = params["method"]
+    method = params.method
     if "wavelength" in meta["reduced"].spec.coords:
         warnings.warn(f"endmember extraction runs on the first {dims} bands of {meta['reduced'].ref!r}, which has "
                       "wavelengths: it looks like reflectance, not reduced data; give MNF or PCA components",
@@ -504,7 +570,7 @@ def extraction_finalize(acc: dict | None, params: Mapping[str, Any], meta: Mappi
         "method": method, "names": names, "n_endmembers": p, "n_dims": dims,
         "rows": rows.astype(np.int64), "cols": cols.astype(np.int64), "x": xs, "y": ys, "crs": ref.grid.crs,
         "reduced": y[idx], "n_candidates": int(keys.size), "n_pixels": int(acc["n"]),
-        "seed": int(params.get("seed", 0)), "suggestion": info, "selection": _jsonable(extra),
+        "seed": int(params.seed), "suggestion": info, "selection": _jsonable(extra),
     }
     if acc["cand_x"] is not None:
         model["spectra"] = acc["cand_x"][idx].astype(np.float64)
@@ -530,31 +596,17 @@ def _jsonable(d: Mapping[str, Any]) -> dict:
 
 def extraction_fit() -> Fit:
     """The engine fit phase: :func:`candidate_accumulate`, :func:`candidate_merge`,
-    :func:`extraction_finalize` (parameters under ``params["extraction"]`` or at the top level)."""
+    :func:`extraction_finalize` (the settings are read by :func:`extraction_settings`)."""
     return Fit(accumulate=candidate_accumulate, merge=candidate_merge, finalize=extraction_finalize)
 
 
-def extraction_params(method: str = "nfindr", n_endmembers: int | None = None, *, n_dims: int | None = None,
-                      seed: int = 0, n_directions: int = 512, n_brightest: int = 16, restarts: int = 5,
-                      snr: float | None = None, min_snr: float = 1.0) -> dict:
-    """Validated JSON parameters of an extraction (see :class:`EndmemberExtractionConfig`)."""
-    if method not in EXTRACTION_METHODS:
-        raise EndmemberError(f"unknown extraction method {method!r}; choose one of {', '.join(EXTRACTION_METHODS)}")
-    if n_endmembers is not None and n_endmembers < 2:
-        raise EndmemberError(f"n_endmembers must be at least 2. Got {n_endmembers}")
-    if n_directions < 1 or n_brightest < 1:
-        raise EndmemberError(f"n_directions and n_brightest must be positive. Got {n_directions}, {n_brightest}")
-    return {"method": method, "n_endmembers": n_endmembers, "n_dims": n_dims, "seed": int(seed),
-            "n_directions": int(n_directions), "n_brightest": int(n_brightest), "restarts": int(restarts),
-            "snr": snr, "min_snr": float(min_snr)}
-
-
-def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *, method: str = "nfindr",
+def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *, method: str | None = None,
                        n_endmembers: int | None = None, eigenvalues: Sequence[float] | None = None,
                        **kw: Any) -> dict:
     """Whole-array extraction (one tile): ``reduced`` (dims, rows, cols), optional ``spectra``
     (bands, rows, cols). Same candidates and selection as the tiled fit. Returns the model.
 
+    ``method``, ``n_endmembers`` and the keywords ``kw`` are :class:`ExtractionSettings` fields.
     Without ``n_endmembers``, it is suggested from ``eigenvalues`` (all MNF eigenvalues, which may be
     more than the reduced bands given).
     """
@@ -566,7 +618,8 @@ def extract_endmembers(reduced: np.ndarray, spectra: np.ndarray | None = None, *
     tile = Tiling(grid, max(red.shape[1:]))[0, 0]
     suggestion = None
     if n_endmembers is None and eigenvalues is not None:
-        n_endmembers, suggestion = suggest_endmember_count(eigenvalues, min_snr=kw.get("min_snr", 1.0))
+        min_snr = extraction_params(method, None, **kw).min_snr
+        n_endmembers, suggestion = suggest_endmember_count(eigenvalues, min_snr=min_snr)
     params = extraction_params(method, n_endmembers, **kw)
     meta = {"reduced": InputMeta("src/reduced", grid, OutputSpec(tuple(f"c{i}" for i in range(red.shape[0])),
                                                                   "float32", float("nan")))}
@@ -645,9 +698,9 @@ def _locations_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str
 
 
 def _locations_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | None,
-                       params: Mapping[str, Any]) -> dict[str, OutputSpec]:
+                       params: EndmemberParams) -> dict[str, OutputSpec]:
     if model is None:
-        raise StepError(f"step {params.get('step')!r}: its outputs depend on the fitted endmembers")
+        raise StepError(f"step {params.step!r}: its outputs depend on the fitted endmembers")
     return {"locations": OutputSpec(bands=("endmember",), dtype="uint8", nodata=0, kind="categorical",
                                     role=Role.DIAGNOSTIC,
                                     class_names=tuple(model["names"]),
@@ -655,10 +708,8 @@ def _locations_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] |
                                            "long_name": "pixels chosen as endmembers (class i = endmember i)"})}
 
 
-def endmember_fit_step(name: str, reduced_ref: str, spectra_ref: str | None = None, *, method: str = "nfindr",
-                       n_endmembers: int | None = None, n_dims: int | None = None, seed: int = 0,
-                       n_directions: int = 512, n_brightest: int = 16, restarts: int = 5,
-                       snr: float | None = None, min_snr: float = 1.0) -> Step:
+def endmember_fit_step(name: str, reduced_ref: str, spectra_ref: str | None = None, *,
+                       settings: ExtractionSettings | None = None, **fields: Any) -> Step:
     """A step that finds endmembers in the image (its fitted model) and maps their pixels.
 
     Parameters
@@ -667,51 +718,33 @@ def endmember_fit_step(name: str, reduced_ref: str, spectra_ref: str | None = No
     reduced_ref : "step/output" of MNF or PCA components (first ``n_dims`` bands are used).
     spectra_ref : "step/output" of the cube whose spectra the endmembers take (e.g.
         "mosaic/reflectance"); None keeps the reduced values only.
-    method : "atgp", "nfindr" or "vca".
-    n_endmembers : p; None suggests it from the reduced input's ``eigenvalue`` coordinate.
-    n_dims : reduced dimensions used (default p - 1).
-    seed : seeds the candidate directions, N-FINDR's starts and VCA's directions.
-    n_directions, n_brightest : candidates kept per direction (its two extremes) and by brightness.
-    restarts : N-FINDR starts.  snr : VCA's SNR in dB (None: estimated).
-    min_snr : for the suggested count.
+    settings : an :class:`ExtractionSettings` (or a section derived from it); or its fields as keywords:
+        ``method`` ("atgp", "nfindr" or "vca"), ``n_endmembers`` (p; None suggests it from the reduced
+        input's ``eigenvalue`` coordinate), ``n_dims`` (default p - 1), ``seed`` (the candidate
+        directions, N-FINDR's starts and VCA's directions), ``n_directions`` and ``n_brightest``
+        (candidates kept per direction, its two extremes, and by brightness), ``restarts`` (N-FINDR
+        starts), ``snr`` (VCA's SNR in dB; None: estimated), ``min_snr`` (for the suggested count).
 
     Returns
     -------
     Step with output ``locations`` (uint8 class map, class i at the pixel of endmember i). The model
     (``names``, ``rows``, ``cols``, ``x``, ``y``, ``spectra``, ``wavelengths``, ``reduced``, ...) is
-    what :func:`endmember_library` and :func:`endmember_points` read.
+    what :func:`endmember_library` and :func:`endmember_points` read. Its parameter object is an
+    :class:`EndmemberParams`.
     """
-    params = {"step": name, "extraction": extraction_params(
-        method, n_endmembers, n_dims=n_dims, seed=seed, n_directions=n_directions, n_brightest=n_brightest,
-        restarts=restarts, snr=snr, min_snr=min_snr)}
+    if settings is not None:
+        if fields:
+            raise EndmemberError(f"step {name!r}: give the settings object or keyword settings, not both. "
+                                 f"Got settings and {sorted(fields)}")
+        extraction = (settings if type(settings) is ExtractionSettings else
+                      ExtractionSettings.model_validate(settings.model_dump(include=set(ExtractionSettings.model_fields))))
+    else:
+        extraction = extraction_params(**fields)
     inputs = {"reduced": reduced_ref}
     if spectra_ref is not None:
         inputs["spectra"] = spectra_ref
-    return Step(name=name, kernel=_locations_kernel, outputs=_locations_outputs, inputs=inputs, params=params,
-                fit=extraction_fit())
-
-
-class ExtractionSettings(BaseModel):
-    """How endmembers are found in the image: the keys shared by the ``endmembers`` section and the
-    ``image`` endmember source of unmixing (see :func:`extraction_params`)."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    method: Literal["atgp", "nfindr", "vca"] = "nfindr"
-    n_endmembers: int | None = Field(default=None, ge=2, le=64,
-                                     description="null: suggested from the reduced input's MNF eigenvalues")
-    n_dims: int | None = Field(default=None, ge=1)
-    seed: int = Field(default=0, ge=0)
-    n_directions: int = Field(default=512, ge=1, le=100_000)
-    n_brightest: int = Field(default=16, ge=1, le=10_000)
-    restarts: int = Field(default=5, ge=1, le=1000)
-    snr: float | None = None
-    min_snr: float = Field(default=1.0, gt=0)
-
-    def params(self) -> dict:
-        return extraction_params(self.method, self.n_endmembers, n_dims=self.n_dims, seed=self.seed,
-                                 n_directions=self.n_directions, n_brightest=self.n_brightest,
-                                 restarts=self.restarts, snr=self.snr, min_snr=self.min_snr)
+    return Step(name=name, kernel=_locations_kernel, outputs=_locations_outputs, inputs=inputs,
+                params=EndmemberParams(step=name, extraction=extraction), fit=extraction_fit())
 
 
 class EndmemberExtractionConfig(ExtractionSettings):
@@ -749,4 +782,4 @@ def build_steps(section: EndmemberExtractionConfig, ctx: Any = None) -> list[Ste
     """``[endmember_fit_step(...)]`` for the ``endmembers`` section (``ctx`` is not needed)."""
     if not isinstance(section, EndmemberExtractionConfig):
         raise EndmemberError(f"build_steps takes an EndmemberExtractionConfig. Got {type(section).__name__}")
-    return [endmember_fit_step(section.name, section.input, section.spectra, **section.params())]
+    return [endmember_fit_step(section.name, section.input, section.spectra, settings=section)]

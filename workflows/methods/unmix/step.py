@@ -155,11 +155,6 @@ def _floats(v: Any) -> list[float] | None:
         return None
 
 
-def _extraction_arg(settings: _em.ExtractionSettings) -> Any:
-    """The extraction settings as :mod:`swathmill.workflows.methods.endmembers` takes them."""
-    return settings.params()
-
-
 # --------------------------------------------------------------------------------------------------
 # fit
 
@@ -174,7 +169,7 @@ def _image_block(block: Block) -> Block:
     the extraction settings as its parameters."""
     data = {"reduced": block.data.get("reduced", block.data[X]), "spectra": block.data[X]}
     meta = {"reduced": block.meta.get("reduced", block.meta.get(X)), "spectra": block.meta.get(X)}
-    return replace(block, data=data, meta=meta, params=_extraction_arg(block.params.extraction))
+    return replace(block, data=data, meta=meta, params=block.params.extraction)
 
 
 def _image_meta(meta: Mapping[str, InputMeta]) -> dict:
@@ -246,7 +241,7 @@ def _sample_endmembers(acc: Any, params: UnmixParams, table: SampleTable, nb: in
 def _image_endmembers(acc: Any, params: UnmixParams, meta: Mapping[str, InputMeta], model: dict
                       ) -> tuple[np.ndarray, list[str]]:
     """Endmembers extracted from the image; they take the input's spectra at the chosen pixels."""
-    ext = _em.extraction_finalize(acc, _extraction_arg(params.extraction), _image_meta(meta))
+    ext = _em.extraction_finalize(acc, params.extraction, _image_meta(meta))
     model["extraction"] = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in ext.items()
                            if k not in ("spectra", "reduced", "wavelengths")}
     # what swathmill.workflows.methods.endmembers.endmember_library / endmember_points read

@@ -1,0 +1,65 @@
+"""Classification: spectral angle, spectral feature fitting and support vector machines.
+
+Pure functions (no I/O) do the science; step factories wire them into engine steps. One module per
+concern:
+
+- :mod:`.sam` — spectral angle (Kruse et al., 1993): the angle, the threshold rule, kernel and step;
+- :mod:`.sff` — spectral feature fitting (Clark, Gallagher and Swayze, 1990): fit, score, kernel, step;
+- :mod:`.svm` — RBF support vector machine with spatially blocked cross-validation: fit, prediction, step;
+- :mod:`.models` — storage of fitted SVM models (skops, deterministic bytes, trusted types only);
+- :mod:`.references` — reference spectra from a spectral library or from training samples;
+- :mod:`.shared` — the classifiers' error, parameter object, class colours and pixel plumbing;
+- :mod:`.build` — ``build_steps(section, ctx)`` for a configuration section.
+
+Every step's parameter object (``Step.params``) is a :class:`ClassifierParams`: the step's settings
+section (:class:`SamSettings`, :class:`SffSettings`, :class:`SvmSettings`; the configuration sections
+:class:`SamConfig`, :class:`SffConfig`, :class:`SvmConfig` add the step's name, input and references)
+plus the names, classes and colours derived from the references.
+
+Class maps
+    uint8, 0 = unclassified (and nodata), classes 1..k named in the output's ``class_names``.
+
+The modal (majority) filter of a class map is the engine's generic step
+(``swathmill.tiles.ops.modal_filter_step(name, "<step>/classes", size, n_classes=len(class_names))``).
+"""
+from __future__ import annotations
+
+from .build import build_steps
+from .models import SKOPS_EXTRA_TRUSTED, load_svm
+from .references import ReferenceSpectraConfig, class_means
+from .sam import SamConfig, SamSettings, assign_min_angle, class_thresholds, sam_step, spectral_angle
+from .sff import SffConfig, SffSettings, assign_best_fit, sff_fit, sff_score, sff_step
+from .shared import TOL_MUTED, ClassifierParams, ClassifyError, class_palette
+from .svm import SvmConfig, SvmSettings, blocked_folds, cap_samples, check_training, fit_svm, predict_svm, svm_step
+
+__all__ = [
+    "ClassifyError",
+    "ClassifierParams",
+    "TOL_MUTED",
+    "SKOPS_EXTRA_TRUSTED",
+    "class_palette",
+    "spectral_angle",
+    "assign_min_angle",
+    "class_thresholds",
+    "sff_fit",
+    "sff_score",
+    "assign_best_fit",
+    "class_means",
+    "blocked_folds",
+    "check_training",
+    "cap_samples",
+    "fit_svm",
+    "load_svm",
+    "predict_svm",
+    "sam_step",
+    "sff_step",
+    "svm_step",
+    "ReferenceSpectraConfig",
+    "SamSettings",
+    "SffSettings",
+    "SvmSettings",
+    "SamConfig",
+    "SffConfig",
+    "SvmConfig",
+    "build_steps",
+]
