@@ -107,6 +107,29 @@ class RunResult:
         return self.stopped_at is None and all(s.complete for s in self.steps)
 
 
+@dataclass(frozen=True)
+class _StepPlan:
+    """What a step reads and how it is cut: its inputs' stores, metadata and keys, its grid and tiling."""
+
+    inputs: dict
+    meta: dict
+    grid: Grid
+    in_keys: dict
+    tiling: Tiling
+    version: str
+    base: tuple  # what every key of the step hashes: identity, inputs' keys, version, tile size, layout
+
+
+@dataclass(frozen=True)
+class _Fitted:
+    """A step's fitted model (None for a step without a fit), where it is saved, its hash, and how it came."""
+
+    model: Any = None
+    path: str | None = None
+    hash: str | None = None
+    state: str | None = None  # "fitted", "loaded" or None
+
+
 def plan_check(tiling: Tiling, layout: StoreLayout, step: str = "?") -> None:
     """Refuse a plan in which two tiles would touch one shard (lost writes; PITFALLS.md)."""
     unit = layout.shard if layout.sharding else layout.chunk
@@ -223,7 +246,27 @@ class Run:
         return inputs, meta, grid, keys
 
     def _run_step(self, step: Step, executor: Executor, layout: StoreLayout, known, result: RunResult) -> StepReport:
+        """One step: plan it, fit it, open its store, compute its pending tiles, export its products."""
         t_step = time.perf_counter()
+        sp = self._plan_step(step, layout, known, result)
+        fitted = self._fit(step, sp, executor, result)
+        outputs = step.resolve_outputs(sp.meta, fitted.model)
+        key = _sha("step", *sp.base, fitted.hash, {k: v.to_dict() for k, v in outputs.items()})
+        report = StepReport(step.name, key, total=len(sp.tiling), fit=fitted.state)
+        store, fresh = self._open_store(step, sp, key, outputs, fitted, report, result)
+        pending = self._pending_tiles(step, sp, key, store, fresh, outputs, report, result)
+        self._compute(step, sp, key, outputs, fitted, pending, executor, report)
+        if report.complete:
+            known[step.name] = (self.store_path(step.name), key, store)
+        if report.complete and self.options.export:
+            t0 = time.perf_counter()
+            report.products = self._export(step, key, store, outputs, sp.in_keys, fitted.hash, executor, result)
+            self.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
+        report.seconds = time.perf_counter() - t_step
+        return report
+
+    def _plan_step(self, step: Step, layout: StoreLayout, known, result: RunResult) -> "_StepPlan":
+        """The step's inputs, grid and tiling, checked against the store layout; the base of its keys."""
         inputs, meta, grid, in_keys = self._inputs(step, known)
         try:
             tiling = Tiling(grid, self.options.tile, step.halo)
@@ -236,41 +279,38 @@ class Run:
             self._say(result, f"step {step.name!r}: {len(tiling)} tiles is past {self.options.warn_tasks} tasks, "
                               "where the scheduler struggles; consider a larger tile size")
         version = f"{self.options.software_version}+{step.version}"
-        ident = step.describe()
-        base = (ident, in_keys, version, self.options.tile, layout.__dict__)
+        base = (step.describe(), in_keys, version, self.options.tile, layout.__dict__)
+        return _StepPlan(inputs, meta, grid, in_keys, tiling, version, base)
 
-        # fit ------------------------------------------------------------------------------------
-        model, model_path, model_hash, fit_state = None, None, None, None
-        if step.fit is not None:
-            fit_key = _sha("fit", *base)
-            mbase = self.dir / "models" / f"{step.name}-{fit_key}"
-            if mbase.with_suffix(".json").is_file() and mbase.with_suffix(".npz").is_file():
-                fit_state = "loaded"
-                model_hash = hashlib.sha256(mbase.with_suffix(".json").read_bytes()
-                                            + mbase.with_suffix(".npz").read_bytes()).hexdigest()[:16]
-                self._say(result, f"step {step.name!r}: fitted model loaded from {mbase.name}")
-            else:
-                t0 = time.perf_counter()
-                ftiling = Tiling(grid, self.options.tile, step.fit.halo)
-                tiles = list(ftiling)
-                if step.fit.select is not None:
-                    tiles = list(step.fit.select(tiles, step.params))
-                tasks = [TileTask(step, t.index, grid, self.options.tile, step.fit.halo, inputs) for t in tiles]
-                self.progress.start(step.name, len(tasks), 0, phase="fit")
-                acc = executor.reduce(run_accumulate, tasks, step.fit.merge)
-                self.progress.end(step.name)
-                model = step.fit.finalize(acc, step.params, meta)
-                model_hash = save_model(model, mbase)
-                fit_state = "fitted"
-                self.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
-                self._say(result, f"step {step.name!r}: fitted on {len(tasks)} tiles, model {mbase.name}")
-            model_path = str(mbase)
-            model = load_model(model_path)
-        outputs = step.resolve_outputs(meta, model)
-        key = _sha("step", *base, model_hash, {k: v.to_dict() for k, v in outputs.items()})
-        report = StepReport(step.name, key, total=len(tiling), fit=fit_state)
+    def _fit(self, step: Step, sp: "_StepPlan", executor: Executor, result: RunResult) -> "_Fitted":
+        """Load the step's fitted model if one with the same fit key exists, else fit it over its tiles."""
+        if step.fit is None:
+            return _Fitted()
+        fit_key = _sha("fit", *sp.base)
+        mbase = self.dir / "models" / f"{step.name}-{fit_key}"
+        if mbase.with_suffix(".json").is_file() and mbase.with_suffix(".npz").is_file():
+            state = "loaded"
+            model_hash = hashlib.sha256(mbase.with_suffix(".json").read_bytes()
+                                        + mbase.with_suffix(".npz").read_bytes()).hexdigest()[:16]
+            self._say(result, f"step {step.name!r}: fitted model loaded from {mbase.name}")
+        else:
+            t0 = time.perf_counter()
+            tiles = list(Tiling(sp.grid, self.options.tile, step.fit.halo))
+            if step.fit.select is not None:
+                tiles = list(step.fit.select(tiles, step.params))
+            tasks = [TileTask(step, t.index, sp.grid, self.options.tile, step.fit.halo, sp.inputs) for t in tiles]
+            self.progress.start(step.name, len(tasks), 0, phase="fit")
+            acc = executor.reduce(run_accumulate, tasks, step.fit.merge)
+            self.progress.end(step.name)
+            model_hash = save_model(step.fit.finalize(acc, step.params, sp.meta), mbase)
+            state = "fitted"
+            self.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
+            self._say(result, f"step {step.name!r}: fitted on {len(tasks)} tiles, model {mbase.name}")
+        return _Fitted(load_model(str(mbase)), str(mbase), model_hash, state)
 
-        # invalidation and store -----------------------------------------------------------------
+    def _open_store(self, step: Step, sp: "_StepPlan", key: str, outputs: dict[str, OutputSpec],
+                    fitted: "_Fitted", report: StepReport, result: RunResult) -> tuple[TileStore, bool]:
+        """Invalidate the step if its key changed, then create its store or reopen it to resume."""
         spath = self.store_path(step.name)
         prev = self.ledger.step_key(step.name)
         if prev is not None and prev != key:
@@ -285,20 +325,24 @@ class Run:
             if prev == key:
                 self._say(result, f"step {step.name!r}: store missing, recomputing")
                 self.ledger.forget_step(step.name)
-            store = create_store(spath, grid, outputs, layout, attrs={"step": step.name, "key": key})
+            store = create_store(spath, sp.grid, outputs, self.options.layout(), attrs={"step": step.name, "key": key})
         else:
             store = TileStore(spath)
             for p in store.remove_partials():
                 log.info("removed stale partial write %s", p)
-        self.ledger.set_step(step.name, key, len(tiling), {
-            "params": params_dump(step.params), "inputs": dict(step.inputs), "in_keys": in_keys, "model": model_hash,
-            "model_path": model_path,
+        self.ledger.set_step(step.name, key, len(sp.tiling), {
+            "params": params_dump(step.params), "inputs": dict(step.inputs), "in_keys": sp.in_keys,
+            "model": fitted.hash, "model_path": fitted.path,
             "outputs": {k: v.to_dict() for k, v in outputs.items()}, "sources": dict(step.sources),
-            "grid": grid.to_dict(), "tile": self.options.tile, "version": version})
+            "grid": sp.grid.to_dict(), "tile": self.options.tile, "version": sp.version})
+        return store, fresh
 
+    def _pending_tiles(self, step: Step, sp: "_StepPlan", key: str, store: TileStore, fresh: bool,
+                       outputs: dict[str, OutputSpec], report: StepReport, result: RunResult) -> list:
+        """Tiles not recorded as done under ``key``; on resume, say which shards a kill left torn."""
         done = self.ledger.done(step.name, key)
         report.done_before = len(done)
-        pending = [t for t in tiling if t.index not in done]
+        pending = [t for t in sp.tiling if t.index not in done]
         if not fresh and pending:
             first = next(iter(outputs))
             for t in pending:
@@ -306,12 +350,16 @@ class Run:
                     self._say(result, f"step {step.name!r}, {t.name}: unreadable shard (a write was cut off); "
                                       "it is rewritten whole")
         if done:
-            self._say(result, f"step {step.name!r}: resuming, {len(done)} of {len(tiling)} tiles already finished")
+            self._say(result, f"step {step.name!r}: resuming, {len(done)} of {len(sp.tiling)} tiles already finished")
+        return pending
 
-        # tiles -----------------------------------------------------------------------------------
-        tasks = [TileTask(step, t.index, grid, self.options.tile, step.halo, inputs, str(spath), outputs, model_path)
-                 for t in pending]
-        self.progress.start(step.name, len(tiling), len(done))
+    def _compute(self, step: Step, sp: "_StepPlan", key: str, outputs: dict[str, OutputSpec], fitted: "_Fitted",
+                 pending: list, executor: Executor, report: StepReport) -> None:
+        """Run the kernel on every pending tile; record each tile in the ledger once it is written."""
+        spath = self.store_path(step.name)
+        tasks = [TileTask(step, t.index, sp.grid, self.options.tile, step.halo, sp.inputs, str(spath), outputs,
+                          fitted.path) for t in pending]
+        self.progress.start(step.name, len(sp.tiling), report.done_before)
         t0 = time.perf_counter()
 
         def on_done(task: TileTask, res: dict) -> None:
@@ -328,16 +376,6 @@ class Run:
         executor.map(run_tile, tasks, on_done, on_error)
         self.progress.end(step.name)
         self.ledger.add_timing(step.name, "tiles", time.perf_counter() - t0)
-        if report.complete:
-            known[step.name] = (spath, key, store)
-
-        # products --------------------------------------------------------------------------------
-        if report.complete and self.options.export:
-            t0 = time.perf_counter()
-            report.products = self._export(step, key, store, outputs, in_keys, model_hash, executor, result)
-            self.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
-        report.seconds = time.perf_counter() - t_step
-        return report
 
     def provenance(self, step: Step, key: str, in_keys: dict, model_hash: str | None) -> dict:
         return {
