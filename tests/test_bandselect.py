@@ -461,3 +461,30 @@ def test_svm_curve_settings_errors() -> None:
     with pytest.raises(ValueError, match="components"):
         SvmSettings(components=0)
     assert SvmSettings(components="auto", curve_compare=["bands/selected"]).components == "auto"
+
+
+def test_report_section_shows_curves_and_calibrations_side_by_side() -> None:
+    from swathmill.workflows.app.report import model_choice_html, render_html, ReportSummary
+
+    cube, spec, table = _ranked_scene(n_noise=6)
+    X = cube[:, table.row, table.col].T.astype(np.float64)
+    curve = feature_count_curve(X, table.label, table.group, list(range(1, 11)), folds=4)
+    svm = {"curves": [{**curve, "features": "MNF components", "ref": "mnf/components"}],
+           "components": {"asked": "auto", "used": curve["one_se"]}}
+    pls = {"method": "pls", "n_components": 3, "cv": {"n": 40, "r2": 0.81, "rmse": 4.2}}
+    svr = {"method": "svr", "svr_best": {"C": 10.0, "gamma": "scale", "epsilon": 0.5},
+           "cv": {"n": 40, "r2": 0.77, "rmse": 4.9}}
+    acc = {"quantity_maps": {"clay/quantity": {"metrics": {"n": 12, "r2": 0.7, "rmse": 5.1}},
+                             "clay_svr/quantity": {"metrics": {"n": 12, "r2": 0.68, "rmse": 5.4}}}}
+    cals = [{"name": "clay", "quantity": "clay", "units": "%"}, {"name": "clay_svr", "quantity": "clay", "units": "%"}]
+    html = model_choice_html({"svm": svm, "clay": pls, "clay_svr": svr, "mosaic": None}, acc, cals)
+    # the peak, the one-SE count and the count the step took (its own one-SE count)
+    assert f"<td>{curve['peak']} (" in html
+    assert f"</td><td>{curve['one_se']}</td><td>{curve['one_se']}</td></tr>" in html
+    assert "<td>clay_svr</td><td>clay</td><td>svr</td><td>C 10, gamma scale, epsilon 0.5000</td>" in html
+    assert "<td>0.810</td><td>4.2</td><td>12</td><td>0.700</td><td>5.1</td>" in html
+    assert "<td>0.770</td><td>4.9</td><td>12</td><td>0.680</td><td>5.4</td>" in html
+    assert html.count("<img") == 1
+    page = render_html(ReportSummary(model_choice=html))
+    assert 'id="model-choice"' in page
+    assert model_choice_html({"mosaic": None, "x": {"method": "mnf"}}) is None
