@@ -4,6 +4,7 @@ from __future__ import annotations
 import functools
 import itertools
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -324,3 +325,166 @@ def test_run_config_runs_a_band_selection(tmp_path, capsys) -> None:
     w = np.asarray(spec.coords["wavelength"], dtype=float)
     assert set(np.round(w, 3)) <= set(np.round(WL, 3))
     assert not np.any((w >= 1340) & (w <= 1460)) and not np.any((w >= 1790) & (w <= 1960))
+
+
+# the SVM route: the curve in the SVM model and components: auto ----------------------------------
+def _ranked_scene(seed: int = 3, rows: int = 24, cols: int = 24, n_noise: int = 26):
+    """A components-like cube whose 36 sample pixels hold the samples of
+    :func:`test_curve_peaks_at_the_informative_count` (4 informative ranked features, then noise)."""
+    rng = np.random.default_rng(seed)
+    n_per, k = 12, 3
+    centres = rng.normal(0, 1.6, size=(k, 4))
+    X_inf = np.vstack([c + rng.normal(0, 1.0, size=(n_per, 4)) for c in centres])
+    X = np.column_stack([X_inf, rng.normal(0, 1.0, size=(n_per * k, n_noise))])
+    y = np.repeat(np.arange(1, k + 1), n_per)
+    labels = (np.arange(cols)[None, :] * k // cols + 1) * np.ones((rows, 1), int)
+    cube = rng.normal(0, 1.0, size=(X.shape[1], rows, cols))
+    cube[:4] += np.moveaxis(centres[labels - 1], -1, 0)
+    # n_per samples per class on distinct rows of the class's columns; group g holds one of every class
+    rr = np.tile(np.arange(1, 2 * n_per, 2), k)
+    cc = np.repeat([cols // (2 * k) + j * cols // k for j in range(k)], n_per)
+    cube[:, rr, cc] = X.T
+    cube = cube.astype(np.float32)
+    spec = OutputSpec(bands=tuple(f"mnf_{i + 1}" for i in range(cube.shape[0])), dtype="float32",
+                      nodata=float("nan"), role=Role.COMPONENTS, attrs={"long_name": "MNF components"})
+    table = SampleTable(row=rr, col=cc, label=y.astype(np.int32), group=np.tile(np.arange(n_per), k),
+                        feature=np.arange(rr.size), split=np.zeros(rr.size, np.uint8), class_names=("a", "b", "c"))
+    return cube, spec, table
+
+
+def _svm_model(run_dir: Path, name: str = "svm") -> dict:
+    from swathmill.tiles.tasks import load_model
+
+    return load_model(next((run_dir / "models").glob(f"{name}-*.json")).with_suffix(""))
+
+
+def _by_hand_curve(X: np.ndarray, y: np.ndarray, g: np.ndarray, folds: int, C: float) -> tuple[np.ndarray, np.ndarray]:
+    # blocked CV computed directly with scikit-learn (GroupKFold, StandardScaler + RBF SVC, gamma "scale")
+    from sklearn.model_selection import GroupKFold
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVC
+
+    acc = np.empty((X.shape[1], folds))
+    for f, (tr, te) in enumerate(GroupKFold(folds).split(X, y, g)):
+        for k in range(1, X.shape[1] + 1):
+            m = make_pipeline(StandardScaler(), SVC(C=C, gamma="scale")).fit(X[tr, :k], y[tr])
+            acc[k - 1, f] = np.mean(m.predict(X[te, :k]) == y[te])
+    return acc.mean(axis=1), acc.std(axis=1, ddof=1)
+
+
+def test_svm_curve_peaks_at_known_count_and_auto_takes_one_se(tmp_path) -> None:
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVC
+
+    from swathmill.workflows.methods.classify import svm_step
+
+    cube, spec, table = _ranked_scene()
+    folds, C = 4, 100.0
+    step = svm_step("svm", "src/comp", samples=table, C=[1.0, 100.0], gamma=["scale"], folds=folds,
+                    components="auto", curve_max=30, curve_C=C)
+    out, _ = run_on_arrays([step], {"comp": (cube, spec)}, tmp_path, tile=8, raw=True)
+    model = _svm_model(tmp_path / "run")
+    curve = model["curves"][0]
+    assert curve["features"] == "MNF components" and curve["ref"] == "src/comp"
+    assert curve["counts"] == list(range(1, 31))
+    X = cube[:, table.row, table.col].T.astype(np.float64)
+    mean, std = _by_hand_curve(X, table.label, table.group, folds, C)
+    np.testing.assert_allclose(curve["mean"], mean, atol=1e-12)
+    np.testing.assert_allclose(curve["std"], std, atol=1e-12)
+    # built to peak at the 4 informative features: more noise dimensions with 36 samples do worse
+    # (Hughes phenomenon, Hughes 1968, from memory)
+    assert curve["peak"] in (3, 4)
+    assert mean[3] > mean[-1] + 0.1
+    # one standard error rule (Breiman et al. 1984, from memory): smallest count within std/sqrt(folds)
+    p = int(np.argmax(mean))
+    one_se = int(np.flatnonzero(mean >= mean[p] - std[p] / np.sqrt(folds))[0]) + 1
+    assert curve["one_se"] == one_se
+    assert model["components"]["used"] == one_se and model["components"]["asked"] == "auto"
+    assert model["feature_index"] == list(range(one_se)) and model["n_features"] == one_se
+    # the class map is the SVM refitted by hand on the first one_se features with the chosen C, gamma
+    ref = Pipeline([("s", StandardScaler()), ("svc", SVC(kernel="rbf", C=model["best"]["C"],
+                                                         gamma=model["best"]["gamma"]))])
+    ref.fit(X[:, :one_se], table.label)
+    expected = ref.predict(cube[:one_se].reshape(one_se, -1).T.astype(np.float64)).reshape(cube.shape[1:])
+    np.testing.assert_array_equal(out["svm/classes"][0], expected)
+
+
+def test_svm_fixed_components_and_compared_inputs_tiled_equals_whole(tmp_path) -> None:
+    from swathmill.workflows.methods.classify import svm_step
+
+    cube, spec, table = _ranked_scene(seed=5, n_noise=6)  # 10 features
+    # the same features as a band-selection cube: stored shuffled, ranked by its selection_order
+    perm = np.array([7, 2, 9, 0, 5, 1, 8, 3, 6, 4])
+    names = [f"b{i}" for i in range(cube.shape[0])]
+    sel_spec = OutputSpec(bands=tuple(names[i] for i in perm), dtype="float32", nodata=float("nan"),
+                          role=Role.REFLECTANCE, attrs={"selection_order": names})
+    refl_spec = OutputSpec(bands=tuple(names), dtype="float32", nodata=float("nan"), role=Role.REFLECTANCE)
+    arrays = {"comp": (cube, spec), "sel": (cube[perm], sel_spec), "refl": (cube, refl_spec)}
+
+    def make() -> Any:
+        return svm_step("svm", "src/comp", samples=table, C=[10.0], gamma=["scale"], folds=3, components=2,
+                        curve=True, curve_compare=["src/sel", "src/refl"], curve_max=6)
+
+    whole, _ = run_on_arrays([make()], arrays, tmp_path, tile=64, run_name="whole")
+    tiled, _ = run_on_arrays([make()], arrays, tmp_path, tile=8, run_name="tiled")
+    np.testing.assert_array_equal(whole["svm/classes"], tiled["svm/classes"])
+    mw, mt = _svm_model(tmp_path / "whole"), _svm_model(tmp_path / "tiled")
+    assert mw["curves"] == mt["curves"]
+    own, sel, refl = mt["curves"]
+    assert [c["features"] for c in mt["curves"]] == ["MNF components", "selected bands", "PCA components"]
+    # selected bands in selection order are the input's features in its order: the same curve
+    assert sel["mean"] == own["mean"] and sel["std"] == own["std"]
+    # PCA in each training fold, recomputed with scikit-learn for 2 components
+    X = cube[:, table.row, table.col].T.astype(np.float64)
+    check = feature_count_curve(X, table.label, table.group, [2], mode="pca", folds=3,
+                                estimator=lambda: _svc(100.0))  # curve_C default
+    assert refl["mean"][1] == pytest.approx(check["mean"][0])
+    assert mt["components"] == {"asked": 2, "used": 2, "features": "MNF components", "rule": "as configured"}
+    assert mt["feature_index"] == [0, 1]
+
+
+def _svc(C: float) -> Any:
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVC
+
+    return make_pipeline(StandardScaler(), SVC(C=C, gamma="scale"))
+
+
+def test_svm_curve_settings_errors() -> None:
+    from swathmill.workflows.methods.classify import SvmSettings
+
+    with pytest.raises(ValueError, match="curve_compare"):
+        SvmSettings(curve_compare=["bands/selected"])
+    with pytest.raises(ValueError, match="components"):
+        SvmSettings(components=0)
+    assert SvmSettings(components="auto", curve_compare=["bands/selected"]).components == "auto"
+
+
+def test_report_section_shows_curves_and_calibrations_side_by_side() -> None:
+    from swathmill.workflows.app.report import model_choice_html, render_html, ReportSummary
+
+    cube, spec, table = _ranked_scene(n_noise=6)
+    X = cube[:, table.row, table.col].T.astype(np.float64)
+    curve = feature_count_curve(X, table.label, table.group, list(range(1, 11)), folds=4)
+    svm = {"curves": [{**curve, "features": "MNF components", "ref": "mnf/components"}],
+           "components": {"asked": "auto", "used": curve["one_se"]}}
+    pls = {"method": "pls", "n_components": 3, "cv": {"n": 40, "r2": 0.81, "rmse": 4.2}}
+    svr = {"method": "svr", "svr_best": {"C": 10.0, "gamma": "scale", "epsilon": 0.5},
+           "cv": {"n": 40, "r2": 0.77, "rmse": 4.9}}
+    acc = {"quantity_maps": {"clay/quantity": {"metrics": {"n": 12, "r2": 0.7, "rmse": 5.1}},
+                             "clay_svr/quantity": {"metrics": {"n": 12, "r2": 0.68, "rmse": 5.4}}}}
+    cals = [{"name": "clay", "quantity": "clay", "units": "%"}, {"name": "clay_svr", "quantity": "clay", "units": "%"}]
+    html = model_choice_html({"svm": svm, "clay": pls, "clay_svr": svr, "mosaic": None}, acc, cals)
+    # the peak, the one-SE count and the count the step took (its own one-SE count)
+    assert f"<td>{curve['peak']} (" in html
+    assert f"</td><td>{curve['one_se']}</td><td>{curve['one_se']}</td></tr>" in html
+    assert "<td>clay_svr</td><td>clay</td><td>svr</td><td>C 10, gamma scale, epsilon 0.5000</td>" in html
+    assert "<td>0.810</td><td>4.2</td><td>12</td><td>0.700</td><td>5.1</td>" in html
+    assert "<td>0.770</td><td>4.9</td><td>12</td><td>0.680</td><td>5.4</td>" in html
+    assert html.count("<img") == 1
+    page = render_html(ReportSummary(model_choice=html))
+    assert 'id="model-choice"' in page
+    assert model_choice_html({"mosaic": None, "x": {"method": "mnf"}}) is None

@@ -33,6 +33,10 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
         "mosaic": files.mosaic_section(relative_to=root),
         "reference": ref,
         "mnf": {"method": "mnf", "components": 12, "noise_direction": "both", "denoise_components": 10},
+        # band selection by class separability (floating search on the JM distance), with the curve of
+        # blocked-CV accuracy against the number of selected bands
+        "band_selection": {"name": "bands", "input": "mosaic/reflectance", "method": "sffs", "criterion": "jm",
+                           "n_bands": 8, "reference": ref, "folds": 3, "max_per_class": 60, "curve": True},
         "endmembers": {"name": "endmembers", "method": "nfindr", "input": "mnf/components",
                        "spectra": "mosaic/reflectance", "n_endmembers": 7, "seed": 0},
         "classify": {
@@ -42,8 +46,11 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
             "sff": {"name": "sff", "input": "mosaic/reflectance",
                     "references": {"library": lib, "materials": ["pallid_clay", "chalk_pan", "straw_scrub"]},
                     "range": [2050.0, 2450.0], "max_rmse": 0.02},
+            # the SVM takes the number of MNF components from its dimensionality curve (one standard
+            # error rule) and records the curves of PCA components and selected bands beside it
             "svm": {"name": "svm", "input": "mnf/components", "reference": ref, "C": [1.0, 10.0, 100.0],
-                    "gamma": [0.01, 0.1, 1.0], "folds": 3, "seed": 0},
+                    "gamma": [0.01, 0.1, 1.0], "folds": 3, "seed": 0, "components": "auto", "curve": True,
+                    "curve_compare": ["mosaic/reflectance", "bands/selected"]},
             "modal_filter": {"size": 3},
         },
         "unmix": {"name": "unmix", "input": "mosaic/reflectance", "method": "fully_constrained",
@@ -60,6 +67,10 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
             {"name": "clay", "quantity": "clay", "units": "%", "method": "pls", "input": "mosaic/reflectance",
              "wavelength_ranges": [[2000.0, 2450.0]], "max_components": 8, "property": "clay_pct",
              "cv": {"folds": 5, "grouped": True, "seed": 0}},
+            # the same property by SVM regression on the same bands, compared with PLS in the report
+            {"name": "clay_svr", "quantity": "clay", "units": "%", "method": "svr", "input": "mosaic/reflectance",
+             "wavelength_ranges": [[2000.0, 2450.0]], "C": [1.0, 10.0, 100.0], "gamma": ["scale", 0.01, 0.1],
+             "property": "clay_pct", "cv": {"folds": 5, "grouped": True, "seed": 0}},
         ],
         "accuracy": {"area_unit": "ha"},
         "report": {"enabled": True, "title": "Corrowan Playa demo campaign (invented data)"},

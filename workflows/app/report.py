@@ -43,6 +43,7 @@ __all__ = [
     "ScatterView",
     "AccuracyView",
     "StepTiming",
+    "model_choice_html",
     "ReportSummary",
     "render_html",
     "build_report",
@@ -221,6 +222,7 @@ class ReportSummary:
     provenance: Mapping[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     caution: str = CAUTION
+    model_choice: str | None = None  # HTML of :func:`model_choice_html`
 
 
 # ----------------------------------------------------------------------------------------------
@@ -586,6 +588,117 @@ def _accuracy_html(v: AccuracyView) -> str:
     return "\n".join(parts)
 
 
+# ----------------------------------------------------------------------------------------------
+# number of features (dimensionality curves) and calibration methods side by side
+# ----------------------------------------------------------------------------------------------
+
+def _step_curves(model: Mapping[str, object]) -> tuple[list[Mapping], int | None]:
+    """The dimensionality curves a fitted model records, and the count it took (None: not chosen by a curve)."""
+    if isinstance(model.get("curves"), list):  # SVM: its input's curve first, then the compared inputs
+        comp = model.get("components") or {}
+        return list(model["curves"]), int(comp["used"]) if comp.get("asked") == "auto" else None
+    for key in ("curve", "feature_curve"):  # band selection, calibration
+        if isinstance(model.get(key), Mapping):
+            return [model[key]], None
+    return [], None
+
+
+def _fig_curves(name: str, curves: Sequence[Mapping], chosen: int | None) -> str:
+    fig = _figure(7, 4.2)
+    ax = fig.add_subplot()
+    for i, c in enumerate(curves):
+        col = "#%02x%02x%02x" % _DEFAULT_COLORS[i % len(_DEFAULT_COLORS)]
+        k = np.asarray(c["counts"], dtype=float)
+        m, sd = np.asarray(c["mean"], dtype=float), np.asarray(c["std"], dtype=float)
+        ax.plot(k, m, "o-", ms=3, color=col, label=f"{c.get('features', '')} (peak {c['peak']}, one SE {c['one_se']})")
+        ax.fill_between(k, m - sd, m + sd, color=col, alpha=0.15, lw=0)
+        p = list(c["counts"]).index(c["peak"])
+        ax.plot([c["peak"]], [m[p]], "*", ms=13, color=col, mec="black")
+        q = list(c["counts"]).index(c["one_se"])
+        ax.plot([c["one_se"]], [m[q]], "v", ms=9, color=col, mec="black")
+    if chosen is not None:
+        ax.axvline(chosen, color="#c0392b", ls="--", label=f"taken by the step: {chosen}")
+    ax.set_xlabel("number of features")
+    ax.set_ylabel("blocked-CV " + ("R²" if curves and curves[0].get("score") == "r2" else "overall accuracy"))
+    ax.set_title(f"{name}: score against the number of features (band: ±1 std over folds)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    return _img(fig, f"dimensionality curve of {name}")
+
+
+def _calibration_rows(models: Mapping[str, Mapping | None], accuracy: Mapping | None,
+                      calibrations: Sequence[Mapping]) -> list[list[str]]:
+    rows = []
+    quantity_maps = (accuracy or {}).get("quantity_maps", {})
+    for entry in calibrations:
+        name = str(entry.get("name"))
+        model = models.get(name)
+        if not model or "cv" not in model:
+            continue
+        cv = model["cv"]
+        if model.get("method") == "svr" and model.get("svr_best"):
+            b = model["svr_best"]
+            setting = f"C {_num(b.get('C'))}, gamma {_num(b.get('gamma'))}, epsilon {_num(b.get('epsilon'))}"
+        else:
+            setting = f"{model.get('n_components')} component(s)" if model.get("method") == "pls" else "–"
+        val = next((v["metrics"] for k, v in quantity_maps.items() if k.split("/")[0] == name), {})
+        rows.append([_e(name), _e(entry.get("quantity", "")), _e(model.get("method", "")), _e(setting),
+                     _num(cv.get("n")), _num(cv.get("r2"), 3), _num(cv.get("rmse")), _num(val.get("n")),
+                     _num(val.get("r2"), 3), _num(val.get("rmse")), _e(entry.get("units", ""))])
+    return rows
+
+
+def model_choice_html(models: Mapping[str, Mapping | None], accuracy: Mapping | None = None,
+                      calibrations: Sequence[Mapping] = ()) -> str | None:
+    """The report's section on how many features, and which calibration method.
+
+    Parameters
+    ----------
+    models
+        Step name -> fitted model (None for steps without one). Dimensionality curves are read from
+        SVM models (``curves``, ``components``), band-selection models (``curve``) and calibration
+        models (``feature_curve``).
+    accuracy
+        The run's accuracy file (its ``quantity_maps`` give the validation metrics), or None.
+    calibrations
+        The configuration's calibration entries (``name``, ``quantity``, ``units``).
+
+    Returns
+    -------
+    str or None
+        HTML, or None when no model records a curve and no calibration was fitted.
+    """
+    parts: list[str] = []
+    summary: list[list[str]] = []
+    for name, model in models.items():
+        if not model:
+            continue
+        curves, chosen = _step_curves(model)
+        if not curves:
+            continue
+        parts.append(_fig_curves(name, curves, chosen))
+        for c in curves:
+            p = list(c["counts"]).index(c["peak"])
+            summary.append([_e(name), _e(c.get("features", "")), _e(c.get("ref", "")), _num(c.get("folds")),
+                            f"{c['peak']} ({_num(c['mean'][p], 3)})", str(c["one_se"]),
+                            str(chosen) if chosen is not None and c is curves[0] else "–"])
+    if summary:
+        parts.insert(0, "<p>Blocked cross-validation on the training samples (no spatial group on both sides "
+                        "of a split): the mean score per number of features and its spread over folds. The star "
+                        "marks the peak, the triangle the smallest count within one standard error of the peak "
+                        "(std / √folds), the count a step takes with <code>components: auto</code>. With few "
+                        "ground samples, more features eventually make a model worse.</p>"
+                     + _table(["step", "features", "input", "folds", "peak (score)", "one-SE count", "taken"],
+                              summary))
+    rows = _calibration_rows(models, accuracy, calibrations)
+    if rows:
+        parts.append("<h3>Calibrations side by side</h3><p>Cross-validated figures on the training samples "
+                     "and figures against the validation samples (where the run has them).</p>"
+                     + _table(["calibration", "quantity", "method", "chosen setting", "CV n", "CV R²", "CV RMSE",
+                               "validation n", "validation R²", "validation RMSE", "units"], rows))
+    return "\n".join(parts) or None
+
+
 def _section(anchor: str, title: str, body: str) -> str:
     return f'<section id="{anchor}"><h2>{_e(title)}</h2>\n{body}\n</section>'
 
@@ -651,6 +764,7 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
     else:
         body = None
     add("calibration", "Calibration and regression checks", body)
+    add("model-choice", "Number of features and model comparison", s.model_choice)
     add("accuracy", "Accuracy of the class maps", "\n".join(_accuracy_html(v) for v in s.accuracy) or None)
     if s.timings:
         total = sum(float(t.seconds) for t in s.timings)

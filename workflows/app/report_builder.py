@@ -14,7 +14,7 @@ from swathmill.tiles.store import TileStore, decode
 
 from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine,
                                             InputsSection, Quicklook, ReportSummary, ScatterView, SpectraView,
-                                            StepTiming, build_report)
+                                            StepTiming, build_report, model_choice_html)
 from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, is_class_map, with_role
 from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
 from swathmill.workflows.roles import Role
@@ -105,6 +105,10 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
         _step_models(name, model, summary)
     _library_spectra(view, summary)
     _accuracy(view, summary)
+    summary.model_choice = model_choice_html(
+        {n: view.model(n) for n in view.steps if view.complete(n)},
+        json.loads((view.dir / ACCURACY_FILE).read_text()) if (view.dir / ACCURACY_FILE).is_file() else None,
+        cfg.get("calibrations") or [])
     _timings(view, summary)
     summary.provenance = {
         "software": "swathmill", "software_version": _version(),

@@ -9,6 +9,23 @@ Support vector machine (Cortes and Vapnik, 1995; Melgani and Bruzzone, 2004)
     prediction, which the calibrated probabilities may occasionally disagree with. The fitted
     estimators are stored by :mod:`swathmill.workflows.methods.classify.models`.
 
+The dimensionality curve and ``components: auto``
+    With ``curve: true`` (or ``components: auto``) the fit computes, on the training samples, the
+    blocked cross-validated overall accuracy against the number of features
+    (:func:`swathmill.workflows.methods.bandselect.feature_count_curve`: the same ``GroupKFold`` on
+    the samples' spatial groups; a standardised RBF SVC with ``curve_C`` and ``gamma="scale"``, fixed
+    so that the curve costs one fit per count and fold; mean and standard deviation over folds per
+    count, the peak and the smallest count within one standard error of it). Features are taken in
+    their ranked order: MNF or PCA components in component order, a band-selection cube's bands in
+    selection order (its ``selection_order`` attribute), other bands in input order. ``curve_compare``
+    names further inputs whose curves are recorded beside it (components and selected bands by their
+    order; a reflectance cube by PCA components fitted inside each training fold), so the report can
+    show MNF components, PCA components and selected bands on one plot; note that the engine reads
+    those inputs for every tile of the step too, and that the class map is left empty where one of
+    them is nodata. ``components: k`` keeps the first ``k`` features; ``components: auto`` keeps the
+    one-standard-error count of the input's curve. The model records the curves (``curves``), the
+    features used (``feature_index``, ``features_used``) and the choice (``components``).
+
 Step outputs: ``classes``, and ``probability`` (one band per class) when asked.
 """
 from __future__ import annotations
@@ -18,9 +35,9 @@ import warnings
 from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import Field, field_validator
+from pydantic import Field, field_validator, model_validator
 
-from swathmill.tiles.samples import merge_gathered, select_tiles_holding
+from swathmill.tiles.samples import gather, merge_gathered, select_tiles_holding
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable
 from swathmill.workflows.params import Section
@@ -38,8 +55,12 @@ __all__ = [
     "cap_samples",
     "fit_svm",
     "predict_svm",
+    "feature_order",
+    "svm_feature_curve",
     "svm_step",
 ]
+
+_CMP = "compare_"  # aliases of the curve_compare inputs: compare_0, compare_1, ...
 
 
 # settings ------------------------------------------------------------------------------------------
@@ -54,6 +75,37 @@ class SvmSettings(Section):
     seed: int = 0
     max_per_class: int | None = Field(None, ge=1)
     chunk: int = Field(65536, ge=1, description="pixels per prediction call")
+    components: int | Literal["auto"] | None = Field(
+        None, description="keep the first k features of the input (ranked order); 'auto': the one-standard-"
+                          "error count of the dimensionality curve; None: all")
+    curve: bool = Field(False, description="record blocked-CV accuracy against the number of features")
+    curve_max: int = Field(20, ge=1, description="largest feature count of the curve")
+    curve_C: float = Field(100.0, gt=0, description="SVC C of the curve (gamma 'scale', standardised features)")
+    curve_compare: list[str] = Field(default_factory=list,
+                                     description="further inputs ('step/output') whose curves are recorded beside")
+
+    @field_validator("components")
+    @classmethod
+    def _components(cls, v: int | str | None) -> int | str | None:
+        if isinstance(v, int) and v < 1:
+            raise ValueError(f"components is a count of at least 1, 'auto' or null. Got {v}")
+        return v
+
+    @field_validator("curve_compare")
+    @classmethod
+    def _refs(cls, v: list[str]) -> list[str]:
+        for r in v:
+            if r.count("/") != 1:
+                raise ValueError(f"curve_compare entries are 'step/output' references. Got {r!r}")
+        if len(set(v)) != len(v):
+            raise ValueError(f"curve_compare names an input twice: {v}")
+        return v
+
+    @model_validator(mode="after")
+    def _curve_needed(self) -> "SvmSettings":
+        if self.curve_compare and not (self.curve or self.components == "auto"):
+            raise ValueError(f"curve_compare {self.curve_compare} is only read with curve: true or components: auto")
+        return self
 
     @field_validator("C")
     @classmethod
@@ -73,6 +125,9 @@ class SvmConfig(SvmSettings):
           gamma: [0.001, 0.01, 0.1, 1]
           folds: 5
           probability: false
+          components: auto               # or a count, or null (all features)
+          curve: true
+          curve_compare: [mosaic/reflectance, bands/selected]
     """
 
     name: str = "svm"
@@ -215,19 +270,129 @@ def cap_samples(table: SampleTable, max_per_class: int, seed: int = field_defaul
     return table.subset(keep)
 
 
+# the dimensionality curve -------------------------------------------------------------------------
+def feature_order(spec: OutputSpec) -> tuple[list[int], str, Literal["prefix", "pca"]]:
+    """The ranked order of an input's bands, what they are, and how a curve counts them.
+
+    A band-selection cube (``selection_order`` attribute): its bands in selection order, "selected
+    bands". Components (role ``components``): in component order, named after their ``long_name``
+    (e.g. "MNF components"). A reflectance cube: "PCA components" fitted inside each training fold
+    (mode ``pca``). Anything else: its bands in input order.
+    """
+    bands = list(spec.bands)
+    sel = spec.attrs.get("selection_order")
+    if sel:
+        missing = [b for b in sel if b not in bands]
+        if missing:
+            raise ClassifyError(f"selection_order names band(s) {missing} that the input does not hold ({bands})")
+        return [bands.index(b) for b in sel], "selected bands", "prefix"
+    if spec.role == Role.COMPONENTS:
+        return list(range(len(bands))), str(spec.attrs.get("long_name", "components")), "prefix"
+    if spec.role == Role.REFLECTANCE:
+        return list(range(len(bands))), "PCA components", "pca"
+    return list(range(len(bands))), "bands in input order", "prefix"
+
+
+def svm_feature_curve(X: np.ndarray, y: np.ndarray, groups: np.ndarray, *, mode: Literal["prefix", "pca"],
+                      settings: SvmSettings) -> dict:
+    """Blocked-CV overall accuracy of a standardised RBF SVC against the number of features.
+
+    ``X`` holds the features in ranked order (``mode="prefix"``) or raw bands (``mode="pca"``: PCA
+    fitted in each training fold). Counts run 1..``curve_max`` (at most the features, and for PCA at
+    most the smallest training fold less one). See
+    :func:`swathmill.workflows.methods.bandselect.feature_count_curve`.
+    """
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVC
+
+    from swathmill.workflows.methods.bandselect import feature_count_curve
+
+    top = min(settings.curve_max, X.shape[1])
+    if mode == "pca":
+        smallest = min(tr.size for tr, _ in blocked_folds(y, groups, settings.folds))
+        top = min(top, smallest - 1)
+    if top < 1:
+        raise ClassifyError(f"the dimensionality curve needs at least one feature. Got {X.shape[1]} feature(s)")
+
+    def estimator() -> Pipeline:
+        return Pipeline([("scale", StandardScaler()),
+                         ("svc", SVC(kernel="rbf", C=settings.curve_C, gamma="scale", random_state=settings.seed))])
+
+    return feature_count_curve(X, y, groups, list(range(1, top + 1)), mode=mode, folds=settings.folds,
+                               estimator=estimator)
+
+
 # the step ------------------------------------------------------------------------------------------
+def _positions(idx: np.ndarray, wanted: np.ndarray) -> np.ndarray:
+    o = np.argsort(idx, kind="stable")
+    return o[np.searchsorted(idx[o], wanted)]
+
+
+def _accumulate_compare(block: Block) -> dict:
+    """The samples of input ``x`` and of every ``curve_compare`` input, side by side (bands concatenated);
+    a sample counts only where every input is valid and finite."""
+    rows, cols = block.static["samples.row"], block.static["samples.col"]
+    aliases = ["x", *(f"{_CMP}{i}" for i in range(len(block.params.settings.curve_compare)))]
+    parts = [gather(block, a, rows, cols, np.float32) for a in aliases]
+    common = parts[0]["idx"]
+    for part in parts[1:]:
+        common = np.intersect1d(common, part["idx"])
+    X = np.concatenate([part["X"][_positions(part["idx"], common)] for part in parts], axis=1)
+    seen = np.unique(np.concatenate([np.concatenate([part["idx"], part["bad"]]) for part in parts]))
+    return {"idx": common.astype(np.int64), "X": np.ascontiguousarray(X),
+            "bad": np.setdiff1d(seen, common).astype(np.int64)}
+
+
 def _finalize_svm(acc: dict | None, params: ClassifierParams, meta: Mapping[str, InputMeta], *,
                   table: SampleTable) -> dict:
-    nb = len(meta["x"].spec.bands)
-    idx, X, report = gathered_samples(acc, table, nb, params.step)
+    cfg: SvmSettings = params.settings
+    spec = meta["x"].spec
+    nb = len(spec.bands)
+    aliases = [f"{_CMP}{i}" for i in range(len(cfg.curve_compare))]
+    widths = [nb] + [len(meta[a].spec.bands) for a in aliases]
+    idx, X_all, report = gathered_samples(acc, table, sum(widths), params.step)
+    X = X_all[:, :nb]
     y = table.label[idx].astype(np.int64)
     train = training_mask(table, idx)
-    Xt, yt, gt = X[train], y[train], table.group[idx][train]
-    model = fit_svm(Xt, yt, gt, class_names=table.class_names, settings=params.settings)
+    yt, gt = y[train], table.group[idx][train]
+    order, label, mode = feature_order(spec)
+    if mode == "pca":  # the SVM takes the bands themselves: its own curve counts them in input order
+        label = "bands in input order"
+    curves: list[dict] = []
+    if cfg.curve or cfg.components == "auto":
+        check_training(yt, gt, table.class_names, cfg.folds)
+        # the input's own features in ranked order (components: auto counts them)
+        curves.append({**svm_feature_curve(X[train][:, order], yt, gt, mode="prefix", settings=cfg),
+                       "ref": meta["x"].ref, "features": label})
+        start = nb
+        for a, w in zip(aliases, widths[1:]):
+            o, lab, mode = feature_order(meta[a].spec)
+            Xc = X_all[train, start:start + w][:, o]
+            start += w
+            curves.append({**svm_feature_curve(Xc, yt, gt, mode=mode, settings=cfg), "ref": meta[a].ref,
+                           "features": lab})
+    if cfg.components is None:
+        use = list(range(nb))
+    else:
+        k = int(curves[0]["one_se"]) if cfg.components == "auto" else int(cfg.components)
+        if k > nb:
+            raise ClassifyError(f"step {params.step!r}: components {k} asked, but input {meta['x'].ref!r} has "
+                                f"{nb} band(s)")
+        use = order[:k]
+    model = fit_svm(X[train][:, use], yt, gt, class_names=table.class_names, settings=cfg)
     model["samples"] = report
+    model["n_input_bands"] = nb
+    model["feature_index"] = [int(i) for i in use]
+    model["features_used"] = [spec.bands[i] for i in use]
+    model["components"] = {"asked": cfg.components, "used": len(use), "features": label,
+                           "rule": ("smallest count within one standard error of the peak of the curve"
+                                    if cfg.components == "auto" else "as configured")}
+    if curves:
+        model["curves"] = curves
     if (~train).any():
         est = load_svm(model)
-        pred, _ = predict_svm(est, X[~train])
+        pred, _ = predict_svm(est, X[~train][:, use])
         model["validation"] = {"n": int((~train).sum()), "overall_accuracy": float(np.mean(pred == y[~train]))}
     return model
 
@@ -237,13 +402,16 @@ def _svm_kernel(block: Block, model: dict) -> dict:
     settings: SvmSettings = p.settings
     shape = block.valid.shape
     nb = block.data["x"].shape[0]
-    if nb != int(model["n_features"]):
-        raise ClassifyError(f"input has {nb} bands; the SVM was trained on {model['n_features']}")
+    expected = int(model.get("n_input_bands", model["n_features"]))
+    if nb != expected:
+        raise ClassifyError(f"input has {nb} bands; the SVM was trained on an input of {expected}")
+    use = model.get("feature_index")
+    band_index = None if use is None or list(use) == list(range(nb)) else np.asarray(use, dtype=np.intp)
     est = load_svm(model)
     k = len(p.class_names)
     cls = blank(1, shape, 0, np.uint8)
     proba = blank(k, shape, np.nan, np.float32) if settings.probability else None
-    for s, e, X, ok in pixel_chunks(block, chunk=settings.chunk):
+    for s, e, X, ok in pixel_chunks(block, band_index, chunk=settings.chunk):
         if not ok.any():
             continue
         labels, pr = predict_svm(est, X[:, ok].T, probability=settings.probability, chunk=settings.chunk)
@@ -276,7 +444,8 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     samples : the ground reference samples on the grid.
     colors : RGB per class (default: :func:`~swathmill.workflows.methods.classify.shared.class_palette`).
     settings : an :class:`SvmSettings` (or a section derived from it); or its fields as keywords
-        (``C``, ``gamma``, ``folds``, ``scoring``, ``probability``, ``seed``, ``max_per_class``, ``chunk``).
+        (``C``, ``gamma``, ``folds``, ``scoring``, ``probability``, ``seed``, ``max_per_class``, ``chunk``,
+        ``components``, ``curve``, ``curve_max``, ``curve_C``, ``curve_compare``).
 
     Validation pixels are left out of training; the model reports their overall accuracy under
     ``validation``. ``max_per_class`` caps the samples per class and split before the fit
@@ -295,8 +464,11 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     params = ClassifierParams(step=name, settings=cfg, names=names, class_names=names,
                               ref_class=tuple(range(1, len(names) + 1)),
                               colors=tuple(tuple(int(v) for v in c) for c in colors) if colors else None)
-    fit = Fit(accumulate=accumulate_samples, merge=merge_gathered,
+    compare = {f"{_CMP}{i}": ref for i, ref in enumerate(cfg.curve_compare)}
+    if input_ref in cfg.curve_compare:
+        raise ClassifyError(f"step {name!r}: curve_compare names the step's own input {input_ref!r}")
+    fit = Fit(accumulate=_accumulate_compare if compare else accumulate_samples, merge=merge_gathered,
               select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_svm, table=samples))
-    return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref}, params=params,
-                fit=fit, static=samples.to_static())
+    return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref, **compare},
+                params=params, fit=fit, static=samples.to_static())
