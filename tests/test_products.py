@@ -186,3 +186,84 @@ def test_acquisition_tags_and_errors():
         acquisition_time({"acquisition_time": "2024-01-02", "acquisition_end_time": "2024-01-01"}, "x")
     with pytest.raises(ValueError, match=r"acquisition_time names lines \['zz'\]"):
         MosaicConfig(lines=["a.tif"], acquisition_time={"zz": "2024-01-01"})
+
+
+# ------------------------------------------------------------------ a demo-like run: every output
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory) -> Path:
+    """The demo's configuration (every step on) on the small invented scenario, one process, no report."""
+    import yaml
+
+    from swathmill.workflows.app.demo import demo_config
+    from swathmill.workflows.app.pipeline import run_config
+    from swathmill.workflows.app.scenario import generate_scenario
+
+    root = tmp_path_factory.mktemp("demo")
+    files = generate_scenario(root, size="small", seed=7)
+    cfg = demo_config(files, root, "small", executor="local")
+    cfg["report"] = {"enabled": False}
+    cfg["engine"]["tile"] = 128  # four tiles a step: the same outputs at less scheduling cost
+    path = root / "demo.yaml"
+    path.write_text(yaml.safe_dump(cfg, sort_keys=False))
+    assert run_config(path, plain=True) == 0
+    return root / "run"
+
+
+PLACEHOLDERS = ("units of the input", "unknown", "n/a", "", "input units")
+
+
+@pytest.mark.slow
+def test_units_on_every_output_of_a_demo_like_run(demo_run):
+    stores = sorted((demo_run / "stores").glob("*.zarr"))
+    assert len(stores) >= 10
+    seen = 0
+    for store in stores:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")  # every store opens quietly (consolidated metadata)
+            ds = xr.open_zarr(store)
+        meta = ds.attrs["swathmill"]["outputs"]
+        for name, spec in meta.items():
+            if spec["kind"] == "categorical":
+                # class codes have no unit; what they mean is in their class names
+                assert spec["class_names"], f"{store.name}/{name}"
+                continue
+            units = ds[name].attrs.get("units")
+            per_band = units if isinstance(units, list) else [units] * len(spec["bands"])
+            assert len(per_band) == len(spec["bands"]), f"{store.name}/{name}"
+            for u in per_band:
+                assert isinstance(u, str) and u.strip().lower() not in PLACEHOLDERS, f"{store.name}/{name}: {u!r}"
+            seen += 1
+    assert seen >= 12
+    # the units the issue names (UDUNITS spellings; "1" is a fraction or reflectance)
+    units = {p.name: rasterio.open(p).units for p in (demo_run / "products").glob("*.tif")}
+    assert set(units["unmix__abundance.tif"]) == {"1"}
+    assert units["unmix__rmse.tif"] == ("1",)  # a residual of reflectance
+    assert set(units["sam__angle.tif"]) == {"radian"}
+    assert units["clay__quantity.tif"] == ("%",) and units["clay__uncertainty.tif"] == ("%",)
+    assert set(units["mosaic__reflectance.tif"]) == {"1"} and set(units["mnf_denoised__reflectance.tif"]) == {"1"}
+    for name in ("sff__scale.tif", "sff__rmse.tif", "svm__probability.tif", "mnf__components.tif"):
+        if name in units:
+            assert all(u for u in units[name]), name
+
+
+@pytest.mark.slow
+def test_demo_products_are_dated_by_the_flights(demo_run):
+    import rasterio as rio
+
+    from swathmill.workflows.app.scenario import generate_scenario  # noqa: F401  (the lines are its files)
+
+    lines = sorted((demo_run.parent / "lines").glob("*.tif"))
+    times = []
+    for p in lines:
+        with rio.open(p) as ds:
+            times.append(ds.tags()["acquisition_time"])
+    for item in (demo_run / "products").glob("*.tif.json"):
+        p = json.loads(item.read_text())["properties"]
+        assert (p["start_datetime"], p["end_datetime"]) == (min(times), max(times)), item.name
+        assert p["datetime"] is None and p["swathmill:datetime_from"] == "acquisition"
+    # the denoised cube keeps the mosaic's band names
+    with rio.open(demo_run / "products" / "mnf_denoised__reflectance.tif") as a, \
+            rio.open(demo_run / "products" / "mosaic__reflectance.tif") as b:
+        assert a.descriptions == b.descriptions and a.descriptions[0].endswith(" nm)")
