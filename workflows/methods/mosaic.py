@@ -17,6 +17,12 @@ Pure functions (no I/O) do the science:
 
 :class:`MosaicConfig` is the YAML section; :func:`build_mosaic_step` turns it into the engine's
 :class:`~swathmill.tiles.step.Step` (named ``mosaic``; outputs ``reflectance`` and ``source``).
+
+Bands keep their identity: bad-band windows drop bands but never renumber the rest. Each band of the
+reflectance output is named after the reference line's band number and centre, ``b073 (1350.9 nm)``,
+and carries the coordinates ``wavelength``, ``fwhm`` (nm) and ``source_band`` (that number). The outputs
+carry the acquisition span of the lines (``acquisition_start`` / ``acquisition_end``, from each line's
+own tag or the config's ``acquisition_time``), which every product made from them inherits.
 """
 from __future__ import annotations
 
