@@ -298,4 +298,8 @@ def test_bad_bands_are_dropped_from_the_cube(tmp_path, rng):
     plan = plan_mosaic(_cfg([p], bad_bands=[(1340, 1460), (1790, 1960)]))
     assert np.allclose(plan.wavelength, [1200, 1520, 1680, 2000])
     assert plan.line_params[0].bands == (1, 3, 4, 6)
-    assert plan.band_names == ("b001", "b002", "b003", "b004")
+    # bands keep the reference line's numbers and their centres (no renumbering after the drop)
+    assert plan.band_names == ("b001 (1200.0 nm)", "b003 (1520.0 nm)", "b004 (1680.0 nm)", "b006 (2000.0 nm)")
+    spec = build_mosaic_step(_cfg([p], bad_bands=[(1340, 1460), (1790, 1960)])).resolve_outputs({}, None)["reflectance"]
+    assert spec.coords["source_band"] == (1.0, 3.0, 4.0, 6.0)
+    assert spec.attrs["units"] == "1" and spec.attrs["wavelength_units"] == "nm"

@@ -189,6 +189,8 @@ def write_cog(
                 dst.update_tags(**dataset_tags)
                 for b in range(nb):
                     btags = {k: _tag_str(v[b]) for k, v in spec.coords.items()}
+                    btags.update({f"{k}_units": spec.attrs[f"{k}_units"] for k in spec.coords
+                                  if isinstance(spec.attrs.get(f"{k}_units"), str)})
                     if categorical:
                         btags[_CLASS_TAG] = json.dumps(_class_table(spec))
                     if btags:

@@ -166,7 +166,8 @@ class _MeanOutputs:
     def __call__(self, meta, model, params):
         s = meta["input"].spec
         return {"output": OutputSpec(bands=s.bands, dtype="float32", nodata=float("nan"), coords=s.coords,
-                                     role=s.role)}
+                                     role=s.role, attrs={k: v for k, v in s.attrs.items()
+                                                         if k == "units" or k.endswith("_units")})}
 
 
 def modal_filter_step(name: str, input_ref: str, size: int = 3, n_classes: int | None = None) -> Step:

@@ -32,6 +32,7 @@ __all__ = [
     "validate_item_offline",
     "validate_collection_offline",
     "PROVENANCE_REQUIRED",
+    "EO_URI",
     "STAC_PREFIX",
 ]
 
@@ -44,7 +45,13 @@ STAC_PREFIX = "swathmill:"
 PROJ_URI = "https://stac-extensions.github.io/projection/v2.0.0/schema.json"
 RASTER_URI = "https://stac-extensions.github.io/raster/v1.1.0/schema.json"
 CLASS_URI = "https://stac-extensions.github.io/classification/v2.0.0/schema.json"
-PROC_URI = "https://stac-extensions.github.io/processing/v1.1.0/schema.json"
+PROC_URI = "https://stac-extensions.github.io/processing/v1.2.0/schema.json"
+EO_URI = "https://stac-extensions.github.io/eo/v2.0.0/schema.json"
+
+#: Per-band coordinates written as the electro-optical extension's centre wavelength and width (in µm).
+_EO_COORDS = {"wavelength": "eo:center_wavelength", "fwhm": "eo:full_width_half_max"}
+_TO_MICROMETRES = {"nm": 1e-3, "nanometre": 1e-3, "nanometer": 1e-3, "um": 1.0, "µm": 1.0, "micrometre": 1.0,
+                   "micrometer": 1.0}
 
 
 def item_path(cog_path: Path) -> Path:
@@ -94,6 +101,28 @@ def _footprint(grid: Grid, n: int = 16) -> tuple[dict, list[float]]:
     return geom, bbox
 
 
+def _iso(t: _dt.datetime) -> str:
+    return t.astimezone(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _eo_fields(spec: OutputSpec, b: int) -> dict[str, float]:
+    """``eo:center_wavelength`` and ``eo:full_width_half_max`` (µm) of band ``b`` from its coordinates.
+
+    Only for coordinates whose unit (attribute ``<coord>_units``) is a length the extension can be
+    given in; a missing or non-finite value is left out.
+    """
+    out = {}
+    for coord, key in _EO_COORDS.items():
+        values = spec.coords.get(coord)
+        factor = _TO_MICROMETRES.get(str(spec.attrs.get(f"{coord}_units", "")).strip().lower())
+        if values is None or factor is None:
+            continue
+        v = values[b]
+        if v is not None and math.isfinite(float(v)) and float(v) > 0:
+            out[key] = round(float(v) * factor, 9)
+    return out
+
+
 def _slug(s: str) -> str:
     slug = re.sub(r"[^0-9A-Za-z_-]+", "_", s.strip()).strip("_")
     return slug or "class"
@@ -125,7 +154,11 @@ def stac_item(
     item_id
         The item's id.
     datetime
-        The item's nominal time; default: the processing time ``provenance["created"]``.
+        The item's nominal time. Default: the acquisition time the output carries (attributes
+        ``acquisition_start`` and ``acquisition_end``: ``datetime`` when they are equal, else
+        ``start_datetime`` and ``end_datetime`` with a null ``datetime``, as STAC asks for a range);
+        without one, the processing time, said so in ``swathmill:datetime_from``. The processing
+        time is always in ``created`` and ``processing:datetime``.
 
     Returns
     -------
@@ -147,11 +180,29 @@ def stac_item(
         raise ExportError(f"{what}: provenance lacks {missing}. Got keys {sorted(provenance)}")
     prov = {k: _maybe_json(v) for k, v in provenance.items()}
     created = _parse_time(prov["created"], f"{what}: provenance 'created'")
-    when = _parse_time(datetime, f"{what}: datetime") if datetime is not None else created
+    start = spec.attrs.get("acquisition_start")
+    end = spec.attrs.get("acquisition_end") or start
+    props: dict[str, Any] = {}
+    if datetime is not None:
+        when, source = _parse_time(datetime, f"{what}: datetime"), "given"
+    elif start:
+        t0 = _parse_time(start, f"{what}: attribute 'acquisition_start'")
+        t1 = _parse_time(end, f"{what}: attribute 'acquisition_end'")
+        if t1 < t0:
+            raise ExportError(f"{what}: acquisition ends ({end}) before it starts ({start})")
+        source = "acquisition"
+        if t0 == t1:
+            when = t0
+        else:
+            when = None
+            props = {"start_datetime": _iso(t0), "end_datetime": _iso(t1)}
+    else:
+        when, source = created, "processing time: no acquisition time known"
 
     geom, bbox = _footprint(grid)
-    item = pystac.Item(id=item_id, geometry=geom, bbox=bbox, datetime=when, properties={})
+    item = pystac.Item(id=item_id, geometry=geom, bbox=bbox, datetime=when, properties=props)
     item.common_metadata.created = created
+    item.properties[STAC_PREFIX + "datetime_from"] = source
     item.properties["title"] = item_id
 
     # projection extension
@@ -176,6 +227,7 @@ def stac_item(
     }
     lineage = f"step {prov.get('step', '?')} (key {prov['step_key']}) of run configuration {prov['config_hash']}"
     item.properties["processing:lineage"] = lineage
+    item.properties["processing:datetime"] = _iso(created)
     item.stac_extensions.append(PROC_URI)
     for k, v in prov.items():
         if k in ("software", "software_version", "created", "parameters"):
@@ -202,6 +254,7 @@ def stac_item(
             core["nodata"] = nodata_json
         if units is not None:
             core["unit"] = units[b]
+        core.update(_eo_fields(spec, b))
         bands.append(core)
         rb = RasterBand.create(nodata=nodata_json, sampling=Sampling.AREA, data_type=DataType(dtype.name),
                                unit=units[b] if units else None, scale=scales[b] if scales else None,
@@ -209,6 +262,8 @@ def stac_item(
                                spatial_resolution=float(res_x) if math.isclose(res_x, res_y) else None)
         rbands.append(rb)
     asset.extra_fields["bands"] = bands
+    if any(k.startswith("eo:") for band in bands for k in band):
+        item.stac_extensions.append(EO_URI)
     RasterExtension.ext(asset, add_if_missing=True).bands = rbands
 
     if spec.kind == "categorical":
@@ -264,11 +319,14 @@ def stac_collection(
             raise ExportError(f"collection {collection_id!r}: item {it.id!r} would overwrite {col_path}")
 
     bboxes = np.array([it.bbox for it in items], dtype=float)
-    times = [it.datetime for it in items if it.datetime is not None]
+    starts = [it.common_metadata.start_datetime or it.datetime for it in items]
+    ends = [it.common_metadata.end_datetime or it.datetime for it in items]
+    starts = [t for t in starts if t is not None]
+    ends = [t for t in ends if t is not None]
     extent = pystac.Extent(
         pystac.SpatialExtent([[float(bboxes[:, 0].min()), float(bboxes[:, 1].min()),
                                float(bboxes[:, 2].max()), float(bboxes[:, 3].max())]]),
-        pystac.TemporalExtent([[min(times), max(times)]]),
+        pystac.TemporalExtent([[min(starts), max(ends)]]),
     )
     col = pystac.Collection(id=collection_id, description=description, extent=extent, license=license,
                             title=title, catalog_type=pystac.CatalogType.SELF_CONTAINED)
@@ -326,7 +384,7 @@ def validate_item_offline(item: "pystac.Item") -> None:  # noqa: F821
     """Validate an item without the network: the core schema with pystac, then our extension checks.
 
     The extension checks mirror the published JSON schemas of the extension versions this module
-    writes (projection v2.0.0, raster v1.1.0, classification v2.0.0, processing v1.1.0) for the
+    writes (projection v2.0.0, raster v1.1.0, classification v2.0.0, processing v1.2.0, eo v2.0.0) for the
     fields it writes; an extension URI listed in ``stac_extensions`` that is not one of these, or a
     field with an extension prefix whose URI is not listed, is an error.
 
@@ -350,11 +408,13 @@ def validate_collection_offline(collection: "pystac.Collection") -> None:  # noq
         raise ExportError(f"collection {collection.id!r} declares extensions {ext} that cannot be checked offline")
 
 
-_KNOWN_URIS = {"proj:": PROJ_URI, "raster:": RASTER_URI, "classification:": CLASS_URI, "processing:": PROC_URI}
+_KNOWN_URIS = {"proj:": PROJ_URI, "raster:": RASTER_URI, "classification:": CLASS_URI, "processing:": PROC_URI,
+               "eo:": EO_URI}
 _DATA_TYPES = {"int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64", "float16", "float32",
                "float64", "cint16", "cint32", "cfloat32", "cfloat64", "other"}
 _PROC_FIELDS = {"processing:expression", "processing:lineage", "processing:level", "processing:facility",
-                "processing:software"}
+                "processing:software", "processing:datetime", "processing:version"}
+_DATE_TIME = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?(Z|[+-]\d{2}:\d{2})$")
 
 
 def _is_num(v: Any) -> bool:
@@ -432,10 +492,19 @@ def _field_problems(key: str, v: Any) -> list[str]:
             for c in v:
                 bad.extend(f"class {c.get('value') if isinstance(c, dict) else c!r}: {m}"
                            for m in _class_problems(c))
-    # processing v1.1.0 (stac-extensions/processing json-schema: fields, additionalProperties false)
+    # eo v2.0.0 (stac-extensions/eo json-schema: band fields, numbers; wavelengths in micrometres)
+    elif key in ("eo:center_wavelength", "eo:full_width_half_max", "eo:solar_illumination"):
+        if not (_is_num(v) and v > 0):
+            bad.append(f"must be a positive number (micrometres). Got {v!r}")
+    elif key.startswith("eo:") and key not in ("eo:common_name", "eo:cloud_cover", "eo:snow_cover"):
+        bad.append("is not a field of the eo extension v2.0.0 written here")
+    # processing v1.2.0 (stac-extensions/processing json-schema: fields, additionalProperties false)
     elif key.startswith("processing:"):
         if key not in _PROC_FIELDS:
-            bad.append(f"is not a field of the processing extension v1.1.0 ({sorted(_PROC_FIELDS)})")
+            bad.append(f"is not a field of the processing extension v1.2.0 ({sorted(_PROC_FIELDS)})")
+        elif key == "processing:datetime":
+            if not (isinstance(v, str) and _DATE_TIME.match(v)):
+                bad.append(f"must be an RFC 3339 date-time. Got {v!r}")
         elif key == "processing:software":
             if not (isinstance(v, dict) and v and all(isinstance(k, str) and k and isinstance(x, str)
                                                         for k, x in v.items())):

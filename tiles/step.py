@@ -17,7 +17,8 @@ import numpy as np
 from .grid import Grid, Tile
 from ..errors import SwathmillError
 
-__all__ = ["OutputSpec", "InputMeta", "Block", "Fit", "Step", "Model", "StepError", "canonical_json", "params_dump"]
+__all__ = ["OutputSpec", "InputMeta", "Block", "Fit", "Step", "Model", "StepError", "canonical_json", "params_dump",
+           "ACQUISITION_ATTRS", "acquisition_span"]
 
 Model = dict  # str -> numpy array | JSON-able value; saved as JSON plus npz
 
@@ -202,6 +203,13 @@ class Step:
         outs = dict(outs)
         if not outs:
             raise StepError(f"step {self.name!r} declares no output")
+        span = acquisition_span(m.spec for m in meta.values())
+        if span is not None:
+            # a product is as old as the data it is made of: outputs that state no acquisition time of
+            # their own inherit the span of their inputs
+            outs = {k: v if ACQUISITION_ATTRS[0] in v.attrs else dataclasses.replace(
+                        v, attrs={**v.attrs, ACQUISITION_ATTRS[0]: span[0], ACQUISITION_ATTRS[1]: span[1]})
+                    for k, v in outs.items()}
         return outs
 
     def describe(self) -> dict:
@@ -219,6 +227,29 @@ class Step:
             "grid": self.grid.to_dict() if self.grid else None,
             "outputs": None if callable(self.outputs) else {k: v.to_dict() for k, v in self.outputs.items()},
         }
+
+
+#: Output attributes holding the acquisition time span of the data (ISO 8601 start and end).
+ACQUISITION_ATTRS = ("acquisition_start", "acquisition_end")
+
+
+def acquisition_span(specs) -> tuple[str, str] | None:
+    """The earliest start and latest end of the acquisition attributes of ``specs`` (None if none has them)."""
+    import datetime as _dt
+
+    def when(v: str) -> _dt.datetime:
+        t = _dt.datetime.fromisoformat(str(v))
+        return t if t.tzinfo else t.replace(tzinfo=_dt.timezone.utc)
+
+    starts, ends = [], []
+    for spec in specs:
+        a = spec.attrs
+        if a.get(ACQUISITION_ATTRS[0]):
+            starts.append(a[ACQUISITION_ATTRS[0]])
+            ends.append(a.get(ACQUISITION_ATTRS[1]) or a[ACQUISITION_ATTRS[0]])
+    if not starts:
+        return None
+    return min(starts, key=when), max(ends, key=when)
 
 
 def params_dump(params: Any) -> dict:

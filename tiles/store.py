@@ -8,13 +8,19 @@ Layout of ``<name>.zarr``::
     <band dim>    band names, and per-band coordinates (e.g. wavelength) as 1-D arrays
     spatial_ref   CF grid mapping (crs_wkt, GeoTransform) so rioxarray finds the CRS
 
-The arrays carry ``dimension_names`` and CF attributes, so ``xarray.open_zarr`` reads the group as a
-Dataset. A tile of the engine is always a whole number of shards, so no two tasks write one shard.
+The arrays carry ``dimension_names`` and CF attributes (``_FillValue`` = nodata, ``scale_factor``,
+``units``), and the group has consolidated metadata, so ``xarray.open_zarr`` reads it as a Dataset without
+warnings, masks nodata and rioxarray finds the CRS and nodata; :func:`open_dataset` also gives packed
+integers as float32. A tile of the engine is always a whole number of shards, so no two tasks write one shard.
 """
 from __future__ import annotations
 
+import base64
 import json
+import math
 import os
+import struct
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Mapping
@@ -28,7 +34,7 @@ from .step import OutputSpec
 from ..errors import SwathmillError
 
 __all__ = ["StoreLayout", "TileStore", "create_store", "open_store", "band_dim", "StoreError", "decode", "encode",
-           "index_runs", "copy_bands", "scale_offset"]
+           "index_runs", "copy_bands", "scale_offset", "consolidate", "open_dataset"]
 
 zarr.config.set({"async.concurrency": 8})
 
@@ -102,12 +108,17 @@ def create_store(path: Path, grid: Grid, outputs: Mapping[str, OutputSpec], layo
         coord_names = [f"{c}" if n == 0 else f"{c}_{name}" for c in spec.coords]
         arr.attrs.update({"grid_mapping": "spatial_ref", "coordinates": " ".join(["spatial_ref", *coord_names]),
                           **{k: v for k, v in spec.to_dict()["attrs"].items()}})
+        if spec.nodata is not None:
+            arr.attrs.update({"_FillValue": _fill_value_attr(spec.nodata, spec.dtype)})
         b = root.create_array(dim, shape=(nb,), dtype=str, dimension_names=(dim,), chunks=(nb,))
         b[:] = np.asarray(spec.bands, dtype=str)
         for cname, values in spec.coords.items():
             c = root.create_array(f"{cname}" if n == 0 else f"{cname}_{name}", shape=(nb,), dtype="float64",
                                   dimension_names=(dim,), chunks=(nb,))
             c[:] = np.asarray(values, dtype="float64")
+            unit = spec.attrs.get(f"{cname}_units")
+            if isinstance(unit, str):
+                c.attrs.update({"units": unit})
     v = root.create_array("valid", shape=(grid.rows, grid.cols), dtype="uint8", fill_value=0,
                           dimension_names=("y", "x"), **_encoding(layout, None))
     v.attrs.update({"grid_mapping": "spatial_ref", "coordinates": "spatial_ref", "flag_values": [0, 1], "flag_meanings": "nodata valid"})
@@ -115,7 +126,64 @@ def create_store(path: Path, grid: Grid, outputs: Mapping[str, OutputSpec], layo
                                      "layout": {"shard": layout.shard, "chunk": layout.chunk,
                                                 "sharding": layout.sharding, "zstd_level": layout.zstd_level},
                                      **(dict(attrs) if attrs else {})}})
+    consolidate(path)
     return TileStore(path)
+
+
+def consolidate(path: Path) -> None:
+    """Write the group's consolidated metadata, so that ``xarray.open_zarr`` opens it in one read, quietly.
+
+    zarr-python warns that consolidated metadata is not (yet) part of the Zarr v3 specification; the
+    store stays readable without it (every array keeps its own ``zarr.json``), so that warning is
+    dropped here, and only here.
+    """
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part",
+                                category=UserWarning)
+        zarr.consolidate_metadata(str(path), zarr_format=3)
+
+
+def open_dataset(path: Path) -> "xarray.Dataset":  # noqa: F821
+    """A store as a lazy :class:`xarray.Dataset`: nodata masked to NaN, scaled integers as float32.
+
+    ``xarray.open_zarr`` alone decodes the CF ``scale_factor`` of an int16 output to float64 (the
+    attribute comes back from JSON as a Python float, and CF asks for the type of the scale); here
+    every packed output is cast to float32, the dtype the engine's own decoding gives, and keeps its
+    attributes and encoding (``_FillValue``, so ``rio.encoded_nodata`` names the stored nodata).
+    """
+    import xarray as xr
+
+    path = Path(path)
+    if not (path / "zarr.json").is_file():
+        raise StoreError(f"no store at {path} (zarr.json missing)")
+    ds = xr.open_zarr(str(path), consolidated=True)
+    for name, var in ds.data_vars.items():
+        if "scale_factor" in var.encoding and var.dtype != np.float32:
+            enc = dict(var.encoding)
+            cast = var.astype(np.float32)
+            cast.encoding = enc
+            ds[name] = cast
+    return ds
+
+
+def _fill_value_attr(nodata, dtype: str):
+    """The CF ``_FillValue`` attribute as xarray's Zarr backend reads it (so it masks and rioxarray finds nodata).
+
+    Integers are stored as they are; floating-point values as the base64 of their little-endian
+    float64 bytes, xarray's convention for Zarr attributes (it keeps NaN out of JSON). None when
+    there is no nodata.
+    """
+    if nodata is None:
+        return None
+    dt = np.dtype(dtype)
+    if dt.kind in "iu":
+        return int(nodata)
+    if dt.kind == "b":
+        return bool(nodata)
+    value = float(nodata)
+    if dt.kind == "f" or math.isnan(value):
+        return base64.standard_b64encode(struct.pack("<d", value)).decode()
+    return value
 
 
 def open_store(path: Path) -> "TileStore":

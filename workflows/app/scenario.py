@@ -436,6 +436,11 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         path = root / "lines" / f"{name}.tif"
         _write_line(path, true_cube, mask, r0, r1, c0, c1, gains[k], offsets[k], sigma, wl, fwhm,
                     transform @ Affine.translation(c0, r0), r_noise[k], name)
+        import datetime as _dt
+        import rasterio
+        flown = _dt.datetime(2025, 6, 14, 17, 40, tzinfo=_dt.timezone.utc) + _dt.timedelta(minutes=12 * k)
+        with rasterio.open(path, "r+") as ds:  # invented flight times: one line every 12 minutes
+            ds.update_tags(acquisition_time=flown.strftime("%Y-%m-%dT%H:%M:%SZ"))
         line_paths.append(path)
         line_facts.append({"name": name, "file": f"lines/{name}.tif", "window": [r0, c0, r1 - r0, c1 - c0],
                            "valid_pixels": int(mask.sum()), **{k2: v for k2, v in sw.items()},

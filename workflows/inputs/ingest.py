@@ -25,6 +25,8 @@ Choices (written down here because the engine relies on them):
 from __future__ import annotations
 
 import csv
+import dataclasses
+import datetime as _dt
 import hashlib
 import math
 import os
@@ -41,6 +43,11 @@ from swathmill.tiles.step import StepError
 __all__ = [
     "IngestError",
     "LineInfo",
+    "acquisition_time",
+    "parse_time",
+    "iso_utc",
+    "ACQUISITION_TAGS",
+    "ACQUISITION_END_TAGS",
     "LineParams",
     "to_nanometres",
     "read_wavelength_table",
@@ -318,6 +325,8 @@ class LineInfo:
     valid_pixels: int = 0
     fingerprint: str = ""
     scale_source: str = ""
+    acquired: tuple[str, str] | None = None
+    acquired_source: str = ""
 
     @property
     def res(self) -> tuple[float, float]:
@@ -488,7 +497,74 @@ def inspect_line(
             wavelength=wl, fwhm=fw, wavelength_source=src, footprint=fp, valid_pixels=nvalid,
             fingerprint=fingerprint_file(f) if (f := _file_of(p)) is not None else "", scale_source=scale_src,
         )
+        acq = acquisition_time(ds.tags(), label)
+        if acq is not None:
+            info = dataclasses.replace(info, acquired=acq[0], acquired_source=acq[1])
     return info
+
+
+#: Dataset tags read as a line's acquisition time (case-insensitive, with or without a GDAL domain
+#: prefix such as ``NC_GLOBAL#``): a single time, or the ACDD start and end of the time coverage.
+#: TIFF's own ``TIFFTAG_DATETIME`` is the file's creation time (TIFF 6.0, tag 306), not the flight's,
+#: and is not read.
+ACQUISITION_TAGS: tuple[str, ...] = ("acquisition_time", "acquisition_datetime", "acquisition_start_time",
+                                     "datetime", "time_coverage_start")
+ACQUISITION_END_TAGS: tuple[str, ...] = ("acquisition_end_time", "time_coverage_end")
+
+
+def parse_time(value: Any, where: str) -> _dt.datetime:
+    """An ISO 8601 date or date-time as an aware UTC datetime (a time without a zone is UTC).
+
+    Raises
+    ------
+    IngestError naming ``where`` and the value when it is not ISO 8601.
+    """
+    if isinstance(value, _dt.datetime):
+        t = value
+    elif isinstance(value, _dt.date):
+        t = _dt.datetime(value.year, value.month, value.day)
+    else:
+        text = str(value).strip()
+        try:
+            t = _dt.datetime.fromisoformat(text[:-1] + "+00:00" if text.endswith("Z") else text)
+        except ValueError as exc:
+            raise IngestError(f"{where}: {text!r} is not an ISO 8601 date or date-time "
+                              "(expected e.g. 2024-06-14T17:42:00Z)") from exc
+    t = t if t.tzinfo else t.replace(tzinfo=_dt.timezone.utc)
+    return t.astimezone(_dt.timezone.utc)
+
+
+def iso_utc(t: _dt.datetime) -> str:
+    """``t`` as ``YYYY-MM-DDTHH:MM:SSZ`` (UTC, whole seconds unless it has a fraction)."""
+    t = t.astimezone(_dt.timezone.utc)
+    return t.strftime("%Y-%m-%dT%H:%M:%S") + (f".{t.microsecond:06d}" if t.microsecond else "") + "Z"
+
+
+def acquisition_time(tags: Mapping[str, str], label: str) -> tuple[tuple[str, str], str] | None:
+    """A line's acquisition (start, end) as ISO 8601 UTC strings from its dataset tags, and the tag used.
+
+    Looks for :data:`ACQUISITION_TAGS` (the start, or the one time) and :data:`ACQUISITION_END_TAGS`
+    (the end; default the start). None when no such tag is present.
+
+    Raises
+    ------
+    IngestError naming the line and the tag when a tag is not an ISO 8601 date-time, or the end is
+    before the start.
+    """
+    plain = {}
+    for k, v in tags.items():
+        plain.setdefault(str(k).split("#")[-1].strip().lower(), (str(k), v))
+    start = next(((plain[k][0], plain[k][1]) for k in ACQUISITION_TAGS if k in plain), None)
+    if start is None:
+        return None
+    t0 = parse_time(start[1], f"{label}: tag {start[0]!r}")
+    end = next(((plain[k][0], plain[k][1]) for k in ACQUISITION_END_TAGS if k in plain), None)
+    t1 = parse_time(end[1], f"{label}: tag {end[0]!r}") if end is not None else t0
+    if t1 < t0:
+        raise IngestError(f"{label}: acquisition end {iso_utc(t1)} (tag {end[0]!r}) is before its start "
+                          f"{iso_utc(t0)} (tag {start[0]!r})")
+    return (iso_utc(t0), iso_utc(t1)), f"tag {start[0]}"
+
 
 
 def _valid_stored(raw: np.ndarray, nodata: float | None) -> np.ndarray:
@@ -856,6 +932,8 @@ def footprints_geojson(lines: Sequence[LineInfo], grid: Grid | None = None,
             "line": ln.number, "name": ln.name, "file": Path(ln.path).name, "valid_pixels": ln.valid_pixels,
             "bands": ln.count, "wavelength_min_nm": float(ln.wavelength.min()),
             "wavelength_max_nm": float(ln.wavelength.max()), "wavelengths_from": ln.wavelength_source,
+            "acquired_start": ln.acquired[0] if ln.acquired else None,
+            "acquired_end": ln.acquired[1] if ln.acquired else None,
             "scale_factor": float(ln.scale[0]) if np.all(ln.scale == ln.scale[0]) else "per band",
             "scale_from": ln.scale_source,
         }

@@ -927,7 +927,7 @@ def _component_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] |
         dtype="float32",
         nodata=float("nan"),
         coords={"eigenvalue": tuple(float(v) for v in lam)},
-        attrs={"long_name": f"{prefix.upper()} components", "used_bands": list(model["used_bands"]),
+        attrs={"long_name": f"{prefix.upper()} components", "units": "1", "used_bands": list(model["used_bands"]),
                "excluded_bands": dict(model["excluded_bands"]), INVERSE_TRANSFORM: _transform_attrs(model),
                FORWARD_TRANSFORM: _forward_attrs(model, meta[CUBE].spec if CUBE in meta else None)},
     )}
@@ -942,8 +942,11 @@ def _denoised_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | 
         role=Role.REFLECTANCE,
         bands=tuple(spec.bands), dtype="float32", nodata=float("nan"),
         coords={k: tuple(v) for k, v in spec.coords.items()},
+        # the cube's bands, their coordinates and units (name, wavelength, FWHM, source band) unchanged
         attrs={"long_name": f"reflectance rebuilt from {params.denoise_components} "
-                            f"{params.method.upper()} components"},
+                            f"{params.method.upper()} components",
+               "units": spec.attrs.get("units", "1"),
+               **{k: v for k, v in spec.attrs.items() if k.endswith("_units")}},
     )}
 
 

@@ -17,6 +17,12 @@ Pure functions (no I/O) do the science:
 
 :class:`MosaicConfig` is the YAML section; :func:`build_mosaic_step` turns it into the engine's
 :class:`~swathmill.tiles.step.Step` (named ``mosaic``; outputs ``reflectance`` and ``source``).
+
+Bands keep their identity: bad-band windows drop bands but never renumber the rest. Each band of the
+reflectance output is named after the reference line's band number and centre, ``b073 (1350.9 nm)``,
+and carries the coordinates ``wavelength``, ``fwhm`` (nm) and ``source_band`` (that number). The outputs
+carry the acquisition span of the lines (``acquisition_start`` / ``acquisition_end``, from each line's
+own tag or the config's ``acquisition_time``), which every product made from them inherits.
 """
 from __future__ import annotations
 
@@ -47,6 +53,8 @@ from swathmill.workflows.inputs.ingest import (
     footprint_to_grid,
     footprints_geojson,
     inspect_line,
+    iso_utc,
+    parse_time,
     is_gdal_name,
     read_lines,
     segments_of,
@@ -122,6 +130,9 @@ class MosaicConfig(Section):
     on_mismatch: Literal["resample", "refuse"] = "resample"
     output_nodata: int = -9999
     output_scale: float = Field(1e-4, gt=0)
+    acquisition_time: str | dict[str, str] | None = Field(
+        None, description="ISO 8601 acquisition time (UTC unless it names a zone) for lines whose files carry "
+                          "none: one for every line, or {line name: time}; a line's own tag wins")
 
     @field_validator("bad_bands")
     @classmethod
@@ -137,6 +148,17 @@ class MosaicConfig(Section):
             raise ValueError(f"names has {len(self.names)} entries for {len(self.lines)} lines")
         if not -32768 <= self.output_nodata <= 32767:
             raise ValueError(f"output_nodata must fit int16. Got {self.output_nodata}")
+        times = self.acquisition_time
+        if isinstance(times, dict):
+            names = self.names or [_default_name(str(p)) for p in self.lines]
+            unknown = sorted(set(times) - set(names))
+            if unknown:
+                raise ValueError(f"acquisition_time names lines {unknown} that are not in the run; "
+                                 f"line names are {names}")
+            for k, v in times.items():
+                parse_time(v, f"mosaic.acquisition_time[{k!r}]")
+        elif times is not None:
+            parse_time(times, "mosaic.acquisition_time")
         return self
 
 
@@ -156,11 +178,29 @@ class MosaicPlan:
     overlaps: list[dict]
     notes: list[str] = field(default_factory=list)
     overlap_shapes: dict[str, str] = field(default_factory=dict)
+    source_bands: np.ndarray | None = None
+    acquisition: tuple[str, str] | None = None
+    acquisition_sources: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def band_numbers(self) -> np.ndarray:
+        """1-based numbers of the kept bands in the reference line (bad bands leave gaps, never renumber)."""
+        if self.source_bands is None:
+            return np.arange(1, len(self.wavelength) + 1)
+        return np.asarray(self.source_bands, dtype=np.int64)
 
     @property
     def band_names(self) -> tuple[str, ...]:
-        width = max(3, len(str(len(self.wavelength))))
-        return tuple(f"b{i + 1:0{width}d}" for i in range(len(self.wavelength)))
+        """Band names that keep each band's identity: the reference line's number and the centre wavelength.
+
+        ``b073 (1350.9 nm)`` is band 73 of the reference line, centred at 1350.9 nm, whatever bands the
+        bad-band windows dropped before it (the form the line readers parse back, see
+        :func:`swathmill.workflows.inputs.ingest.band_metadata_wavelengths`).
+        """
+        numbers = self.band_numbers
+        count = self.lines[self.reference - 1].count if self.lines else int(numbers.max())
+        width = max(3, len(str(count)))
+        return tuple(f"b{int(n):0{width}d} ({w:.1f} nm)" for n, w in zip(numbers, self.wavelength))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -292,8 +332,37 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
                 # (half a line pixel each, in grid pixels)
                 grow = 1.0 + 0.5 * (max(lines[i].res) + max(lines[j].res)) / grid.res[0]
                 shapes[f"{i + 1}-{j + 1}"] = inter.buffer(grow, join_style="mitre").wkt
+    acquisition, acq_sources = _acquisition(cfg, lines)
     return MosaicPlan(cfg, lines, grid, reference, wl, fw, line_params, spectral, segments, overlaps, notes,
-                      overlap_shapes=shapes)
+                      overlap_shapes=shapes, source_bands=np.flatnonzero(keep) + 1, acquisition=acquisition,
+                      acquisition_sources=acq_sources)
+
+
+def _acquisition(cfg: MosaicConfig, lines: list[LineInfo]) -> tuple[tuple[str, str] | None, dict[str, str]]:
+    """The acquisition range over the lines: each line's own tag, else the config's ``acquisition_time``.
+
+    Returns ((start, end) as ISO 8601 UTC, {line name: where its time came from}); (None, {...}) when
+    some line has no known time (a range over part of the campaign would mislead).
+    """
+    starts, ends, sources = [], [], {}
+    given = cfg.acquisition_time
+    for ln in lines:
+        if ln.acquired is not None:
+            t0, t1 = ln.acquired
+            sources[ln.name] = ln.acquired_source
+        else:
+            value = given.get(ln.name) if isinstance(given, dict) else given
+            if value is None:
+                sources[ln.name] = "unknown"
+                continue
+            t0 = t1 = iso_utc(parse_time(value, "mosaic.acquisition_time"))
+            sources[ln.name] = "config mosaic.acquisition_time"
+        starts.append(t0)
+        ends.append(t1)
+    if len(starts) < len(lines):
+        return None, sources
+    key = lambda v: parse_time(v, "acquisition")  # noqa: E731
+    return (min(starts, key=key), max(ends, key=key)), sources
 
 
 def _scale_ratio(ln: LineInfo, grid: Grid, same_crs: bool) -> tuple[float, float]:
@@ -320,19 +389,23 @@ def mosaic_outputs(plan: MosaicPlan) -> dict[str, OutputSpec]:
     """Output descriptions: int16 reflectance (scale 1e-4) with wavelengths, and the source layer."""
     cfg = plan.config
     n = len(plan.lines)
+    acq = ({"acquisition_start": plan.acquisition[0], "acquisition_end": plan.acquisition[1]}
+           if plan.acquisition else {})
     refl = OutputSpec(
         role=Role.REFLECTANCE,
         bands=plan.band_names, dtype="int16", nodata=cfg.output_nodata,
         coords={"wavelength": tuple(float(v) for v in plan.wavelength),
-                "fwhm": tuple(float(v) for v in plan.fwhm)},
+                "fwhm": tuple(float(v) for v in plan.fwhm),
+                "source_band": tuple(float(n) for n in plan.band_numbers)},
         attrs={"scale_factor": cfg.output_scale, "add_offset": 0.0, "units": "1",
-               "long_name": "surface reflectance", "wavelength_units": "nm"},
+               "long_name": "surface reflectance", "wavelength_units": "nm", "fwhm_units": "nm",
+               "source_band_units": "1", **acq},
     )
     source = OutputSpec(
         role=Role.SOURCE,
         bands=("source",), dtype="uint8" if n <= 255 else "uint16", nodata=0, kind="categorical",
         class_names=tuple(ln.name for ln in plan.lines),
-        attrs={"long_name": "flight line each pixel came from (0 = none)", "policy": cfg.overlap},
+        attrs={"long_name": "flight line each pixel came from (0 = none)", "policy": cfg.overlap, **acq},
     )
     return {"reflectance": refl, "source": source}
 

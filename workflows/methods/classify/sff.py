@@ -194,11 +194,13 @@ def _sff_outputs(meta: Mapping[str, InputMeta], model: dict | None, params: Clas
     rng = f"{lo:g}-{hi:g} nm"
     return {"classes": class_spec(params),
             "scale": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.SCORE,
-                                attrs={"quantity": "feature depth scale", "range": rng}),
+                                attrs={"quantity": "feature depth scale", "range": rng, "units": "1"}),
             "rmse": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
-                               attrs={"quantity": "feature fit RMSE (depth units)", "range": rng}),
+                               attrs={"quantity": "feature fit RMSE (continuum-removed reflectance)", "range": rng,
+                                      "units": "1"}),
             "score": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.SCORE,
-                                attrs={"quantity": "scale / max(RMSE, rmse_floor)", "range": rng})}
+                                attrs={"quantity": "scale / max(RMSE, rmse_floor)", "range": rng,
+                                       "units": "1"})}
 
 
 def sff_step(name: str, input_ref: str, *, wl_range: tuple[float, float] | None = None,

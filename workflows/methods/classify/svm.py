@@ -430,7 +430,7 @@ def _svm_outputs(meta: Mapping[str, InputMeta], model: dict | None, params: Clas
     out = {"classes": class_spec(params)}
     if params.settings.probability:
         out["probability"] = OutputSpec(bands=band_names(params.class_names), dtype="float32", role=Role.SCORE,
-                                        nodata=float("nan"), attrs={"quantity": "class probability (Platt)"})
+                                        nodata=float("nan"), attrs={"quantity": "class probability (Platt)", "units": "1"})
     return out
 
 

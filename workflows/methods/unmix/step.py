@@ -322,14 +322,16 @@ def _unmix_outputs(meta: Mapping[str, InputMeta], model: Mapping[str, Any] | Non
     method = params.settings.method
     attrs = {"method": method, "endmember_source": model["source"],
              "condition_number": float(model["condition_number"])}
+    # the residual is in the unit of the unmixed cube (reflectance: 1)
+    in_units = meta[X].spec.attrs.get("units") if X in meta else None
     out = {"abundance": OutputSpec(bands=names, dtype="float32", nodata=float("nan"), role=Role.ABUNDANCE,
-                                   attrs={**attrs, "quantity": "abundance (fraction of the pixel)"}),
+                                   attrs={**attrs, "quantity": "abundance (fraction of the pixel)", "units": "1"}),
            "rmse": OutputSpec(bands=("rmse",), dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
                               attrs={**attrs, "quantity": "root mean square residual over the bands",
-                                     "units": "units of the input"})}
+                                     "units": in_units if isinstance(in_units, str) else "1"})}
     if method == "unconstrained":
         out["sum"] = OutputSpec(bands=("sum",), dtype="float32", nodata=float("nan"), role=Role.DIAGNOSTIC,
-                                attrs={**attrs, "quantity": "sum of the abundances"})
+                                attrs={**attrs, "quantity": "sum of the abundances", "units": "1"})
     return out
 
 
