@@ -33,7 +33,7 @@ from swathmill.tiles.palette import (CLASS_NODATA, MAX_CLASSES, UNCLASSIFIED, UN
 
 from .shared import ClassifyError
 
-__all__ = ["LEGEND_FILE", "LegendEntry", "Legend", "build_legend", "read_legend"]
+__all__ = ["LEGEND_FILE", "LegendEntry", "Legend", "build_legend", "step_legend", "read_legend"]
 
 LEGEND_FILE = "legend.csv"
 _COLUMNS = ("code", "name", "color", "source")
@@ -160,6 +160,15 @@ def build_legend(sources: Sequence[tuple[str, Sequence[str], Sequence[tuple[int,
         else:
             entries.append(LegendEntry(i, n, next(fill), "default palette"))
     return Legend(tuple(entries))
+
+
+def step_legend(legend: Legend | None, step: str, class_names: Sequence[str],
+                colors: Sequence[Sequence[int]] | None = None, source: str = "references") -> Legend:
+    """``legend`` when given, else a legend of one step's own classes (and colours)."""
+    if legend is not None:
+        return legend
+    return build_legend([(f"step {step!r} {source}", list(class_names),
+                          None if colors is None else [tuple(int(v) for v in c) for c in colors])])
 
 
 def read_legend(path: str | Path) -> Legend:

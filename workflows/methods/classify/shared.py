@@ -20,7 +20,7 @@ from __future__ import annotations
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterator, Mapping, Sequence
+from typing import Any, Iterator, Mapping, Sequence
 
 import numpy as np
 from pydantic import BaseModel, ValidationError
@@ -33,9 +33,6 @@ from swathmill.workflows.inputs.library import hex_to_rgb
 from swathmill.workflows.inputs.reference import SPLIT_CODES, GroundReferenceConfig, SampleTable, load_samples
 from swathmill.workflows.params import Section, ctx_get
 from swathmill.workflows.roles import Role
-
-if TYPE_CHECKING:
-    from .legend import Legend
 
 __all__ = [
     "ClassifyError",
@@ -97,19 +94,13 @@ class ClassifierParams:
     names: tuple[str, ...]
     class_names: tuple[str, ...]
     ref_class: tuple[int, ...]
-    legend: "Legend"
+    legend: Any
     class_codes: tuple[int, ...]
 
     @classmethod
     def make(cls, step: str, settings: Section, names: Sequence[str], class_names: Sequence[str],
-             ref_class: Sequence[int], legend: "Legend | None" = None,
-             colors: Sequence[Sequence[int]] | None = None, source: str = "references") -> "ClassifierParams":
-        """The parameter object; without ``legend``, one made from ``class_names`` (and ``colors``)."""
-        from .legend import build_legend
-
-        if legend is None:
-            legend = build_legend([(f"step {step!r} {source}", list(class_names),
-                                    None if colors is None else [tuple(c) for c in colors])])
+             ref_class: Sequence[int], legend: Any) -> "ClassifierParams":
+        """The parameter object, the class codes looked up in ``legend`` (a :class:`.legend.Legend`)."""
         return cls(step=step, settings=settings, names=tuple(names), class_names=tuple(class_names),
                    ref_class=tuple(int(c) for c in ref_class), legend=legend,
                    class_codes=legend.codes(class_names, f"step {step!r}"))

@@ -26,7 +26,7 @@ from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTa
 from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 
-from .legend import Legend
+from .legend import Legend, step_legend
 from .models import dump_estimators, load_svm
 from .shared import (ClassifierParams, ClassifyError, accumulate_samples, band_names, blank, class_spec,
                      field_default, gathered_samples, make_settings, pixel_chunks, to_legend_codes, training_mask)
@@ -296,8 +296,8 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     if colors is not None and len(colors) != len(samples.class_names):
         raise ClassifyError(f"step {name!r}: {len(colors)} colours for {len(samples.class_names)} classes")
     names = tuple(samples.class_names)
-    params = ClassifierParams.make(name, cfg, names, names, range(1, len(names) + 1), legend, colors=colors,
-                                   source="ground reference")
+    legend = step_legend(legend, name, names, colors, "ground reference")
+    params = ClassifierParams.make(name, cfg, names, names, range(1, len(names) + 1), legend)
     fit = Fit(accumulate=accumulate_samples, merge=merge_gathered,
               select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_svm, table=samples))
