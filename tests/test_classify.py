@@ -14,6 +14,7 @@ from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
 
+from swathmill.tiles.palette import default_class_colors
 from swathmill.tiles.step import OutputSpec
 from swathmill.tiles.testing import default_grid, run_on_arrays
 from swathmill.workflows.methods.classify import (
@@ -36,7 +37,7 @@ from swathmill.workflows.methods.classify import (
     predict_svm,
     sam_step,
     sff_fit,
-    sff_score,
+    sff_r2,
     sff_step,
     spectral_angle,
     svm_step,
@@ -165,7 +166,29 @@ def test_scale_and_rmse_against_lstsq(rng: np.random.Generator) -> None:
             coef, res, *_ = np.linalg.lstsq(d_r[j][:, None], d_o[i], rcond=None)
             assert scale[i, j] == pytest.approx(coef[0], rel=1e-12)
             assert rmse[i, j] == pytest.approx(np.sqrt(res[0] / 25), rel=1e-10)
-    np.testing.assert_allclose(sff_score(scale, rmse, 1e-4), scale / np.maximum(rmse, 1e-4))
+    # the fit figure: R2 of the continuum-removed fit against scikit-learn's r2_score (the textbook
+    # 1 - SS_res / SS_tot with SS_tot about the mean) and the formula written out with numpy
+    from sklearn.metrics import r2_score
+
+    r2 = sff_r2(d_o, rmse)
+    for i in range(40):
+        for j in range(3):
+            fitted = scale[i, j] * d_r[j]
+            by_hand = 1.0 - np.sum((d_o[i] - fitted) ** 2) / np.sum((d_o[i] - d_o[i].mean()) ** 2)
+            assert r2[i, j] == pytest.approx(by_hand, rel=1e-10, abs=1e-12)
+            assert r2[i, j] == pytest.approx(r2_score(d_o[i], fitted), rel=1e-10, abs=1e-12)
+
+
+def test_r2_of_a_perfect_and_a_flat_fit() -> None:
+    # a pixel that is the reference scaled has R2 = 1 (SS_res = 0); a pixel without depth variation
+    # has no R2 (SS_tot = 0, the formula is undefined): NaN, never eligible (common practice)
+    d_r = np.array([[0.0, 0.1, 0.3, 0.1, 0.0]])
+    d_o = np.vstack([0.5 * d_r[0], np.full(5, 0.2)])
+    scale, rmse = sff_fit(d_o, d_r)
+    r2 = sff_r2(d_o, rmse)
+    assert r2[0, 0] == pytest.approx(1.0, abs=1e-12)
+    assert np.isnan(r2[1, 0])
+    assert assign_best_fit(r2, scale, rmse, np.array([1])).tolist() == [1, 0]
 
 
 def test_half_depth_reference_gives_scale_two() -> None:
@@ -200,12 +223,13 @@ def test_feature_scaled_by_0p4_is_recovered(rng: np.random.Generator) -> None:
 def test_assign_best_fit_thresholds() -> None:
     scale = np.array([[0.8, 0.3], [-0.2, 0.5], [0.9, 1.1]])
     rmse = np.array([[0.01, 0.001], [0.01, 0.05], [0.02, 0.01]])
-    score = sff_score(scale, rmse)
+    r2 = np.array([[0.90, 0.95], [0.99, 0.40], [0.70, 0.80]])
     rc = np.array([1, 2])
-    assert assign_best_fit(score, scale, rmse, rc).tolist() == [2, 2, 2]
-    assert assign_best_fit(score, scale, rmse, rc, max_rmse=0.03).tolist() == [2, 0, 2]
-    assert assign_best_fit(score, scale, rmse, rc, min_scale=0.5).tolist() == [1, 0, 2]
-    assert assign_best_fit(score, scale, rmse, rc, min_score=200).tolist() == [2, 0, 0]
+    # the eligible reference (scale above min_scale, RMSE and R2 within their limits) of highest R2
+    assert assign_best_fit(r2, scale, rmse, rc).tolist() == [2, 2, 2]
+    assert assign_best_fit(r2, scale, rmse, rc, max_rmse=0.03).tolist() == [2, 0, 2]
+    assert assign_best_fit(r2, scale, rmse, rc, min_scale=0.5).tolist() == [1, 0, 2]
+    assert assign_best_fit(r2, scale, rmse, rc, min_r2=0.9).tolist() == [2, 0, 0]
 
 
 # --------------------------------------------------------------------------------------------------
@@ -288,7 +312,7 @@ def test_pure_patches_each_method_and_tiled_equals_untiled(tmp_path: Path) -> No
             np.testing.assert_array_equal(tiled[k], whole[k], err_msg=k)
         else:
             np.testing.assert_allclose(tiled[k], whole[k], rtol=1e-6, err_msg=k)
-    # class map metadata: names and the library's colours; image references use the palette
+    # class map metadata: names and the library's colours; image references use the default palette
     models = {p.name.split("-")[0]: p for p in (tmp_path / "tiled" / "models").glob("*.json")}
     assert set(models) == {"sam", "sff", "sam_img", "sff_img", "svm"}
     from swathmill.tiles.store import open_store
@@ -297,7 +321,7 @@ def test_pure_patches_each_method_and_tiled_equals_untiled(tmp_path: Path) -> No
     assert st.specs["classes"].colors == ((204, 102, 119), (51, 34, 136), (221, 204, 119), (17, 119, 51))
     assert st.specs["angle"].bands == tuple(NAMES)
     st2 = open_store(tmp_path / "tiled" / "stores" / "sam_img.zarr")
-    assert st2.specs["classes"].colors == class_palette(4)
+    assert st2.specs["classes"].colors == default_class_colors(4)
     # probabilities sum to one
     p = tiled["svm/probability"]
     np.testing.assert_allclose(p.sum(axis=0), 1.0, rtol=1e-5)

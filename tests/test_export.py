@@ -181,7 +181,8 @@ def test_categorical_cog_colours_names_and_mode_overviews(tmp_path, classes):
         assert cmap[0] == (0, 0, 0, 0)
         for i, rgb in enumerate(CLASS_SPEC.colors, start=1):
             assert cmap[i] == (*rgb, 255)
-        names = {"0": "unclassified", "1": "dry grass", "2": "bare rock", "3": "open water", "4": "shrub",
+        # 0 is this map's nodata (not "unclassified": a pixel outside the data is not a class outcome)
+        names = {"0": "nodata", "1": "dry grass", "2": "bare rock", "3": "open water", "4": "shrub",
                  "5": "road"}
         assert json.loads(src.tags(1)["class_names"]) == names
         assert json.loads(src.tags()["class_names"]) == names

@@ -12,6 +12,12 @@ is renamed into place atomically, so a half-written product never appears under 
 Before the rename the COG is read back and checked: overviews present and not empty, class values
 in overviews all present in the data (categorical), overview values inside the data range
 (continuous), free-form tags present. Its STAC description is in :mod:`swathmill.tiles.stac`.
+
+Class maps (``kind="categorical"``) carry a colour table and, beside the file, GDAL's auxiliary
+metadata ``<product>.tif.aux.xml`` (the open PAM convention GDAL reads for any raster) with the
+category names and a thematic raster attribute table (value, class name, red, green, blue, alpha),
+so a GIS shows the class names in its legend. Value 0 is "unclassified" (a valid pixel that matched
+no class, drawn in grey) unless 0 is the output's nodata; the nodata value is transparent.
 """
 from __future__ import annotations
 
@@ -21,12 +27,13 @@ import os
 import re
 import uuid
 from pathlib import Path
+from xml.sax.saxutils import escape
 from typing import Any, Callable, Iterable, Mapping
 
 import numpy as np
 
 from .grid import Grid, Window
-from .palette import default_class_colors
+from .palette import UNCLASSIFIED_RGB, default_class_colors
 from .step import OutputSpec, canonical_json
 from ..errors import SwathmillError
 
@@ -36,9 +43,13 @@ __all__ = [
     "overview_factors",
     "default_class_colors",
     "provenance_tags",
+    "aux_path",
+    "class_entries",
+    "category_aux_xml",
 ]
 
-_UNCLASSIFIED_RGBA = (0, 0, 0, 0)
+_NODATA_RGBA = (0, 0, 0, 0)
+_UNCLASSIFIED_RGBA = (*UNCLASSIFIED_RGB, 255)
 _CLASS_TAG = "class_names"
 _TMP_RE = r"^\.{name}\.[0-9]+-[0-9a-f]{{12}}\.part\.(tif|cog)$"
 
@@ -210,12 +221,69 @@ def write_cog(
             tmp_tif.unlink()
             _check_product(name, tmp_cog, spec, grid, factors, stats, tags, colormap)
         _fsync(tmp_cog)
+        aux = aux_path(path)
+        if categorical:
+            tmp_aux = path.parent / f".{name}.{token}.part.aux"
+            tmp_aux.write_text(category_aux_xml(spec, colormap), encoding="utf-8")
+            os.replace(tmp_aux, aux)
+        else:
+            aux.unlink(missing_ok=True)  # a class map's metadata must not outlive it under a new product
         os.replace(tmp_cog, path)
         _fsync(path.parent)
     finally:
-        for p in (tmp_tif, tmp_cog):
+        for p in (tmp_tif, tmp_cog, path.parent / f".{name}.{token}.part.aux"):
             p.unlink(missing_ok=True)
     return path
+
+
+def aux_path(path: Path) -> Path:
+    """GDAL's auxiliary metadata file beside a product: ``<name>.aux.xml``."""
+    path = Path(path)
+    return path.with_name(path.name + ".aux.xml")
+
+
+def class_entries(spec: OutputSpec) -> list[tuple[int, str, tuple[int, int, int, int]]]:
+    """(value, name, RGBA) of every value a class map can hold: 0, the classes 1..n and nodata.
+
+    Value 0 is "unclassified" (grey) unless it is the nodata value; nodata is transparent.
+    """
+    nodata = _nodata_int(spec)
+    n = len(spec.class_names or ())
+    colors = spec.colors if spec.colors is not None else default_class_colors(n)
+    out: list[tuple[int, str, tuple[int, int, int, int]]] = []
+    if nodata != 0:
+        out.append((0, "unclassified", _UNCLASSIFIED_RGBA))
+    for i, (cname, c) in enumerate(zip(spec.class_names or (), colors), start=1):
+        out.append((i, str(cname), (int(c[0]), int(c[1]), int(c[2]), 255)))
+    if nodata is not None:
+        out.append((nodata, "nodata", _NODATA_RGBA))
+    return sorted(out)
+
+
+def category_aux_xml(spec: OutputSpec, colormap: Mapping[int, tuple[int, int, int, int]] | None = None) -> str:
+    """The ``.aux.xml`` text of a class map: band 1's category names (one per value 0..max, blank
+    between named values) and a thematic raster attribute table (GDAL field types: 0 integer, 2
+    string; usages: 5 min-max (the value), 2 name, 6-9 red, green, blue, alpha)."""
+    entries = class_entries(spec)
+    names = {v: n for v, n, _ in entries}
+    top = max(names)
+    cats = "".join(f"      <Category>{escape(names.get(v, ''))}</Category>\n" for v in range(top + 1))
+    fields = [("Value", 0, 5), ("Class", 2, 2), ("Red", 0, 6), ("Green", 0, 7), ("Blue", 0, 8), ("Alpha", 0, 9)]
+    defs = "".join(f'      <FieldDefn index="{i}">\n        <Name>{n}</Name>\n        <Type>{t}</Type>\n'
+                   f"        <Usage>{u}</Usage>\n      </FieldDefn>\n" for i, (n, t, u) in enumerate(fields))
+    rows = "".join(f'      <Row index="{i}">\n        <F>{v}</F>\n        <F>{escape(n)}</F>\n'
+                   + "".join(f"        <F>{int(x)}</F>\n" for x in rgba) + "      </Row>\n"
+                   for i, (v, n, rgba) in enumerate(entries))
+    return ("<PAMDataset>\n  <PAMRasterBand band=\"1\">\n    <CategoryNames>\n" + cats
+            + "    </CategoryNames>\n    <GDALRasterAttributeTable tableType=\"thematic\">\n" + defs + rows
+            + "    </GDALRasterAttributeTable>\n  </PAMRasterBand>\n</PAMDataset>\n")
+
+
+def _nodata_int(spec: OutputSpec) -> int | None:
+    nd = spec.nodata
+    if nd is None or isinstance(nd, str) or (isinstance(nd, float) and math.isnan(nd)):
+        return None
+    return int(nd)
 
 
 def _windows(grid: Grid, block: int) -> Iterable[Window]:
@@ -352,10 +420,7 @@ def _check_nodata(name: str, spec: OutputSpec, dtype: np.dtype) -> float | int |
 
 
 def _class_table(spec: OutputSpec) -> dict[str, str]:
-    names = {"0": "unclassified"}
-    for i, n in enumerate(spec.class_names or (), start=1):
-        names[str(i)] = n
-    return names
+    return {str(v): n for v, n, _ in class_entries(spec)}
 
 
 def _colormap(name: str, spec: OutputSpec, dtype: np.dtype) -> dict[int, tuple[int, int, int, int]]:
@@ -369,12 +434,13 @@ def _colormap(name: str, spec: OutputSpec, dtype: np.dtype) -> dict[int, tuple[i
         colors = default_class_colors(n)
     elif len(colors) != n:
         raise ExportError(f"product {name}: {len(colors)} colours for {n} classes; give one RGB triplet per class")
-    cmap: dict[int, tuple[int, int, int, int]] = {0: _UNCLASSIFIED_RGBA}
     for i, c in enumerate(colors, start=1):
         if len(c) != 3 or not all(isinstance(x, (int, np.integer)) and 0 <= x <= 255 for x in c):
             raise ExportError(f"product {name}: colour of class {i} must be 3 integers 0-255. Got {c!r}")
-        cmap[i] = (int(c[0]), int(c[1]), int(c[2]), 255)
-    return cmap
+    nodata = _nodata_int(spec)
+    if nodata is not None and 1 <= nodata <= n:
+        raise ExportError(f"product {name}: nodata {nodata} is also the code of class {spec.class_names[nodata - 1]!r}")
+    return {v: rgba for v, _, rgba in class_entries(spec)}
 
 
 def _per_band(name: str, key: str, v: Any, nb: int, kind: type) -> tuple | None:

@@ -53,7 +53,7 @@ class FilterParams:
 @dataclass(frozen=True)
 class ModalFilterParams(FilterParams):
     """Parameters of the k x k modal filter: ``size`` as for :class:`FilterParams`, and ``n_classes``,
-    the largest class value of the map (0 is nodata and never votes)."""
+    the largest class value of the map (the input's nodata never votes)."""
 
     n_classes: int | None = None
 
@@ -120,17 +120,20 @@ def _mean_kernel(block: Block, model) -> dict:
 
 
 def modal_filter(classes: np.ndarray, size: int, n_classes: int, ignore: int = 0) -> np.ndarray:
-    """k x k majority filter of an integer class map; ``ignore`` never votes.
+    """k x k majority filter of an integer class map with values 0..n_classes; ``ignore`` (nodata, which
+    may lie outside 0..n_classes) never votes and stays as it is.
 
     Ties go to the pixel's own class when it is among the tied, else to the smallest class value.
     """
+    values = np.array([c for c in range(n_classes + 1) if c != ignore], dtype=np.int64)
     counts = np.stack([ndimage.uniform_filter((classes == c).astype(np.float32), size, mode="constant")
-                       for c in range(n_classes + 1)])
+                       for c in values])
     counts = np.rint(counts * size * size).astype(np.int32)
-    counts[ignore] = -1
     best = counts.max(axis=0)
-    own = np.take_along_axis(counts, np.clip(classes, 0, n_classes)[None].astype(np.intp), 0)[0]
-    out = np.argmax(counts, axis=0).astype(classes.dtype)
+    pos = np.searchsorted(values, np.clip(classes, 0, n_classes))
+    pos = np.clip(pos, 0, values.size - 1)
+    own = np.take_along_axis(counts, pos[None].astype(np.intp), 0)[0]
+    out = values[np.argmax(counts, axis=0)].astype(classes.dtype)
     keep = (own == best) & (classes != ignore)
     out[keep] = classes[keep]
     out[classes == ignore] = ignore
@@ -139,9 +142,11 @@ def modal_filter(classes: np.ndarray, size: int, n_classes: int, ignore: int = 0
 
 def _modal_kernel(block: Block, model) -> dict:
     x = block.data["input"]
-    c = np.where(np.isfinite(x[0]) & block.valid, x[0], 0).astype(np.int32) if x.dtype.kind == "f" \
-        else np.where(block.valid, x[0], 0).astype(np.int32)
-    return {"output": modal_filter(c, block.params.size, block.params.n_classes)[None]}
+    nd = block.meta["input"].spec.nodata
+    ignore = 0 if nd is None or isinstance(nd, str) or (isinstance(nd, float) and nd != nd) else int(nd)
+    ok = block.valid & (np.isfinite(x[0]) if x.dtype.kind == "f" else True)
+    c = np.where(ok, np.nan_to_num(x[0]) if x.dtype.kind == "f" else x[0], ignore).astype(np.int32)
+    return {"output": modal_filter(c, block.params.size, block.params.n_classes, ignore)[None]}
 
 
 def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, OutputSpec]:
@@ -149,8 +154,8 @@ def _modal_outputs(meta: dict[str, InputMeta], model, params) -> dict[str, Outpu
     if spec.kind != "categorical":
         raise StepError(f"modal filter needs a class map; input {meta['input'].ref!r} is {spec.kind}")
     return {"output": OutputSpec(bands=spec.bands[:1], dtype=spec.dtype, nodata=spec.nodata, kind="categorical",
-                                 role=spec.role,
-                                 class_names=spec.class_names, colors=spec.colors)}
+                                 role=spec.role, class_names=spec.class_names, colors=spec.colors,
+                                 attrs=dict(spec.attrs))}
 
 
 def mean_filter_step(name: str, input_ref: str, size: int = 3) -> Step:

@@ -20,9 +20,8 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from .cog import ExportError, _band_attrs
+from .cog import ExportError, _band_attrs, class_entries
 from .grid import Grid
-from .palette import default_class_colors
 from .step import OutputSpec
 
 __all__ = [
@@ -267,12 +266,14 @@ def stac_item(
     RasterExtension.ext(asset, add_if_missing=True).bands = rbands
 
     if spec.kind == "categorical":
-        colors = spec.colors or default_class_colors(len(spec.class_names or ()))
-        classes = [Classification.create(value=0, name="unclassified", title="unclassified",
-                                         description="not classified", nodata=nodata == 0 or None)]
-        for i, (cname, rgb) in enumerate(zip(spec.class_names or (), colors), start=1):
-            classes.append(Classification.create(value=i, name=_slug(cname), title=cname, description=cname,
-                                                 color_hint="%02X%02X%02X" % tuple(rgb)))
+        classes = []
+        for value, cname, rgba in class_entries(spec):  # the same codes, names and colours as the COG
+            is_nodata = cname == "nodata" and rgba[3] == 0
+            desc = ("outside the mosaic (no data)" if is_nodata else
+                    "valid pixel that matched no class" if value == 0 else cname)
+            classes.append(Classification.create(
+                value=value, name=_slug(cname), title=cname, description=desc, nodata=True if is_nodata else None,
+                color_hint=None if is_nodata else "%02X%02X%02X" % tuple(rgba[:3])))
         ClassificationExtension.ext(asset, add_if_missing=True).classes = classes
 
     out = item_path(cog_path)

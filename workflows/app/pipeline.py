@@ -30,6 +30,7 @@ from swathmill.workflows.methods.bandselect import build_steps as band_selection
 from swathmill.workflows.methods.calibration import CalibrationConfig, CalibrationSamples
 from swathmill.workflows.methods.calibration import build_steps as calibration_steps
 from swathmill.workflows.methods.classify import SamConfig, SffConfig, SvmConfig
+from swathmill.workflows.methods.classify import LEGEND_FILE, Legend, load_section_references, run_legend
 from swathmill.workflows.methods.classify import build_steps as classify_steps
 from swathmill.workflows.app.config import EngineConfig, ExecutionConfig, config_hash, load_yaml, resolve, validate
 from swathmill.workflows.app.runview import StoreValid
@@ -156,6 +157,7 @@ class Plan:
     grid: Grid
     tile: int
     calibrations: list[str] = field(default_factory=list)
+    legend: Legend | None = None  # the run's one legend of class codes, names and colours (with classifiers)
 
     def rows(self) -> list[dict]:
         """One JSON-able row per step: name, inputs, outputs (None until fitted), fit, tiles."""
@@ -184,19 +186,21 @@ def build_plan(cfg: RunConfig, base: Path) -> Plan:
     """Every step of the run, built from the mosaic plan's grid before anything runs."""
     mosaic = build_mosaic(cfg, base)
     later = build_later_steps(cfg, base, mosaic.grid)
-    return Plan([mosaic, *later.steps], mosaic.grid, cfg.engine.tile, later.calibrations)
+    return Plan([mosaic, *later.steps], mosaic.grid, cfg.engine.tile, later.calibrations, legend=later.legend)
 
 
-def _class_names(step: Step) -> list[str]:
-    p = step.params
-    return list(getattr(p, "class_names", None) or p["class_names"])
+def _classify_steps(cl: ClassifyConfig, ctx: dict, reference: GroundReferenceConfig | None = None) -> list[Step]:
+    """The classifiers, then a modal filter of each class map the configuration names (default: all).
 
-
-def _classify_steps(cl: ClassifyConfig, ctx: dict) -> list[Step]:
-    """The classifiers, then a modal filter of each class map the configuration names (default: all)."""
+    The run's one legend is built first from every section's library or ground reference and the
+    run's validation reference (``ctx["legend"]``), so every class map shares its codes and colours.
+    """
+    sections = [*cl.sam, *cl.sff, *cl.svm]
+    loaded = [(section, load_section_references(section, ctx)) for section in sections]
+    ctx["legend"] = run_legend(loaded, _reference_classes(reference, ctx))
     made: list[Step] = []
-    for section in [*cl.sam, *cl.sff, *cl.svm]:
-        made += classify_steps(section, ctx)
+    for section, refs in loaded:
+        made += classify_steps(section, ctx, refs)
     steps = list(made)
     if cl.modal_filter is not None:
         wanted = cl.modal_filter.steps
@@ -208,8 +212,20 @@ def _classify_steps(cl: ClassifyConfig, ctx: dict) -> list[Step]:
         for s in made:
             if wanted is None or s.name in wanted:
                 steps.append(modal_filter_step(f"{s.name}_modal", f"{s.name}/classes", cl.modal_filter.size,
-                                               n_classes=len(_class_names(s))))
+                                               n_classes=len(ctx["legend"].names)))
     return steps
+
+
+def _reference_classes(reference: GroundReferenceConfig | None, ctx: dict) -> list[str]:
+    """Class names of the run's validation reference (for the legend); none without one."""
+    if reference is None:
+        return []
+    if reference.classes:
+        return list(reference.classes)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # its issues are reported by the accuracy assessment
+        table, _issues = load_samples(reference, ctx["grid"], base_dir=ctx.get("base_dir"), valid=ctx.get("valid"))
+    return list(table.class_names)
 
 
 def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Plan:
@@ -226,7 +242,7 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
     if cfg.endmembers is not None:
         steps += endmember_steps(cfg.endmembers, ctx)
     if cfg.classify is not None:
-        steps += _classify_steps(cfg.classify, ctx)
+        steps += _classify_steps(cfg.classify, ctx, cfg.reference)
     if cfg.unmix is not None:  # on MNF/PCA components it takes their transform from their metadata
         steps += unmix_steps(cfg.unmix, ctx)
     if cfg.features is not None:
@@ -242,7 +258,7 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
         section = CalibrationConfig.model_validate(entry.model_dump(exclude={"property"}))
         steps += calibration_steps(section, samples)
         calibrations.append(entry.name)
-    return Plan(steps, grid, cfg.engine.tile, calibrations)
+    return Plan(steps, grid, cfg.engine.tile, calibrations, legend=ctx.get("legend"))
 
 
 def calibration_samples(ref: GroundReferenceConfig, prop: str, grid: Grid | TileStore, base: Path) -> CalibrationSamples:
@@ -316,6 +332,8 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
         with Run(run_dir, opts, progress=progress) as run:
             _freeze_config(run, config_path, cfg)
             plan.write(run.dir / "plan.json")
+            if plan.legend is not None:
+                plan.legend.write_csv(run.dir / LEGEND_FILE)
             ex = _executor(cfg.execution)
             try:
                 if getattr(ex, "dashboard", None):

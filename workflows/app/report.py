@@ -27,6 +27,7 @@ from typing import Literal, Mapping, Sequence
 
 import numpy as np
 
+from swathmill.tiles.palette import UNCLASSIFIED_RGB
 from swathmill.workflows.caution import CAUTION
 from swathmill.workflows.methods.accuracy import AreaEstimate, ClassAccuracy, regression_metrics
 
@@ -113,7 +114,7 @@ class EigenvalueCurve:
 
 @dataclass
 class ClassMapView:
-    """A class map: values 1..n name ``class_names``; 0 (or ``nodata``) is unclassified / no data."""
+    """A class map: values 1..n name ``class_names``; 0 is unclassified (grey), ``nodata`` no data (white)."""
 
     name: str
     classes: np.ndarray
@@ -362,19 +363,22 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
         colors.append(_DEFAULT_COLORS[len(colors) % len(_DEFAULT_COLORS)])
     img, step = _thin(cls, max_pixels)
     img = img.astype(np.int64)
-    if v.nodata is not None:
-        img = np.where(img == v.nodata, 0, img)
-    img = np.where((img < 0) | (img > n), 0, img)
-    cmap = ListedColormap([(1, 1, 1)] + [tuple(np.array(c[:3]) / 255) for c in colors[:n]])
+    # drawn as index 0 nodata (white, the page), 1 unclassified (grey, the products' colour), 2.. classes
+    nodata = (img == v.nodata) if v.nodata is not None else np.zeros(img.shape, bool)
+    img = np.where(nodata | (img < 0) | (img > n), -1, img) + 1
+    grey = tuple(np.array(UNCLASSIFIED_RGB) / 255)
+    cmap = ListedColormap([(1, 1, 1), grey] + [tuple(np.array(c[:3]) / 255) for c in colors[:n]])
     fig = _figure(7.5, 6)
     ax = fig.add_subplot()
-    ax.imshow(img, cmap=cmap, vmin=-0.5, vmax=n + 0.5, extent=_imshow_extent(img.shape, v.extent, step),
+    ax.imshow(img, cmap=cmap, vmin=-0.5, vmax=n + 1.5, extent=_imshow_extent(img.shape, v.extent, step),
               interpolation="nearest")
-    counts = np.bincount(img.ravel(), minlength=n + 1)
-    handles = [Patch(facecolor=cmap(i), edgecolor="black", lw=0.5, label=f"{i} {name}")
+    counts = np.bincount(img.ravel(), minlength=n + 2)
+    handles = [Patch(facecolor=cmap(i + 1), edgecolor="black", lw=0.5, label=f"{i} {name}")
                for i, name in enumerate(v.class_names, start=1)]
+    if counts[1]:
+        handles.append(Patch(facecolor=grey, edgecolor="black", lw=0.5, label="0 unclassified"))
     if counts[0]:
-        handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="0 unclassified / no data"))
+        handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="no data (outside the mosaic)"))
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
     _axes_labels(ax, v.extent)
     ax.set_title(v.name)

@@ -145,9 +145,9 @@ def _step_maps(name: str, store: TileStore, model: dict | None, summary: ReportS
         elif is_class_map(spec):
             cls = _thumb(store, output)[0]
             summary.class_maps.append(ClassMapView(
-                name=f"{name}/{output}", classes=np.nan_to_num(cls, nan=0).astype(np.int32),
+                name=f"{name}/{output}", classes=np.nan_to_num(cls, nan=int(spec.nodata)).astype(np.int32),
                 class_names=list(spec.class_names), colors=[tuple(c) for c in spec.colors] if spec.colors else None,
-                extent=_extent(store)))
+                extent=_extent(store), nodata=int(spec.nodata)))
         elif spec.role == Role.ABUNDANCE:
             data = _thumb(store, output)
             for b, band in enumerate(spec.bands):

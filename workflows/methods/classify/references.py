@@ -22,6 +22,7 @@ from swathmill.workflows.inputs.library import SpectralLibrary, read_library, re
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable
 from swathmill.workflows.params import Section
 
+from .legend import Legend, step_legend
 from .shared import (ClassifierParams, ClassifyError, accumulate_samples, exclude_mask, gathered_samples,
                      input_coord, input_wavelengths, load_reference_samples, resolve_path, training_mask)
 
@@ -82,10 +83,12 @@ class ReferenceSet:
     library: SpectralLibrary | None
     table: SampleTable | None
 
-    def params(self, step: str, settings: Section) -> ClassifierParams:
-        """The step's parameter object: its settings plus these derived values."""
-        return ClassifierParams(step=step, settings=settings, names=self.names, class_names=self.class_names,
-                                ref_class=self.ref_class, colors=self.colors)
+    def params(self, step: str, settings: Section, legend: "Legend | None" = None) -> ClassifierParams:
+        """The step's parameter object: its settings plus these derived values, in the codes of
+        ``legend`` (default: a legend of these references alone)."""
+        source = "library" if self.library is not None else "ground reference"
+        legend = step_legend(legend, step, self.class_names, self.colors, source)
+        return ClassifierParams.make(step, settings, self.names, self.class_names, self.ref_class, legend)
 
     def fit(self, finalize: Callable[..., dict]) -> Fit:
         """The fit of a step using these references; ``finalize(acc, params, meta, library=, table=)``."""

@@ -10,6 +10,7 @@ Spectral angle (Kruse et al., 1993, Remote Sens. Environ. 44:145-163)
     float32 rounding moves an angle by about 1e-6 / sin(angle) rad (at most ~1e-5 rad).
     A pixel takes the class of the reference with the smallest angle if that angle is at most the
     threshold of the reference's class (one for all, or one per class); otherwise 0 (unclassified).
+    The class map is written in the codes of the run's legend (255 outside the mosaic).
 
 Step outputs: ``classes`` (1 band), ``angle`` (one band per reference, radians).
 """
@@ -28,7 +29,9 @@ from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 
 from .references import ReferenceSpectraConfig, reference_set, reference_spectra
-from .shared import ClassifierParams, ClassifyError, band_names, check_ranges, class_spec, make_settings
+from .legend import Legend
+from .shared import (ClassifierParams, ClassifyError, band_names, check_ranges, class_spec, make_settings,
+                     to_legend_codes)
 
 __all__ = [
     "spectral_angle",
@@ -245,7 +248,7 @@ def _sam_kernel(block: Block, model: dict) -> dict:
             best[closer] = Ao[i][closer]
             j[closer] = i
         cls[s:e][cols] = np.where(best <= thr[j], ref_class[j], 0)
-    return {"classes": cls.reshape(1, *shape), "angle": angle.reshape(m, *shape)}
+    return {"classes": to_legend_codes(cls, p).reshape(1, *shape), "angle": angle.reshape(m, *shape)}
 
 
 def _sam_outputs(meta: Mapping[str, InputMeta], model: dict | None, params: ClassifierParams
@@ -256,7 +259,8 @@ def _sam_outputs(meta: Mapping[str, InputMeta], model: dict | None, params: Clas
 
 
 def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = None,
-             samples: SampleTable | None = None, settings: SamSettings | None = None, **fields: Any) -> Step:
+             samples: SampleTable | None = None, settings: SamSettings | None = None, legend: Legend | None = None,
+             **fields: Any) -> Step:
     """Spectral angle classification of ``input_ref`` against library or image-derived references.
 
     Parameters
@@ -267,6 +271,7 @@ def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = Non
         ``threshold`` (radians, for every class; None: always the nearest reference),
         ``class_thresholds`` (radians per class name, overriding ``threshold``), ``exclude``
         (wavelength ranges in nm left out of the angle, e.g. water vapour bands).
+    legend : the run's legend (the class map's codes); default: a legend of these references alone.
     """
     cfg: SamSettings = make_settings(SamSettings, name, settings, fields)
     refs = reference_set(library, samples, name)
@@ -275,5 +280,5 @@ def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = Non
         raise ClassifyError(f"step {name!r}: thresholds for unknown class(es) {unknown}; "
                             f"classes are {list(refs.class_names)}")
     return Step(name=name, kernel=_sam_kernel, outputs=_sam_outputs, inputs={"x": input_ref},
-                params=refs.params(name, cfg), fit=refs.fit(_finalize_sam), static=refs.static, decode=False,
-                version="2")
+                params=refs.params(name, cfg, legend), fit=refs.fit(_finalize_sam), static=refs.static, decode=False,
+                version="3")

@@ -9,11 +9,11 @@ Parameter object
     class of each reference, colours). Kernels, finalizers and output declarations read its
     attributes; the step key hashes its canonical dump.
 
-Class colours
-    uint8 class maps, 0 = unclassified (and nodata), classes 1..k. Colours come from the library when
-    it has them, else Paul Tol's "muted" qualitative scheme, designed to stay distinguishable under
-    common colour-vision deficiencies (P. Tol, "Colour Schemes", SRON technical note SRON/EPS/TN/09-002;
-    hex values from memory). Beyond nine classes the colours repeat.
+Class codes and colours
+    uint8 class maps in the codes of the run's legend (:mod:`.legend`): 0 unclassified, 1..k the
+    legend's classes, 255 nodata. A step built without a legend makes one from its own references
+    (library colours kept, else the colour-blind-safe default palette of
+    :mod:`swathmill.tiles.palette`). :data:`TOL_MUTED` and :func:`class_palette` remain for figures.
 """
 from __future__ import annotations
 
@@ -26,6 +26,7 @@ import numpy as np
 from pydantic import BaseModel, ValidationError
 
 from swathmill.errors import SwathmillError
+from swathmill.tiles.palette import CLASS_NODATA, UNCLASSIFIED
 from swathmill.tiles.samples import gather
 from swathmill.tiles.step import Block, InputMeta, OutputSpec
 from swathmill.workflows.inputs.library import hex_to_rgb
@@ -50,6 +51,7 @@ __all__ = [
     "pixel_chunks",
     "blank",
     "class_spec",
+    "to_legend_codes",
     "band_names",
     "resolve_path",
     "load_reference_samples",
@@ -78,11 +80,13 @@ class ClassifierParams:
     ----------
     step : the step's name (quoted in errors).
     settings : the step's typed settings section (SAM, SFF or SVM).
-    names : one name per reference spectrum (the bands of the angle, scale, RMSE and score outputs);
+    names : one name per reference spectrum (the bands of the angle, scale, RMSE and R2 outputs);
         for the SVM, the class names.
-    class_names : names of classes 1..k of the class map.
-    ref_class : the class code (1..k) of each reference.
-    colors : RGB per class from the library, or None for :func:`class_palette`.
+    class_names : the step's own classes 1..k (its references' classes, or the training labels).
+    ref_class : the step's own class (1..k) of each reference.
+    legend : the run's legend (:class:`~swathmill.workflows.methods.classify.legend.Legend`); the
+        class map is written in its codes.
+    class_codes : the legend code of each of the step's own classes 1..k.
     """
 
     step: str
@@ -90,7 +94,16 @@ class ClassifierParams:
     names: tuple[str, ...]
     class_names: tuple[str, ...]
     ref_class: tuple[int, ...]
-    colors: tuple[tuple[int, int, int], ...] | None = None
+    legend: Any
+    class_codes: tuple[int, ...]
+
+    @classmethod
+    def make(cls, step: str, settings: Section, names: Sequence[str], class_names: Sequence[str],
+             ref_class: Sequence[int], legend: Any) -> "ClassifierParams":
+        """The parameter object, the class codes looked up in ``legend`` (a :class:`.legend.Legend`)."""
+        return cls(step=step, settings=settings, names=tuple(names), class_names=tuple(class_names),
+                   ref_class=tuple(int(c) for c in ref_class), legend=legend,
+                   class_codes=legend.codes(class_names, f"step {step!r}"))
 
 
 def check_ranges(v: Sequence[tuple[float, float]]) -> list[tuple[float, float]]:
@@ -220,13 +233,20 @@ def blank(m: int, shape: tuple[int, int], fill: Any, dtype: Any) -> np.ndarray:
     return np.full((m, shape[0] * shape[1]), fill, dtype=dtype)
 
 
+def to_legend_codes(local: np.ndarray, params: ClassifierParams) -> np.ndarray:
+    """Class codes of the step's own classes (0 unclassified, 1..k) as the legend's codes (uint8)."""
+    lut = np.array([UNCLASSIFIED, *params.class_codes], dtype=np.uint8)
+    return lut[np.asarray(local, dtype=np.intp)]
+
+
 def class_spec(params: ClassifierParams) -> OutputSpec:
-    """The declaration of a classifier's class map (uint8, 0 unclassified, named and coloured classes)."""
-    names, colors = params.class_names, params.colors
-    return OutputSpec(bands=("class",), dtype="uint8", nodata=0, kind="categorical", role=Role.CLASS_MAP,
-                      class_names=tuple(names),
-                      colors=tuple(tuple(int(v) for v in c) for c in colors) if colors else class_palette(len(names)),
-                      attrs={"unclassified": 0})
+    """The declaration of a classifier's class map: uint8 in the legend's codes (every legend class
+    named and coloured, also those this step cannot produce), 0 unclassified, 255 nodata."""
+    legend = params.legend
+    produced = [legend.names[c - 1] for c in sorted(set(params.class_codes))]
+    return OutputSpec(bands=("class",), dtype="uint8", nodata=CLASS_NODATA, kind="categorical",
+                      role=Role.CLASS_MAP, class_names=legend.names, colors=legend.colors,
+                      attrs={"unclassified": UNCLASSIFIED, "classes_produced": produced})
 
 
 def band_names(names: Sequence[str]) -> tuple[str, ...]:

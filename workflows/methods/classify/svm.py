@@ -43,9 +43,10 @@ from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTa
 from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 
+from .legend import Legend, step_legend
 from .models import dump_estimators, load_svm
 from .shared import (ClassifierParams, ClassifyError, accumulate_samples, band_names, blank, class_spec,
-                     field_default, gathered_samples, make_settings, pixel_chunks, training_mask)
+                     field_default, gathered_samples, make_settings, pixel_chunks, to_legend_codes, training_mask)
 
 __all__ = [
     "SvmSettings",
@@ -409,7 +410,7 @@ def _svm_kernel(block: Block, model: dict) -> dict:
     band_index = None if use is None or list(use) == list(range(nb)) else np.asarray(use, dtype=np.intp)
     est = load_svm(model)
     k = len(p.class_names)
-    cls = blank(1, shape, 0, np.uint8)
+    cls = blank(1, shape, 0, np.uint8)  # the step's own labels 1..k; legend codes on return
     proba = blank(k, shape, np.nan, np.float32) if settings.probability else None
     for s, e, X, ok in pixel_chunks(block, band_index, chunk=settings.chunk):
         if not ok.any():
@@ -419,7 +420,7 @@ def _svm_kernel(block: Block, model: dict) -> dict:
         cls[0, cols] = labels
         if proba is not None:
             proba[:, cols] = pr.T
-    out = {"classes": cls.reshape(1, *shape)}
+    out = {"classes": to_legend_codes(cls, p).reshape(1, *shape)}
     if proba is not None:
         out["probability"] = proba.reshape(k, *shape)
     return out
@@ -430,22 +431,25 @@ def _svm_outputs(meta: Mapping[str, InputMeta], model: dict | None, params: Clas
     out = {"classes": class_spec(params)}
     if params.settings.probability:
         out["probability"] = OutputSpec(bands=band_names(params.class_names), dtype="float32", role=Role.SCORE,
-                                        nodata=float("nan"), attrs={"quantity": "class probability (Platt)", "units": "1"})
+                                        nodata=float("nan"),
+                                        attrs={"quantity": "class probability (Platt)", "units": "1"})
     return out
 
 
 def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequence[Sequence[int]] | None = None,
-             settings: SvmSettings | None = None, **fields: Any) -> Step:
+             settings: SvmSettings | None = None, legend: Legend | None = None, **fields: Any) -> Step:
     """SVM classification of ``input_ref`` trained on the samples' train (and unassigned) pixels.
 
     Parameters
     ----------
     name, input_ref : the step's name and the "step/output" it classifies.
     samples : the ground reference samples on the grid.
-    colors : RGB per class (default: :func:`~swathmill.workflows.methods.classify.shared.class_palette`).
+    colors : RGB per class of a legend made for this step alone (ignored with ``legend``; default: the
+        colour-blind-safe palette of :mod:`swathmill.tiles.palette`).
     settings : an :class:`SvmSettings` (or a section derived from it); or its fields as keywords
         (``C``, ``gamma``, ``folds``, ``scoring``, ``probability``, ``seed``, ``max_per_class``, ``chunk``,
         ``components``, ``curve``, ``curve_max``, ``curve_C``, ``curve_compare``).
+    legend : the run's legend (the class map's codes); default: a legend of the samples' classes.
 
     Validation pixels are left out of training; the model reports their overall accuracy under
     ``validation``. ``max_per_class`` caps the samples per class and split before the fit
@@ -461,9 +465,8 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     if colors is not None and len(colors) != len(samples.class_names):
         raise ClassifyError(f"step {name!r}: {len(colors)} colours for {len(samples.class_names)} classes")
     names = tuple(samples.class_names)
-    params = ClassifierParams(step=name, settings=cfg, names=names, class_names=names,
-                              ref_class=tuple(range(1, len(names) + 1)),
-                              colors=tuple(tuple(int(v) for v in c) for c in colors) if colors else None)
+    legend = step_legend(legend, name, names, colors, "ground reference")
+    params = ClassifierParams.make(name, cfg, names, names, range(1, len(names) + 1), legend)
     compare = {f"{_CMP}{i}": ref for i, ref in enumerate(cfg.curve_compare)}
     if input_ref in cfg.curve_compare:
         raise ClassifyError(f"step {name!r}: curve_compare names the step's own input {input_ref!r}")
@@ -471,4 +474,4 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
               select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_svm, table=samples))
     return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref, **compare},
-                params=params, fit=fit, static=samples.to_static())
+                params=params, fit=fit, static=samples.to_static(), version="2")
