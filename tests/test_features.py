@@ -145,7 +145,8 @@ def test_compute_features_block_and_valid(rng):
     np.testing.assert_allclose(out[1].ravel()[1:], compute_feature(WL, flat, feats[1])[1:], rtol=1e-6)
 
 
-def test_step_tiled_equals_untiled(tmp_path, rng):
+def test_step_equals_the_whole_array_functions(tmp_path, rng):
+    # tiled equals untiled through the engine is checked by tests/test_contract.py (case features)
     from swathmill.tiles.testing import run_on_arrays
 
     rows, cols = 40, 56
@@ -168,7 +169,7 @@ def test_step_tiled_equals_untiled(tmp_path, rng):
     whole = compute_features(WL, cube, FeaturesConfig.model_validate(section).features)
     got = out["features/features"]
     assert got.shape == whole.shape == (5, rows, cols)
-    # DESIGN.md invariant 1: tiled equals untiled (floats to 1e-6 relative)
+    # 16-pixel tiles equal compute_features on the whole array (floats to 1e-6 relative)
     np.testing.assert_allclose(got, whole, rtol=1e-6, equal_nan=True)
     # and the depth is the one built in (band-centred minima only: off-band centres are shallower)
     assert np.all(got[0] <= depths + 1e-5)

@@ -589,18 +589,13 @@ def _engine_run(steps, cube, spec, valid, tmp_path, tile, executor="local", name
                          executor=executor, run_name=name)
 
 
-def test_engine_tiled_equals_untiled_and_matches_pure_functions(rng, tmp_path):
+def test_engine_matches_pure_functions(rng, tmp_path):
+    # tiled equals untiled for these steps is checked by tests/test_contract.py (cases mnf, pca, mnf_denoise)
     cube, _, valid, spec = _engine_inputs(rng)
     steps = mnf_steps(MnfConfig(components=4, denoise_components=3), input_ref="src/reflectance")
-    outs = {t: _engine_run(steps, cube, spec, valid, tmp_path, t, name=f"t{t}")[0] for t in (8, 48)}
-    small, whole = outs[8], outs[48]
+    small = _engine_run(steps, cube, spec, valid, tmp_path, 8, name="t8")[0]
     assert set(small) == {"mnf/components", "mnf_denoised/reflectance"}
-    for ref in small:
-        # DESIGN.md invariant 1: tiled equals untiled, floats to 1e-6 relative.
-        a, b = small[ref], whole[ref]
-        np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
-        np.testing.assert_allclose(a[~np.isnan(a)], b[~np.isnan(b)], rtol=1e-6, atol=1e-6 * np.nanmax(np.abs(b)))
-    # The engine's result equals the pure functions on the whole array.
+    # The engine's result (8-pixel tiles) equals the pure functions on the whole array.
     model = _fit(cube, valid, size=48, params=steps[0].params)
     y = forward(cube, model)
     np.testing.assert_allclose(small["mnf/components"][:, valid], y[:, valid], rtol=1e-6, atol=1e-6)

@@ -9,9 +9,9 @@ from __future__ import annotations
 
 from typing import Any, Mapping
 
-from pydantic import BaseModel, ConfigDict
+from pydantic import BaseModel, ConfigDict, ValidationError
 
-__all__ = ["Section", "check_ref", "ctx_get"]
+__all__ = ["Section", "check_ref", "ctx_get", "validation_message"]
 
 
 class Section(BaseModel):
@@ -34,3 +34,13 @@ def ctx_get(ctx: Any, key: str, default: Any = None) -> Any:
     if isinstance(ctx, Mapping):
         return ctx.get(key, default)
     return getattr(ctx, key, default)
+
+
+def validation_message(error: ValidationError) -> str:
+    """A pydantic validation error as one line: ``key: message (got value)`` per problem, ``; ``-joined.
+
+    The key is the dotted location of the field at fault (``(settings)`` for a check of the whole
+    section), so a step factory can quote it in its own error.
+    """
+    return "; ".join(f"{'.'.join(map(str, err['loc'])) or '(settings)'}: {err['msg']} (got {err.get('input')!r})"
+                     for err in error.errors())

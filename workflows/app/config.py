@@ -15,6 +15,7 @@ import yaml
 from pydantic import BaseModel, Field, ValidationError, model_validator
 
 from swathmill.errors import SwathmillError
+from swathmill.tiles.paths import resolve as resolve_path
 from swathmill.workflows.params import Section, check_ref, ctx_get  # check_ref, ctx_get: re-exported for older imports
 
 __all__ = ["ConfigError", "JobqueueConfig", "ExecutionConfig", "EngineConfig", "load_yaml", "validate", "config_hash",
@@ -136,5 +137,5 @@ def config_hash(data: dict) -> str:
 def resolve(base: Path, p: str | Path | None) -> Path | None:
     if p is None:
         return None
-    p = Path(p).expanduser()
-    return p if p.is_absolute() else (base / p).resolve()
+    q = resolve_path(base, p)
+    return q if Path(p).expanduser().is_absolute() else q.resolve()  # a relative path is normalised

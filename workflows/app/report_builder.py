@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from swathmill.tiles.ledger import Ledger
+from swathmill.tiles.paths import resolve
 from swathmill.tiles.store import TileStore, decode
 
 from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine,
@@ -214,7 +215,7 @@ def _library_spectra(view: RunView, summary: ReportSummary) -> None:
     if lib:
         paths.add(lib)
     for p in sorted(paths):
-        path = Path(p) if Path(p).is_absolute() else view.base / p
+        path = resolve(view.base, p)
         try:
             lib = read_library(path)
         except Exception as exc:  # noqa: BLE001 - the report shows what it can

@@ -97,7 +97,7 @@ class StoreValid:
         rows, cols = np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64)
         if rows.size == 0:
             return np.zeros(0, dtype=bool)
-        inside = (rows >= 0) & (cols >= 0) & (rows < self.store.grid.rows) & (cols < self.store.grid.cols)
+        inside = self.store.grid.full.contains(rows, cols)
         out = np.zeros(rows.shape, dtype=bool)
         if inside.any():
             vals = self.store.array("valid").get_coordinate_selection((rows[inside], cols[inside]))

@@ -29,6 +29,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 from swathmill.errors import SwathmillError
+from swathmill.tiles.grid import Window
 
 __all__ = [
     "AccuracyError",
@@ -504,7 +505,7 @@ def values_at(array: Any, rows: Sequence[int] | np.ndarray, cols: Sequence[int] 
         raise AccuracyError(f"rows and cols need the same length. Got {rows.size} and {cols.size}")
     shape = tuple(array.shape)
     nr, nc = shape[-2:]
-    outside = np.flatnonzero((rows < 0) | (rows >= nr) | (cols < 0) | (cols >= nc))
+    outside = np.flatnonzero(~Window(0, 0, nr, nc).contains(rows, cols))
     if outside.size:
         i = int(outside[0])
         raise AccuracyError(f"sample {i} at row {rows[i]}, col {cols[i]} lies outside the "

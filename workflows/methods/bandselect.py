@@ -535,7 +535,7 @@ class BandSelectionConfig(Section):
     folds: int = Field(5, ge=2, description="blocked cross-validation folds")
     max_per_class: int | None = Field(300, ge=2, description="cap on training samples per class (seeded)")
     sample_pixels: int = Field(20000, ge=10, description="seeded pixel sample of linear_prediction")
-    seed: int = 0
+    seed: int = Field(0, ge=0, description="seeds the capped training draw and the pixel sample")
     curve: bool = Field(False, description="record blocked-CV accuracy against the number of selected bands")
 
     @field_validator("input")

@@ -85,7 +85,7 @@ from pydantic import Field, ValidationError, model_validator
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 
-from swathmill.workflows.params import Section, check_ref
+from swathmill.workflows.params import Section, check_ref, validation_message
 from swathmill.workflows.inputs.library import SpectralLibrary, write_library
 from swathmill.errors import SwathmillError
 
@@ -165,9 +165,7 @@ def extraction_params(method: str | None = None, n_endmembers: int | None = None
     try:
         return ExtractionSettings(**fields)
     except ValidationError as e:
-        bad = "; ".join(f"{'.'.join(map(str, err['loc'])) or '(settings)'}: {err['msg']} (got {err.get('input')!r})"
-                        for err in e.errors())
-        raise EndmemberError(f"bad extraction setting(s): {bad}") from None
+        raise EndmemberError(f"bad extraction setting(s): {validation_message(e)}") from None
 
 
 def extraction_settings(params: Any) -> ExtractionSettings:
@@ -691,7 +689,7 @@ def _locations_kernel(block: Block, model: Mapping[str, Any] | None) -> dict[str
     pad = block.tile.padded
     out = np.zeros((1,) + block.valid.shape, dtype=np.uint8)
     rows, cols = np.asarray(model["rows"]), np.asarray(model["cols"])
-    inside = (rows >= pad.row) & (rows < pad.row + pad.rows) & (cols >= pad.col) & (cols < pad.col + pad.cols)
+    inside = pad.contains(rows, cols)
     for i in np.flatnonzero(inside):
         out[0, rows[i] - pad.row, cols[i] - pad.col] = i + 1
     return {"locations": out}

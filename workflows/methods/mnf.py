@@ -93,10 +93,11 @@ import numpy as np
 import scipy.linalg
 from pydantic import Field, field_validator, model_validator
 
-from swathmill.tiles.grid import Tile
+from swathmill.tiles.grid import Tile, Window
+from swathmill.tiles.samples import pixel_sample_mask
 from swathmill.workflows.roles import Role
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
-from swathmill.tiles.store import copy_bands, index_runs
+from swathmill.tiles.store import copy_bands, index_runs, scale_offset
 from swathmill.errors import SwathmillError
 from swathmill.workflows.params import Section
 
@@ -338,25 +339,6 @@ class MnfAccumulator:
 # accumulate / merge / select / finalize
 
 
-def pixel_sample_mask(rows: np.ndarray, cols: np.ndarray, seed: int, fraction: float) -> np.ndarray:
-    """A seeded pseudo-random choice of pixels by their global (row, col), independent of the tiling.
-
-    A pixel is kept when a SplitMix64 hash of (seed, row, col), mapped to [0, 1), is below
-    ``fraction``. ``rows`` and ``cols`` broadcast against each other.
-    """
-    if fraction >= 1:
-        return np.ones(np.broadcast_shapes(np.shape(rows), np.shape(cols)), dtype=bool)
-    r = np.asarray(rows, dtype=np.uint64)
-    c = np.asarray(cols, dtype=np.uint64)
-    z = (r << np.uint64(32)) ^ c ^ np.uint64((int(seed) * 0x9E3779B97F4A7C15) % 2**64)  # wraps as uint64 would
-    z = z + np.uint64(0x9E3779B97F4A7C15)
-    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-    z = z ^ (z >> np.uint64(31))
-    u = (z >> np.uint64(11)).astype(np.float64) * 2.0 ** -53
-    return u < fraction
-
-
 def _polygon(spec: Sequence[Sequence[float]] | str):
     import shapely
     import shapely.wkt
@@ -379,9 +361,7 @@ def _area_mask(block: Block, area: NoiseArea | None) -> np.ndarray | None:
     rows, cols = block.tile.padded.shape
     if area.window is not None:
         r0, c0, nr, nc = (int(v) for v in area.window)
-        rr = np.arange(pr, pr + rows)[:, None]
-        cc = np.arange(pc, pc + cols)[None, :]
-        return (rr >= r0) & (rr < r0 + nr) & (cc >= c0) & (cc < c0 + nc)
+        return Window(r0, c0, nr, nc).contains(np.arange(pr, pr + rows)[:, None], np.arange(pc, pc + cols)[None, :])
     import shapely
 
     geom = _polygon(area.polygon)
@@ -623,9 +603,8 @@ def _noise_covariance(acc: MnfAccumulator, p: int) -> tuple[np.ndarray, dict[str
 
 def _scale_offset(spec: OutputSpec) -> tuple[float, float]:
     """The CF scale_factor and add_offset of an input (1 and 0 when absent)."""
-    scale = spec.attrs.get("scale_factor")
-    offset = spec.attrs.get("add_offset")
-    return (1.0 if scale is None else float(scale)), (0.0 if not offset else float(offset))
+    scale, offset = scale_offset(spec)
+    return (1.0 if scale is None else scale), (0.0 if offset is None else offset)
 
 
 def _to_physical(acc: MnfAccumulator, spec: OutputSpec) -> MnfAccumulator:

@@ -22,7 +22,7 @@ import numpy as np
 from pydantic import Field, field_validator
 
 from swathmill.tiles.step import Block, InputMeta, OutputSpec, Step
-from swathmill.tiles.store import copy_bands, index_runs
+from swathmill.tiles.store import copy_bands, index_runs, scale_offset
 from swathmill.workflows.inputs.library import SpectralLibrary
 from swathmill.workflows.inputs.reference import SampleTable
 from swathmill.workflows.params import Section
@@ -164,12 +164,11 @@ def _finalize_sam(acc: dict | None, params: ClassifierParams, meta: Mapping[str,
 
 def _stored_to_work(spec: OutputSpec) -> tuple[float | None, float | None, Any]:
     """(scale, offset, nodata) to apply to stored values; a positive scale without offset is dropped."""
-    scale = spec.attrs.get("scale_factor")
-    offset = spec.attrs.get("add_offset") or None
+    scale, offset = scale_offset(spec)
     nodata = spec.nodata
     if offset is None and (scale is None or float(scale) > 0):
         scale = None  # a positive factor leaves every angle unchanged (scale invariance)
-    return (None if scale is None else float(scale)), (None if offset is None else float(offset)), nodata
+    return scale, offset, nodata
 
 
 def _sam_kernel(block: Block, model: dict) -> dict:

@@ -27,11 +27,12 @@ from pydantic import BaseModel, ValidationError
 
 from swathmill.errors import SwathmillError
 from swathmill.tiles.palette import CLASS_NODATA, UNCLASSIFIED
+from swathmill.tiles.paths import resolve
 from swathmill.tiles.samples import gather
 from swathmill.tiles.step import Block, InputMeta, OutputSpec
 from swathmill.workflows.inputs.library import hex_to_rgb
-from swathmill.workflows.inputs.reference import SPLIT_CODES, GroundReferenceConfig, SampleTable, load_samples
-from swathmill.workflows.params import Section, ctx_get
+from swathmill.workflows.inputs.reference import GroundReferenceConfig, Split, SampleTable, load_samples
+from swathmill.workflows.params import Section, ctx_get, validation_message
 from swathmill.workflows.roles import Role
 
 __all__ = [
@@ -137,15 +138,13 @@ def make_settings(model: type[Section], step: str, settings: Section | None, fie
     try:
         return model(**fields)
     except ValidationError as e:
-        bad = "; ".join(f"{'.'.join(map(str, err['loc'])) or '(settings)'}: {err['msg']} (got {err.get('input')!r})"
-                        for err in e.errors())
-        raise ClassifyError(f"step {step!r}: bad setting(s): {bad}") from None
+        raise ClassifyError(f"step {step!r}: bad setting(s): {validation_message(e)}") from None
 
 
 def training_mask(table: SampleTable, idx: np.ndarray | None = None) -> np.ndarray:
     """True for samples that may shape a classifier (train or unassigned), False for validation ones."""
     split = table.split if idx is None else table.split[idx]
-    return split != SPLIT_CODES["validation"]
+    return split != Split.VALIDATION
 
 
 # samples gathered tile by tile ---------------------------------------------------------------------
@@ -257,9 +256,7 @@ def band_names(names: Sequence[str]) -> tuple[str, ...]:
 # configuration helpers --------------------------------------------------------------------------------
 def resolve_path(p: str, ctx: Any) -> Path:
     """``p`` as given when absolute, else relative to the factory context's ``base_dir`` (if any)."""
-    q = Path(p).expanduser()
-    base = ctx_get(ctx, "base_dir")
-    return q if q.is_absolute() or base is None else Path(base) / q
+    return resolve(ctx_get(ctx, "base_dir"), p)
 
 
 def load_reference_samples(cfg: GroundReferenceConfig, ctx: Any) -> SampleTable:

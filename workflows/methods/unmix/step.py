@@ -35,6 +35,7 @@ from typing import Any, Literal, Mapping, Sequence
 import numpy as np
 from pydantic import Field, ValidationError, model_validator
 
+from swathmill.tiles.paths import resolve
 from swathmill.tiles.samples import gather, merge_gathered, select_no_tiles, select_tiles_holding
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step, StepError
 from swathmill.workflows.inputs.library import SpectralLibrary, read_library, resample_library
@@ -223,7 +224,7 @@ def _sample_endmembers(acc: Any, params: UnmixParams, table: SampleTable, nb: in
         acc = {"idx": np.empty(0, np.int64), "X": np.empty((0, nb)), "bad": np.empty(0, np.int64)}
     order = np.argsort(acc["idx"], kind="stable")
     idx, xs = acc["idx"][order], acc["X"][order]
-    use = table.split[idx] != 2  # validation samples (split code 2) never shape the endmembers
+    use = ~table.is_validation[idx]  # validation samples never shape the endmembers
     labels = table.label[idx][use]
     k = len(table.class_names)
     counts = np.bincount(labels, minlength=k + 1)[1:]
@@ -547,11 +548,7 @@ def build_steps(section: UnmixConfig, ctx: Any = None) -> list[Step]:
     src = section.endmembers
     settings = section.settings
     if src.library is not None:
-        path = Path(src.library).expanduser()
-        base = ctx_get(ctx, "base_dir")
-        if not path.is_absolute() and base is not None:
-            path = Path(base) / path
-        lib = read_library(path)
+        lib = read_library(resolve(ctx_get(ctx, "base_dir"), src.library))
         if src.materials is not None:
             lib = lib.subset(src.materials)
         return [unmix_step(section.name, section.input, settings=settings, library=lib)]
