@@ -459,7 +459,7 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
                for i, name in enumerate(v.class_names, start=1)]
     if counts[0]:
         handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="0 unclassified / no data"))
-    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    fig.legend(handles=handles, loc="outside right upper", fontsize=8, frameon=False)  # kept inside the figure
     _axes_labels(ax, v.extent)
     ax.set_title(v.name)
     return _img(fig, f"class map {v.name}")
@@ -512,7 +512,7 @@ def _fig_spectra(v: SpectraView) -> str:
     ax.set_title(v.title)
     ax.grid(alpha=0.3)
     if v.spectra:
-        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+        fig.legend(fontsize=8, loc="outside right upper", frameon=False)
     return _img(fig, v.title)
 
 
@@ -590,7 +590,7 @@ def _fig_gains(g: LineGains) -> str:
         ax.tick_params(labelsize=8)
     ax1.set_title("brightness gain per line", fontsize=10)
     ax2.set_title("brightness offset per line", fontsize=10)
-    ax2.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False)
+    fig.legend(*ax2.get_legend_handles_labels(), fontsize=7, loc="outside right upper", frameon=False)
     return _img(fig, "brightness gains and offsets per flight line")
 
 
@@ -767,7 +767,9 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
         body = "\n".join(parts)
     add("inputs", "Inputs and flight-line footprints", body)
     add("quicklook", "True-colour quicklook", _fig_quicklook(s.quicklook, max_pixels) if s.quicklook else None)
-    add("mnf", "MNF eigenvalues", "\n".join(_fig_eigen(c) for c in s.eigenvalues) or None)
+    add("mnf", "MNF eigenvalues", "\n".join(
+        "".join(f'<p class="params">{" ".join(_e(t) for t in p.sentences)}</p>' for p in s.parameters
+                if p.sentences and f"({p.step})" in c.title) + _fig_eigen(c) for c in s.eigenvalues) or None)
     params = {p.step: p for p in s.parameters}
 
     def maps(views, fig) -> str | None:
@@ -816,8 +818,8 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
                 g = p.gains
                 gain, off = np.atleast_2d(np.asarray(g.gain, float)), np.atleast_2d(np.asarray(g.offset, float))
                 rows = [[_e(nm) + (" (reference)" if nm == g.reference else ""),
-                         _num(np.nanmean(gain[k]), 4), f"{_num(np.nanmin(gain[k]), 4)} – {_num(np.nanmax(gain[k]), 4)}",
-                         _num(np.nanmean(off[k]), 4), f"{_num(np.nanmin(off[k]), 4)} – {_num(np.nanmax(off[k]), 4)}"]
+                         f"{np.nanmean(gain[k]):.4f}", f"{np.nanmin(gain[k]):.4f} – {np.nanmax(gain[k]):.4f}",
+                         f"{np.nanmean(off[k]):.4f}", f"{np.nanmin(off[k]):.4f} – {np.nanmax(off[k]):.4f}"]
                         for k, nm in enumerate(g.names)]
                 b.append(_table(["flight line", "mean gain", "gain range", "mean offset", "offset range"], rows))
                 b.append(_fig_gains(g))
