@@ -7,6 +7,7 @@ on the workers. No pixel array passes through the scheduler: tasks read and writ
 from __future__ import annotations
 
 import os
+from pathlib import Path
 import traceback
 from typing import Any, Callable, Iterable, Protocol
 
@@ -89,7 +90,8 @@ class DaskExecutor:
     def __init__(self, *, client=None, address: str | None = None, cluster=None, n_workers: int | None = None,
                  threads_per_worker: int = 1, memory_limit: str | float | None = "auto",
                  dashboard_address: str | None = "127.0.0.1:0", retries: int = 2, max_in_flight: int | None = None,
-                 processes: bool = True, worker_env: dict[str, str] | None = None):
+                 processes: bool = True, worker_env: dict[str, str] | None = None,
+                 local_directory: str | None = None):
         import dask
         import distributed  # noqa: F401 - loads distributed's configuration defaults
         from distributed import Client, LocalCluster
@@ -110,6 +112,10 @@ class DaskExecutor:
                        if k not in WORKER_MALLOC_ENV}  # Dask's default, or an earlier executor's
                 env.update(WORKER_MALLOC_ENV if worker_env is None else worker_env)
                 dask.config.set({"distributed.nanny.pre-spawn-environ": env})
+                if local_directory:  # Dask's scratch space (spill files, worker folders) where the caller says
+                    Path(local_directory).mkdir(parents=True, exist_ok=True)
+                    dask.config.set({"temporary-directory": str(local_directory)})
+                    net["local_directory"] = str(local_directory)
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
                                        memory_limit=memory_limit, dashboard_address=dashboard_address, **net)
                 self._own_cluster = cluster

@@ -274,7 +274,7 @@ def build_steps(cfg: RunConfig, base: Path) -> list[Step]:
     return build_plan(cfg, base).steps
 
 
-def _executor(ex: ExecutionConfig):
+def _executor(ex: ExecutionConfig, scratch: Path | None = None):
     if ex.executor == "local":
         return make_executor("local", retries=0)
     if ex.executor == "dask":
@@ -283,7 +283,8 @@ def _executor(ex: ExecutionConfig):
         if ex.address:
             opts["address"] = ex.address
         else:
-            opts.update(n_workers=ex.workers, memory_limit=ex.memory_limit, dashboard_address=ex.dashboard)
+            opts.update(n_workers=ex.workers, memory_limit=ex.memory_limit, dashboard_address=ex.dashboard,
+                        local_directory=str(scratch) if scratch else None)
         return make_executor("dask", **opts)
     jq = ex.jobqueue.model_dump(exclude_none=True)
     return make_executor("jobqueue", retries=ex.retries, **jq)
@@ -316,7 +317,7 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
         with Run(run_dir, opts, progress=progress) as run:
             _freeze_config(run, config_path, cfg)
             plan.write(run.dir / "plan.json")
-            ex = _executor(cfg.execution)
+            ex = _executor(cfg.execution, run.dir / "dask-scratch")  # Dask's scratch space inside the run
             try:
                 if getattr(ex, "dashboard", None):
                     progress.message(f"dashboard: {ex.dashboard}")
