@@ -276,6 +276,14 @@ def _figure(w: float = 7.0, h: float = 4.5):
     return Figure(figsize=(w, h), dpi=100, layout="constrained")
 
 
+def _with_legend_axes(fig, ratio: float = 0.3):
+    """A main axes and, on its right, an empty axes holding the legend (the layout keeps both whole)."""
+    gs = fig.add_gridspec(1, 2, width_ratios=[1.0, ratio])
+    ax, lax = fig.add_subplot(gs[0]), fig.add_subplot(gs[1])
+    lax.axis("off")
+    return ax, lax
+
+
 def _png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", metadata={"Software": None})
@@ -451,7 +459,7 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
     img = np.where((img < 0) | (img > n), 0, img)
     cmap = ListedColormap([(1, 1, 1)] + [tuple(np.array(c[:3]) / 255) for c in colors[:n]])
     fig = _figure(7.5, 6)
-    ax = fig.add_subplot()
+    ax, lax = _with_legend_axes(fig)
     ax.imshow(img, cmap=cmap, vmin=-0.5, vmax=n + 0.5, extent=_imshow_extent(img.shape, v.extent, step),
               interpolation="nearest")
     counts = np.bincount(img.ravel(), minlength=n + 1)
@@ -459,7 +467,7 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
                for i, name in enumerate(v.class_names, start=1)]
     if counts[0]:
         handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="0 unclassified / no data"))
-    fig.legend(handles=handles, loc="outside right upper", fontsize=8, frameon=False)  # kept inside the figure
+    lax.legend(handles=handles, loc="upper left", fontsize=8, frameon=False)  # in its own axes: never clipped
     _axes_labels(ax, v.extent)
     ax.set_title(v.name)
     return _img(fig, f"class map {v.name}")
@@ -502,7 +510,7 @@ def _fig_continuous(v: ContinuousMapView, max_pixels: int) -> str:
 
 def _fig_spectra(v: SpectraView) -> str:
     fig = _figure(7.5, 4.5)
-    ax = fig.add_subplot()
+    ax, lax = _with_legend_axes(fig)
     wl = np.asarray(v.wavelengths, dtype=float)
     for k, (name, s) in enumerate(v.spectra.items()):
         ax.plot(wl, np.asarray(s, dtype=float), lw=1.3, label=name,
@@ -512,7 +520,7 @@ def _fig_spectra(v: SpectraView) -> str:
     ax.set_title(v.title)
     ax.grid(alpha=0.3)
     if v.spectra:
-        fig.legend(fontsize=8, loc="outside right upper", frameon=False)
+        lax.legend(*ax.get_legend_handles_labels(), fontsize=8, loc="upper left", frameon=False)
     return _img(fig, v.title)
 
 
@@ -575,7 +583,9 @@ def _fig_confusion(v: AccuracyView) -> str:
 def _fig_gains(g: LineGains) -> str:
     """Gain and offset of each line against wavelength (the reference line is 1 and 0)."""
     fig = _figure(8, 3.6)
-    ax1, ax2 = fig.subplots(1, 2)
+    gs = fig.add_gridspec(1, 3, width_ratios=[4, 4, 1.6])
+    ax1, ax2, lax = fig.add_subplot(gs[0]), fig.add_subplot(gs[1]), fig.add_subplot(gs[2])
+    lax.axis("off")
     wl = np.asarray(g.wavelengths, dtype=float)
     gain, offset = np.atleast_2d(np.asarray(g.gain, float)), np.atleast_2d(np.asarray(g.offset, float))
     x = wl if wl.size == gain.shape[1] else np.arange(1, gain.shape[1] + 1)
@@ -590,7 +600,7 @@ def _fig_gains(g: LineGains) -> str:
         ax.tick_params(labelsize=8)
     ax1.set_title("brightness gain per line", fontsize=10)
     ax2.set_title("brightness offset per line", fontsize=10)
-    fig.legend(*ax2.get_legend_handles_labels(), fontsize=7, loc="outside right upper", frameon=False)
+    lax.legend(*ax2.get_legend_handles_labels(), fontsize=7, loc="upper left", frameon=False)
     return _img(fig, "brightness gains and offsets per flight line")
 
 
