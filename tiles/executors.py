@@ -6,6 +6,7 @@ on the workers. No pixel array passes through the scheduler: tasks read and writ
 """
 from __future__ import annotations
 
+import logging
 import os
 from pathlib import Path
 import traceback
@@ -225,11 +226,27 @@ class DaskExecutor:
         return result.result()
 
     def close(self) -> None:
+        """Close the client and, when this executor started it, the cluster.
+
+        Stopping workers we started is expected, so Dask's warnings while they stop (a worker process
+        "still alive after 4 seconds, killing" on a loaded machine, closed streams) are not shown; the
+        levels of Dask's loggers are restored afterwards.
+        """
+        quiet = ("distributed.nanny", "distributed.worker", "distributed.core", "distributed.comm",
+                 "distributed.batched", "distributed.scheduler", "distributed.client")
+        saved = {name: logging.getLogger(name).level for name in quiet}
+        if self._own_cluster is not None:
+            for name in quiet:
+                logging.getLogger(name).setLevel(logging.ERROR)
         try:
-            self.client.close()
+            try:
+                self.client.close()
+            finally:
+                if self._own_cluster is not None:
+                    self._own_cluster.close()
         finally:
-            if self._own_cluster is not None:
-                self._own_cluster.close()
+            for name, level in saved.items():
+                logging.getLogger(name).setLevel(level)
 
 
 def _local_dashboard(address: str | None) -> str:
