@@ -292,3 +292,18 @@ def test_dashboard_must_stay_on_this_machine(tmp_path, capsys):
     assert _local_dashboard(None) == "127.0.0.1:0" and _local_dashboard("localhost:8787") == "localhost:8787"
     with pytest.raises(ValueError, match="bound to this machine"):
         _local_dashboard(":8787")
+
+
+def test_describe_changes_names_keys_inputs_and_version():
+    from swathmill.tiles.ledger import describe_changes
+
+    old = {"params": {"settings": {"threshold": 0.12, "exclude": []}}, "inputs": {"x": "mosaic/reflectance"},
+           "in_keys": {"x": "k1"}, "version": "1.0", "tile": 64}
+    new = {"params": {"settings": {"threshold": 0.10, "exclude": []}}, "inputs": {"x": "mosaic/reflectance"},
+           "in_keys": {"x": "k2"}, "version": "1.1", "tile": 64}
+    assert describe_changes("sam", old, new) == [
+        "sam.settings.threshold: 0.12 -> 0.1",
+        "input x (mosaic/reflectance) was recomputed",
+        "software version: 1.0 -> 1.1",
+    ]
+    assert describe_changes("sam", old, old) == []

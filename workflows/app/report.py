@@ -131,7 +131,7 @@ class ClassMapView:
 class ContinuousMapView:
     """An abundance, quantity or uncertainty map, NaN where there is no data.
 
-    ``outside`` (optional, bool) marks pixels outside the calibration range; they are hatched.
+    ``outside`` (optional, bool) marks pixels outside the calibration range; they are drawn in red over the map.
     """
 
     name: str

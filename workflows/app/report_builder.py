@@ -197,7 +197,7 @@ def _is_residual(spec) -> bool:
 
 
 def _quantity_maps(name: str, store: TileStore, output: str, spec, summary: ReportSummary) -> None:
-    """A calibrated quantity, hatched outside its samples' range (the store's mask), and its uncertainty."""
+    """A calibrated quantity, drawn in red outside its samples' range (the store's mask), and its uncertainty."""
     masks = with_role(store.specs, Role.MASK)
     outside = _thumb(store, masks[0])[0] == OUTSIDE_RANGE if masks else None
     units = str(spec.attrs.get("units", ""))
