@@ -93,7 +93,8 @@ def test_changed_parameter_says_what_is_recomputed(tmp_path, capsys):
     cfg = _config(tmp_path, mnf={"method": "pca", "components": 3})
     assert main(["run", str(cfg), "--plain"]) == 0
     out = capsys.readouterr().out
-    assert "step 'pca': parameters, inputs or code changed" in out
+    # the message names the changed key with its old and new value
+    assert "step 'pca' changed since the last run (pca.components: 4 -> 3)" in out
     assert "step 'mosaic': resuming, 12 of 12" in out
 
 
@@ -184,9 +185,52 @@ def test_failed_tiles_give_nonzero_exit_and_are_listed(tmp_path):
     assert "1 tile(s) failed" in text and "sam tile (1, 0): step 'sam', tile(1, 0): boom" in text
 
 
-def test_status_of_a_non_run(tmp_path, capsys):
-    assert main(["status", str(tmp_path)]) == 2
-    assert "not a run directory" in capsys.readouterr().err
+@pytest.mark.parametrize("command", ["status", "report"])
+@pytest.mark.parametrize("where", ["empty", "missing", "file"])
+def test_status_and_report_of_a_non_run(tmp_path, capsys, command, where):
+    target = {"empty": tmp_path, "missing": tmp_path / "nowhere", "file": tmp_path / "notes.txt"}[where]
+    if where == "file":
+        target.write_text("not a run")
+    assert main([command, str(target)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("swathmill: error: ") and str(target) in err  # one line
+    assert "Traceback" not in err
+
+
+def test_help_explains_every_argument(capsys):
+    for command in ("run", "status", "demo", "report"):
+        with pytest.raises(SystemExit):
+            main([command, "--help"])
+        text = capsys.readouterr().out
+        # every argument of the sub-command has a help text, and no markup reaches the terminal
+        from swathmill.workflows.app.cli import _parser
+        sub = _parser()._subparsers._group_actions[0].choices[command]
+        for action in sub._actions:
+            assert action.help, (command, action.dest)
+        assert "``" not in text and "[bold]" not in text and ":func:" not in text
+
+
+def test_warnings_are_one_line_on_console_and_in_the_log(tmp_path, capsys):
+    import logging
+    import warnings
+
+    from swathmill.workflows.app.cli import WarningRelay
+
+    log = logging.getLogger("swathmill")
+    with WarningRelay():
+        warnings.warn("ground reference x.geojson: 1 partly_outside\n  (9 px)", UserWarning, stacklevel=1)
+        handler = logging.FileHandler(tmp_path / "run.log")
+        log.addHandler(handler)
+        log.setLevel(logging.INFO)
+        try:
+            log.info("step 'mosaic': resuming")  # the first run message writes the early warning too
+        finally:
+            log.removeHandler(handler)
+            handler.close()
+    err = capsys.readouterr().err
+    assert err == "swathmill: warning: ground reference x.geojson: 1 partly_outside (9 px)\n"
+    text = (tmp_path / "run.log").read_text()
+    assert "ground reference x.geojson: 1 partly_outside (9 px)" in text and "warnings.warn" not in text
 
 
 def test_console_script_runs(tmp_path):
@@ -248,3 +292,18 @@ def test_dashboard_must_stay_on_this_machine(tmp_path, capsys):
     assert _local_dashboard(None) == "127.0.0.1:0" and _local_dashboard("localhost:8787") == "localhost:8787"
     with pytest.raises(ValueError, match="bound to this machine"):
         _local_dashboard(":8787")
+
+
+def test_describe_changes_names_keys_inputs_and_version():
+    from swathmill.tiles.ledger import describe_changes
+
+    old = {"params": {"settings": {"threshold": 0.12, "exclude": []}}, "inputs": {"x": "mosaic/reflectance"},
+           "in_keys": {"x": "k1"}, "version": "1.0", "tile": 64}
+    new = {"params": {"settings": {"threshold": 0.10, "exclude": []}}, "inputs": {"x": "mosaic/reflectance"},
+           "in_keys": {"x": "k2"}, "version": "1.1", "tile": 64}
+    assert describe_changes("sam", old, new) == [
+        "sam.settings.threshold: 0.12 -> 0.1",
+        "input x (mosaic/reflectance) was recomputed",
+        "software version: 1.0 -> 1.1",
+    ]
+    assert describe_changes("sam", old, old) == []

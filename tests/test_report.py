@@ -143,7 +143,10 @@ def test_report_content(full_report):
                   "Calibration and regression checks", "Accuracy of the class maps", "Run time per step",
                   "Provenance"):
         assert f">{title}</h2>" in text, title
-    assert "Not in this run" not in text
+    # the synthetic summary has no source map, diagnostics, feature maps, feature-count curves or step
+    # parameters: said so
+    assert ("Not in this run: Flight line of each pixel, Unmixing diagnostics, Spectral feature maps, "
+            "Number of features and model comparison, Steps and their parameters.") in text
     assert "line_02" in text and "config_hash" in text and "17.7 s" in text
 
 
@@ -209,3 +212,92 @@ def test_report_in_headless_chromium(tmp_path, full_report):
     assert found["images"] == N_IMAGES
     assert found["decoded"] == N_IMAGES  # every embedded PNG decodes in the browser
     assert found["network"] == []  # nothing was fetched from anywhere
+
+
+class _FakeView:
+    """What :func:`step_parameters` reads of a run directory: ledger rows and fitted models."""
+
+    def __init__(self, steps: dict, models: dict):
+        self.steps = {n: {"info": info, "total": 4} for n, info in steps.items()}
+        self.models = models
+
+    def model(self, name):
+        return self.models.get(name)
+
+    def store(self, name):
+        return None
+
+
+def test_report_shows_step_parameters(tmp_path):
+    from swathmill.workflows.app.report import StepParameters  # noqa: F401 - part of the summary
+    from swathmill.workflows.app.report_builder import step_parameters
+
+    rng = np.random.default_rng(3)
+    gain = 1.0 + rng.normal(0, 0.03, (2, 20))
+    gain[0] = 1.0
+    offset = rng.normal(0, 0.002, (2, 20))
+    offset[0] = 0.0
+    view = _FakeView(
+        steps={
+            "mosaic": {"params": {"section": {"bad_bands": [[1340.0, 1460.0]], "overlap": "nearest_centre",
+                                              "resampling": "nearest", "brightness_matching": True,
+                                              "reference_line": 1, "sample_size": 1000},
+                                  "lines": [{"name": "line_a"}, {"name": "line_b"}]}},
+            "sam": {"params": {"settings": {"threshold": 0.12, "class_thresholds": {}},
+                               "names": ["clay", "salt"]}, "inputs": {"x": "mosaic/reflectance"}},
+            "svm": {"params": {"settings": {"C": [1.0, 10.0], "gamma": [0.01, 0.1], "folds": 3}},
+                    "inputs": {"x": "mnf/components"}},
+        },
+        models={
+            "mosaic": {"reference": 1, "gain": gain, "offset": offset, "summary": []},
+            "svm": {"best": {"C": 10.0, "gamma": 0.1}, "cv_score": 0.8765, "folds": 3, "scoring": "accuracy",
+                    "class_counts": {"clay": 21, "salt": 17}, "n_train": 38,
+                    "validation": {"n": 12, "overall_accuracy": 0.75}},
+        })
+    summary = ReportSummary(title="params", parameters=[step_parameters(view, n) for n in view.steps])
+    text = _without_data_uris(build_report(tmp_path, summary).read_text(encoding="utf-8"))
+    assert ">Steps and their parameters</h2>" in text
+    assert "1340–1460 nm" in text  # the bad-band window
+    assert "at most 0.12 rad" in text  # the spectral angle threshold
+    assert "chosen C = 10 and gamma = 0.1" in text and "accuracy 0.8765" in text
+    assert "clay 21, salt 17" in text and "12 validation samples" in text
+    # the gain table: mean gain per line, computed here with numpy
+    assert f"<td>line_b</td><td>{np.mean(gain[1]):.4f}</td>" in text
+    assert "<td>line_a (reference)</td><td>1.0000</td>" in text
+
+
+def test_overall_accuracy_confidence_interval():
+    from swathmill.workflows.app.report import overall_ci, render_html
+
+    # Olofsson et al. (2014), Remote Sensing of Environment 148: under simple random sampling
+    # V(OA) = OA (1 - OA) / (n - 1); the 95 % interval is OA +- 1.96 sqrt(V)
+    p, half = overall_ci(90, 100)
+    assert p == pytest.approx(0.9)
+    assert half == pytest.approx(1.96 * np.sqrt(0.9 * 0.1 / 99))
+    # the page says it, and says apart the samples of classes the map cannot produce
+    from swathmill.workflows.methods.accuracy import class_accuracy
+
+    m = np.array([[40, 2, 5], [3, 45, 5], [0, 0, 0]])
+    ca = class_accuracy(m, labels=[1, 2, 3], names=["clay", "salt", "reed"])
+    text = render_html(ReportSummary(accuracy=[AccuracyView(map_name="m", accuracy=ca, producible=["clay", "salt"])]))
+    p_all, h_all = overall_ci(85, 100)
+    assert f"{p_all:.3f} ± {h_all:.3f}" in text
+    p_can, h_can = overall_ci(85, 90)  # the 10 reed samples are left out
+    assert "10 of the 100 samples" in text and f"{p_can:.3f} ± {h_can:.3f}" in text
+
+
+def test_run_time_adds_up_every_invocation(tmp_path):
+    from swathmill.tiles.ledger import Ledger
+    from swathmill.workflows.app.report_builder import _timings
+
+    for inv, secs in (("20260101T000000-1", 160.0), ("20260101T010000-2", 1.5)):
+        led = Ledger(tmp_path / "ledger.sqlite", invocation=inv)
+        led.add_timing("mosaic", "tiles", secs)
+        led.close()
+    view = _FakeView({"mosaic": {}}, {})
+    view.dir = tmp_path
+    summary = ReportSummary()
+    _timings(view, summary)
+    (t,) = summary.timings
+    assert t.seconds == pytest.approx(161.5) and t.invocations == 2 and t.last_seconds == pytest.approx(1.5)
+    assert "20260101T000000-1, 20260101T010000-2" in summary.timing_note

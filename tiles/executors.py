@@ -6,7 +6,9 @@ on the workers. No pixel array passes through the scheduler: tasks read and writ
 """
 from __future__ import annotations
 
+import logging
 import os
+from pathlib import Path
 import traceback
 from typing import Any, Callable, Iterable, Protocol
 
@@ -89,7 +91,8 @@ class DaskExecutor:
     def __init__(self, *, client=None, address: str | None = None, cluster=None, n_workers: int | None = None,
                  threads_per_worker: int = 1, memory_limit: str | float | None = "auto",
                  dashboard_address: str | None = "127.0.0.1:0", retries: int = 2, max_in_flight: int | None = None,
-                 processes: bool = True, worker_env: dict[str, str] | None = None):
+                 processes: bool = True, worker_env: dict[str, str] | None = None,
+                 local_directory: str | None = None):
         import dask
         import distributed  # noqa: F401 - loads distributed's configuration defaults
         from distributed import Client, LocalCluster
@@ -110,6 +113,10 @@ class DaskExecutor:
                        if k not in WORKER_MALLOC_ENV}  # Dask's default, or an earlier executor's
                 env.update(WORKER_MALLOC_ENV if worker_env is None else worker_env)
                 dask.config.set({"distributed.nanny.pre-spawn-environ": env})
+                if local_directory:  # Dask's scratch space (spill files, worker folders) where the caller says
+                    Path(local_directory).mkdir(parents=True, exist_ok=True)
+                    dask.config.set({"temporary-directory": str(local_directory)})
+                    net["local_directory"] = str(local_directory)
                 cluster = LocalCluster(n_workers=n, threads_per_worker=threads_per_worker, processes=processes,
                                        memory_limit=memory_limit, dashboard_address=dashboard_address, **net)
                 self._own_cluster = cluster
@@ -219,11 +226,27 @@ class DaskExecutor:
         return result.result()
 
     def close(self) -> None:
+        """Close the client and, when this executor started it, the cluster.
+
+        Stopping workers we started is expected, so Dask's warnings while they stop (a worker process
+        "still alive after 4 seconds, killing" on a loaded machine, closed streams) are not shown; the
+        levels of Dask's loggers are restored afterwards.
+        """
+        quiet = ("distributed.nanny", "distributed.worker", "distributed.core", "distributed.comm",
+                 "distributed.batched", "distributed.scheduler", "distributed.client")
+        saved = {name: logging.getLogger(name).level for name in quiet}
+        if self._own_cluster is not None:
+            for name in quiet:
+                logging.getLogger(name).setLevel(logging.ERROR)
         try:
-            self.client.close()
+            try:
+                self.client.close()
+            finally:
+                if self._own_cluster is not None:
+                    self._own_cluster.close()
         finally:
-            if self._own_cluster is not None:
-                self._own_cluster.close()
+            for name, level in saved.items():
+                logging.getLogger(name).setLevel(level)
 
 
 def _local_dashboard(address: str | None) -> str:

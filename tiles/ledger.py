@@ -13,7 +13,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["Ledger"]
+__all__ = ["Ledger", "describe_changes"]
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS steps (name TEXT PRIMARY KEY, key TEXT NOT NULL, total INTEGER, info TEXT,
@@ -56,6 +56,11 @@ class Ledger:
     def step_key(self, name: str) -> str | None:
         row = self.db.execute("SELECT key FROM steps WHERE name=?", (name,)).fetchone()
         return row[0] if row else None
+
+    def step_info(self, name: str) -> dict | None:
+        """The information recorded with the step's current key (parameters, inputs' keys, version...)."""
+        row = self.db.execute("SELECT info FROM steps WHERE name=?", (name,)).fetchone()
+        return json.loads(row[0] or "{}") if row else None
 
     def set_step(self, name: str, key: str, total: int, info: dict) -> None:
         self.db.execute("INSERT OR REPLACE INTO steps VALUES (?,?,?,?,?)",
@@ -111,3 +116,67 @@ class Ledger:
         rows = self.db.execute("SELECT invocation, name, phase, seconds FROM timings"
                                + (" WHERE invocation=?" if invocation else ""), (invocation,) if invocation else ())
         return [dict(zip(("invocation", "name", "phase", "seconds"), r)) for r in rows]
+
+
+def _flat(value: object, prefix: str) -> dict[str, object]:
+    """Nested mappings as ``{"a.b.c": leaf}`` (lists stay leaves)."""
+    if isinstance(value, dict) and value:
+        out: dict[str, object] = {}
+        for k, v in value.items():
+            out.update(_flat(v, f"{prefix}.{k}" if prefix else str(k)))
+        return out
+    return {prefix: value}
+
+
+def _show(v: object) -> str:
+    return "(absent)" if v is _ABSENT else json.dumps(v, default=str)
+
+
+_ABSENT = object()
+
+
+def describe_changes(name: str, old: dict | None, new: dict, limit: int = 8) -> list[str]:
+    """What differs between two recorded infos of step ``name``, one short phrase per change.
+
+    Parameters are named by their dotted key with the old and new value (``sam.threshold: 0.12 -> 0.1``);
+    a changed input names the input and whether its producer's key or its source changed; a new
+    software version or a new fitted model are said as such. At most ``limit`` parameter changes are
+    listed, then how many more.
+
+    Parameters
+    ----------
+    name : str
+        The step's name, the prefix of every parameter key.
+    old, new : dict
+        The ``info`` recorded by the run for the previous and the current key (``params``, ``inputs``,
+        ``in_keys``, ``version``, ``model``, ``tile``).
+    limit : int
+        Most parameter changes listed one by one.
+
+    Returns
+    -------
+    list of str
+        Empty when nothing recorded differs (the key changed for a reason the info does not hold,
+        e.g. the kernel's code).
+    """
+    old = old or {}
+    changes: list[str] = []
+    po, pn = _flat(old.get("params", {}), name), _flat(new.get("params", {}), name)
+    diff = [k for k in sorted(set(po) | set(pn)) if po.get(k, _ABSENT) != pn.get(k, _ABSENT)]
+    for k in diff[:limit]:
+        changes.append(f"{k}: {_show(po.get(k, _ABSENT))} -> {_show(pn.get(k, _ABSENT))}")
+    if len(diff) > limit:
+        changes.append(f"and {len(diff) - limit} more parameters")
+    io, inn = old.get("inputs", {}) or {}, new.get("inputs", {}) or {}
+    ko, kn = old.get("in_keys", {}) or {}, new.get("in_keys", {}) or {}
+    for alias in sorted(set(io) | set(inn)):
+        if io.get(alias) != inn.get(alias):
+            changes.append(f"input {alias}: {io.get(alias, '(absent)')} -> {inn.get(alias, '(absent)')}")
+        elif ko.get(alias) != kn.get(alias):
+            changes.append(f"input {alias} ({inn.get(alias)}) was recomputed")
+    for field, what in (("version", "software version"), ("tile", "tile size")):
+        if old.get(field) != new.get(field):
+            changes.append(f"{what}: {old.get(field)} -> {new.get(field)}")
+    if not changes and old.get("model") != new.get("model"):
+        changes.append("its fitted model changed")
+    return changes

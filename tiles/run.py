@@ -22,7 +22,7 @@ from typing import Any, Mapping, Protocol, Sequence
 from .. import __version__
 from .executors import Executor, LocalExecutor
 from .grid import Grid, Tiling
-from .ledger import Ledger
+from .ledger import Ledger, describe_changes
 from .lock import RunLock
 from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
@@ -305,7 +305,8 @@ class Run:
             model_hash = save_model(step.fit.finalize(acc, step.params, sp.meta), mbase)
             state = "fitted"
             self.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
-            self._say(result, f"step {step.name!r}: fitted on {len(tasks)} tiles, model {mbase.name}")
+            self._say(result, f"step {step.name!r}: model fitted" + (f" on {len(tasks)} tiles" if tasks else "")
+                      + f", saved as {mbase.name}")
         return _Fitted(load_model(str(mbase)), str(mbase), model_hash, state)
 
     def _open_store(self, step: Step, sp: "_StepPlan", key: str, outputs: dict[str, OutputSpec],
@@ -315,7 +316,10 @@ class Run:
         prev = self.ledger.step_key(step.name)
         if prev is not None and prev != key:
             report.invalidated = f"{prev} -> {key}"
-            self._say(result, f"step {step.name!r}: parameters, inputs or code changed since the last run; "
+            why = describe_changes(step.name, self.ledger.step_info(step.name), {
+                "params": params_dump(step.params), "inputs": dict(step.inputs), "in_keys": sp.in_keys,
+                "model": fitted.hash, "tile": self.options.tile, "version": sp.version})
+            self._say(result, f"step {step.name!r} changed since the last run ({'; '.join(why) or 'its code'}); "
                               "its tiles and products are recomputed (and so are the steps that read it)")
             self.ledger.forget_step(step.name)
             for p in self.products_dir.glob(f"{step.name}__*"):

@@ -1,43 +1,144 @@
 """The command line: ``swathmill run CONFIG``, ``status RUN_DIR``, ``demo [DIR]``, ``report RUN_DIR``.
 
 Exit codes: 0 every tile of every step finished; 1 some tiles failed (listed; finished work kept);
-2 bad input (configuration, files); 3 the run directory is in use by another process.
+2 bad input (configuration, files, a folder that is not a run directory); 3 the run directory is in
+use by another process.
+
+Python warnings (for example about ground-reference samples outside the mosaic) are printed as one
+line each on the console and written to the run's log file (``logs/<invocation>.log``).
 """
 from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
+import warnings
 from pathlib import Path
 
 from swathmill.errors import EXIT_FAILED, EXIT_INPUT, EXIT_OK, SwathmillError
 
-__all__ = ["main"]
+__all__ = ["main", "WarningRelay"]
 
+EPILOG = """\
+exit codes: 0 finished; 1 some tiles failed (finished tiles are kept, run the same command again to
+resume); 2 bad input; 3 the run directory is in use by another process.
+"""
+
+
+class WarningRelay(logging.Handler):
+    """Python warnings as one clean line each: on the console, and in the run's log file.
+
+    Installed as :func:`warnings.showwarning`. A warning raised before the run directory's log file is
+    open (while the plan is built) is kept and written to the log as soon as the run logs its first
+    message.
+    """
+
+    def __init__(self, stream=None):
+        super().__init__(level=logging.DEBUG)
+        self.stream = stream
+        self.pending: list[logging.LogRecord] = []
+        self.log = logging.getLogger("swathmill")
+
+    @staticmethod
+    def one_line(message: object, category: type | None = None) -> str:
+        text = " ".join(str(message).split())
+        kind = getattr(category, "__name__", "Warning")
+        return text if kind in ("UserWarning", "Warning") else f"{text} ({kind})"
+
+    def showwarning(self, message, category, filename, lineno, file=None, line=None) -> None:
+        text = self.one_line(message, category)
+        print(f"swathmill: warning: {text}", file=self.stream or sys.stderr, flush=True)
+        record = self.log.makeRecord(self.log.name, logging.WARNING, filename, lineno, text, None, None)
+        if self._files():
+            for h in self._files():
+                h.handle(record)
+        else:
+            self.pending.append(record)
+
+    def _files(self) -> list[logging.Handler]:
+        return [h for h in self.log.handlers if isinstance(h, logging.FileHandler)]
+
+    def emit(self, record: logging.LogRecord) -> None:  # any run message: flush the early warnings
+        files = self._files()
+        if files and self.pending:
+            early, self.pending = self.pending, []
+            for r in early:
+                for h in files:
+                    h.handle(r)
+
+    def __enter__(self) -> "WarningRelay":
+        self._saved = warnings.showwarning
+        warnings.showwarning = self.showwarning
+        self.log.addHandler(self)
+        return self
+
+    def __exit__(self, *exc) -> None:
+        warnings.showwarning = self._saved
+        self.log.removeHandler(self)
 
 
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="swathmill", description=__doc__.splitlines()[0])
+    p = argparse.ArgumentParser(prog="swathmill", description=__doc__.splitlines()[0].replace("``", ""),
+                                epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--version", action="store_true", help="print the version and exit")
-    sub = p.add_subparsers(dest="command")
-    r = sub.add_parser("run", help="run or resume the run a YAML configuration describes")
-    r.add_argument("config", type=Path)
-    r.add_argument("--executor", choices=["local", "dask", "jobqueue"], help="override execution.executor")
-    r.add_argument("--workers", type=int, help="override execution.workers")
-    r.add_argument("--address", help="override execution.address (an existing Dask scheduler)")
-    r.add_argument("--plain", action="store_true", help="plain progress lines instead of bars")
-    s = sub.add_parser("status", help="tiles done, pending and failed per step of a run directory")
-    s.add_argument("run_dir", type=Path)
-    s.add_argument("--json", action="store_true", help="machine-readable output")
-    d = sub.add_parser("demo", help="write the invented demo scenario and its configuration into DIR, then run it")
-    d.add_argument("dir", type=Path, nargs="?", default=Path("swathmill-demo"))
-    d.add_argument("--size", choices=["small", "medium", "large"], default="small")
-    d.add_argument("--seed", type=int, default=7)
-    d.add_argument("--executor", choices=["local", "dask"], default=None)
-    d.add_argument("--plain", action="store_true")
-    rp = sub.add_parser("report", help="rebuild the HTML report of a finished or partial run")
-    rp.add_argument("run_dir", type=Path)
+    sub = p.add_subparsers(dest="command", metavar="COMMAND",
+                           help="one of: run, status, demo, report (swathmill COMMAND --help for its arguments)")
+
+    r = sub.add_parser("run", help="run or resume the run a YAML configuration describes",
+                       description="Run the steps a YAML configuration describes, or resume them: tiles already "
+                                   "finished are kept, steps whose parameters or inputs changed are recomputed.",
+                       epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    r.add_argument("config", type=Path, help="the run's YAML configuration file (see configs/example-campaign.yaml)")
+    r.add_argument("--executor", choices=["local", "dask", "jobqueue"],
+                   help="where tiles are computed, instead of the configuration's execution.executor: local (one "
+                        "process), dask (worker processes on this machine or an existing scheduler), jobqueue "
+                        "(workers submitted to a batch scheduler)")
+    r.add_argument("--workers", type=int, help="number of Dask worker processes, instead of execution.workers")
+    r.add_argument("--address", help="address of a running Dask scheduler to use (e.g. tcp://127.0.0.1:8786), "
+                                     "instead of execution.address; implies --executor dask")
+    r.add_argument("--plain", action="store_true",
+                   help="print progress as plain lines (for logs and batch jobs) instead of progress bars")
+
+    s = sub.add_parser("status", help="tiles done, pending and failed per step of a run directory",
+                       description="Tiles done, pending and failed per step of a run directory, and the error "
+                                   "of each failed tile. Exit code 0 when every step is finished, 1 otherwise, "
+                                   "2 when the folder is not a run directory.")
+    s.add_argument("run_dir", type=Path, help="the run directory (the configuration's run_dir)")
+    s.add_argument("--json", action="store_true", help="print the status as JSON instead of a table")
+
+    d = sub.add_parser("demo", help="write the invented demo scenario and its configuration into DIR, then run it",
+                       description="Write an invented demo campaign (flight lines, spectral library, ground "
+                                   "reference of the fictional site Corrowan Playa) and its configuration "
+                                   "DIR/demo.yaml, then run it; the run directory is DIR/run.")
+    d.add_argument("dir", type=Path, nargs="?", default=Path("swathmill-demo"),
+                   help="folder to write the demo into (default: ./swathmill-demo)")
+    d.add_argument("--size", choices=["small", "medium", "large"], default="small",
+                   help="size of the invented scenes: small (a minute or two), medium, large (default: small)")
+    d.add_argument("--seed", type=int, default=7, help="seed of the random scene generator (default: 7)")
+    d.add_argument("--executor", choices=["local", "dask"], default=None,
+                   help="local (one process) or dask (worker processes; the default)")
+    d.add_argument("--plain", action="store_true", help="print progress as plain lines instead of progress bars")
+
+    rp = sub.add_parser("report", help="rebuild the HTML report of a finished or partial run",
+                        description="Rebuild RUN_DIR/report.html from what the run directory holds (a partial run "
+                                    "gets a report of its finished steps). Exit code 2 when the folder is not a "
+                                    "run directory.")
+    rp.add_argument("run_dir", type=Path, help="the run directory (the configuration's run_dir)")
     return p
+
+
+def _not_a_run(run_dir: Path) -> str | None:
+    """Why ``run_dir`` is not a run directory (None when it is one)."""
+    run_dir = Path(run_dir)
+    if not run_dir.exists():
+        return f"{run_dir} does not exist"
+    if not run_dir.is_dir():
+        return f"{run_dir} is not a run directory (it is a file)"
+    missing = [n for n in ("ledger.sqlite", "config.resolved.json") if not (run_dir / n).is_file()]
+    if missing:
+        return f"{run_dir} is not a run directory (no {' or '.join(missing)} in it)"
+    return None
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -49,6 +150,11 @@ def main(argv: list[str] | None = None) -> int:
     if args.command is None:
         _parser().print_help()
         return EXIT_INPUT
+    with WarningRelay():
+        return _command(args)
+
+
+def _command(args: argparse.Namespace) -> int:
     from swathmill.workflows.app.pipeline import run_config
     try:
         if args.command == "run":
@@ -60,6 +166,10 @@ def main(argv: list[str] | None = None) -> int:
             from swathmill.workflows.app.demo import run_demo
             return run_demo(args.dir, size=args.size, seed=args.seed, executor=args.executor, plain=args.plain)
         if args.command == "report":
+            why = _not_a_run(args.run_dir)
+            if why:
+                print(f"swathmill: error: {why}", file=sys.stderr)
+                return EXIT_INPUT
             from swathmill.workflows.app.pipeline import rebuild_report
             path = rebuild_report(args.run_dir)
             print(f"report: {path}")
@@ -73,8 +183,9 @@ def main(argv: list[str] | None = None) -> int:
 def _status(run_dir: Path, as_json: bool) -> int:
     from swathmill.tiles.run import run_status
 
-    if not (Path(run_dir) / "ledger.sqlite").is_file():
-        print(f"swathmill: error: {run_dir} is not a run directory (no ledger.sqlite)", file=sys.stderr)
+    why = _not_a_run(run_dir)
+    if why:
+        print(f"swathmill: error: {why}", file=sys.stderr)
         return EXIT_INPUT
     rows = run_status(run_dir)
     if as_json:
@@ -92,7 +203,7 @@ def _status(run_dir: Path, as_json: bool) -> int:
         con.print(t)
         for r in rows:
             for tile, err in r["errors"].items():
-                con.print(f"  {r['step']} tile ({tile}): {err}", highlight=False)
+                con.print(f"  {r['step']} tile ({tile}): {err}", highlight=False, markup=False)
     incomplete = any(r["pending"] or r["failed"] for r in rows)
     return EXIT_FAILED if incomplete else EXIT_OK
 

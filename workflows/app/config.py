@@ -8,7 +8,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 from pathlib import Path
-from typing import Any, Literal, Mapping
+from typing import Any, Literal
 
 import yaml
 

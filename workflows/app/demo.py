@@ -80,7 +80,8 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
 HEADER = """\
 # swathmill demo configuration: the invented Corrowan Playa campaign (all data made up).
 # Rerun or resume:  swathmill run {path}
-# Every key is documented in the README (Configuration) and in configs/example-campaign.yaml.
+# Every key is documented in configs/example-campaign.yaml (one comment per key) and in the README
+# (section "Running your own campaign").
 """
 
 
@@ -105,8 +106,16 @@ def run_demo(root: Path, size: str = "small", seed: int = 7, executor: str | Non
     path = write_demo(root, size, seed, executor)
     print(f"configuration: {path}", flush=True)
     code = run_config(path, plain=plain)
-    if code == 0:
-        print(f"rerun or resume by hand: swathmill run {path}")
+    exe = Path(sys.argv[0]).resolve() if Path(sys.argv[0]).name == "swathmill" else None
+    run_dir = path.parent / "run"
+    print("")
+    print(f"report: {run_dir / 'report.html'}")
+    print("to run swathmill again, activate its environment first"
+          + (f" (source {exe.parent / 'activate'})" if exe and (exe.parent / "activate").is_file() else "")
+          + ", or give its full path:")
+    print(f"  {exe or 'swathmill'} run {path}" + ("" if code == 0 else "   # resume what did not finish"))
+    print(f"  {exe or 'swathmill'} status {run_dir}")
+    print(f"  {exe or 'swathmill'} report {run_dir}")
     return code
 
 

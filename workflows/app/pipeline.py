@@ -290,7 +290,7 @@ def build_steps(cfg: RunConfig, base: Path) -> list[Step]:
     return build_plan(cfg, base).steps
 
 
-def _executor(ex: ExecutionConfig):
+def _executor(ex: ExecutionConfig, scratch: Path | None = None):
     if ex.executor == "local":
         return make_executor("local", retries=0)
     if ex.executor == "dask":
@@ -299,7 +299,8 @@ def _executor(ex: ExecutionConfig):
         if ex.address:
             opts["address"] = ex.address
         else:
-            opts.update(n_workers=ex.workers, memory_limit=ex.memory_limit, dashboard_address=ex.dashboard)
+            opts.update(n_workers=ex.workers, memory_limit=ex.memory_limit, dashboard_address=ex.dashboard,
+                        local_directory=str(scratch) if scratch else None)
         return make_executor("dask", **opts)
     jq = ex.jobqueue.model_dump(exclude_none=True)
     return make_executor("jobqueue", retries=ex.retries, **jq)
@@ -334,7 +335,7 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
             plan.write(run.dir / "plan.json")
             if plan.legend is not None:
                 plan.legend.write_csv(run.dir / LEGEND_FILE)
-            ex = _executor(cfg.execution)
+            ex = _executor(cfg.execution, run.dir / "dask-scratch")  # Dask's scratch space inside the run
             try:
                 if getattr(ex, "dashboard", None):
                     progress.message(f"dashboard: {ex.dashboard}")

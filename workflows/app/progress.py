@@ -1,4 +1,7 @@
-"""Progress display: rich bars on a terminal (tiles done of total, rate, ETA), plain lines elsewhere."""
+"""Progress display: rich bars on a terminal (tiles done of total, rate, ETA), plain lines elsewhere.
+
+A phase with nothing to go over (a model fitted from its configuration alone) shows nothing.
+"""
 from __future__ import annotations
 
 import sys
@@ -19,6 +22,8 @@ class PlainProgress:
 
     def start(self, step, total, done, phase="tiles"):
         self.state[step] = [total, done, time.perf_counter(), phase, done]
+        if total == 0:  # a phase with nothing to go over (a model fitted from its configuration alone)
+            return
         self._p(f"[{step}] {phase}: {done}/{total} already done" if done else f"[{step}] {phase}: {total} to do")
 
     def advance(self, step, n=1):
@@ -33,7 +38,7 @@ class PlainProgress:
 
     def end(self, step):
         st = self.state.pop(step, None)
-        if st:
+        if st and st[0]:
             self._p(f"[{step}] {st[3]}: finished in {time.perf_counter() - st[2]:.1f}s")
 
     def message(self, text):
@@ -57,10 +62,14 @@ class RichProgress:
         self.tasks: dict[str, tuple[int, float, int]] = {}
 
     def start(self, step, total, done, phase="tiles"):
+        if total == 0:
+            return
         tid = self.bar.add_task(f"{step} {phase}", total=total, completed=done, rate="")
         self.tasks[step] = (tid, time.perf_counter(), done)
 
     def advance(self, step, n=1):
+        if step not in self.tasks:
+            return
         tid, t0, d0 = self.tasks[step]
         self.bar.advance(tid, n)
         done = self.bar.tasks[[t.id for t in self.bar.tasks].index(tid)].completed
@@ -70,7 +79,7 @@ class RichProgress:
         self.tasks.pop(step, None)
 
     def message(self, text):
-        self.console.print(text, highlight=False)
+        self.console.print(text, highlight=False, markup=False)
 
     def close(self):
         self.bar.stop()

@@ -45,7 +45,10 @@ __all__ = [
     "AccuracyView",
     "StepTiming",
     "model_choice_html",
+    "LineGains",
+    "StepParameters",
     "ReportSummary",
+    "overall_ci",
     "render_html",
     "build_report",
 ]
@@ -123,24 +126,26 @@ class ClassMapView:
     extent: Extent | None = None
     nodata: int | None = None
     note: str = ""
+    step: str = ""
 
 
 @dataclass
 class ContinuousMapView:
     """An abundance, quantity or uncertainty map, NaN where there is no data.
 
-    ``outside`` (optional, bool) marks pixels outside the calibration range; they are hatched.
+    ``outside`` (optional, bool) marks pixels outside the calibration range; they are drawn in red over the map.
     """
 
     name: str
     values: np.ndarray
     units: str = ""
-    kind: Literal["abundance", "quantity", "uncertainty", "other"] = "quantity"
+    kind: Literal["abundance", "quantity", "uncertainty", "diagnostic", "feature", "other"] = "quantity"
     vmin: float | None = None
     vmax: float | None = None
     extent: Extent | None = None
     outside: np.ndarray | None = None
     note: str = ""
+    step: str = ""
 
 
 @dataclass
@@ -191,6 +196,8 @@ class AccuracyView:
     accuracy: ClassAccuracy
     areas: AreaEstimate | None = None
     note: str = ""
+    producible: Sequence[str] | None = None
+    """Classes the map can produce (None: all of the matrix's classes)."""
 
 
 @dataclass
@@ -202,6 +209,31 @@ class StepTiming:
     phase: str = ""
     tiles: int | None = None
     state: str = ""
+    invocations: int = 1
+    last_seconds: float | None = None
+    """Seconds of the latest invocation alone (``seconds`` adds up every invocation)."""
+
+
+@dataclass
+class LineGains:
+    """Brightness matching of the flight lines: per line and band ``gain`` and ``offset``
+    (reflectance of the line -> reflectance of the reference line), at ``wavelengths`` (nm)."""
+
+    names: Sequence[str]
+    wavelengths: np.ndarray
+    gain: np.ndarray
+    offset: np.ndarray
+    reference: str = ""
+
+
+@dataclass
+class StepParameters:
+    """A step's parameters in plain words (``sentences``) and as a table of (key, value) rows."""
+
+    step: str
+    sentences: list[str] = field(default_factory=list)
+    table: list[tuple[str, str]] = field(default_factory=list)
+    gains: LineGains | None = None
 
 
 @dataclass
@@ -220,6 +252,10 @@ class ReportSummary:
     scatters: list[ScatterView] = field(default_factory=list)
     accuracy: list[AccuracyView] = field(default_factory=list)
     timings: list[StepTiming] = field(default_factory=list)
+    timing_note: str = ""
+    parameters: list[StepParameters] = field(default_factory=list)
+    crs_unit: str = ""
+    """Unit of the map coordinates (e.g. "metre"): axis labels and the scale bar."""
     provenance: Mapping[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     caution: str = CAUTION
@@ -241,6 +277,14 @@ def _figure(w: float = 7.0, h: float = 4.5):
     from matplotlib.figure import Figure
 
     return Figure(figsize=(w, h), dpi=100, layout="constrained")
+
+
+def _with_legend_axes(fig, ratio: float = 0.3):
+    """A main axes and, on its right, an empty axes holding the legend (the layout keeps both whole)."""
+    gs = fig.add_gridspec(1, 2, width_ratios=[1.0, ratio])
+    ax, lax = fig.add_subplot(gs[0]), fig.add_subplot(gs[1])
+    lax.axis("off")
+    return ax, lax
 
 
 def _png(fig) -> str:
@@ -278,14 +322,64 @@ def _stretch(rgb: np.ndarray, lo: float, hi: float) -> np.ndarray:
     return out
 
 
+_CRS_UNIT = {"unit": ""}
+"""Unit of the map coordinates of the report being drawn (set by :func:`render_html`)."""
+
+_METRES = {"metre": 1.0, "meter": 1.0, "m": 1.0, "US survey foot": 0.3048006096, "foot": 0.3048}
+
+
+def _nice_length(span: float) -> float:
+    """A round length (1, 2 or 5 times a power of ten) near a fifth of ``span``."""
+    target = span / 5
+    if target <= 0:
+        return 0.0
+    p = 10 ** np.floor(np.log10(target))
+    return float(min((m * p for m in (1, 2, 5, 10)), key=lambda v: abs(v - target)))
+
+
+def _scale_bar(ax, extent: Extent) -> None:
+    """A black and white bar in the lower left corner, its length in metres or kilometres."""
+    to_m = _METRES.get(_CRS_UNIT["unit"])
+    if to_m is None:
+        return
+    from matplotlib.patches import Rectangle
+
+    left, right, bottom, top = extent
+    metres = _nice_length(abs(right - left) * to_m)
+    if metres <= 0:
+        return
+    length = metres / to_m
+    x0 = left + 0.05 * (right - left)
+    y0 = bottom + 0.06 * (top - bottom)
+    h = 0.012 * abs(top - bottom)
+    ax.add_patch(Rectangle(
+        (x0 - 0.01 * (right - left), y0 - 1.5 * h), length + 0.02 * (right - left), 5.5 * h,
+        facecolor="white", alpha=0.8, lw=0))
+    ax.add_patch(Rectangle(
+        (x0, y0), length / 2, h, facecolor="black", edgecolor="black", lw=0.8))
+    ax.add_patch(Rectangle(
+        (x0 + length / 2, y0), length / 2, h, facecolor="white", edgecolor="black", lw=0.8))
+    label = f"{metres / 1000:g} km" if metres >= 1000 else f"{metres:g} m"
+    ax.text(x0 + length / 2, y0 + 1.6 * h, label, ha="center", va="bottom", fontsize=8)
+
+
 def _axes_labels(ax, extent: Extent | None) -> None:
+    """Axis labels with the unit of the map's CRS, plain tick labels, and a scale bar."""
     if extent is None:
-        ax.set_xlabel("column")
-        ax.set_ylabel("row")
-    else:
-        ax.set_xlabel("x")
-        ax.set_ylabel("y")
-        ax.ticklabel_format(useOffset=False, style="plain")
+        ax.set_xlabel("column (pixels)")
+        ax.set_ylabel("row (pixels)")
+        return
+    unit = _CRS_UNIT["unit"]
+    geographic = unit.startswith("degree")
+    u = f" ({unit})" if unit else ""
+    ax.set_xlabel(("longitude" if geographic else "easting") + u)
+    ax.set_ylabel(("latitude" if geographic else "northing") + u)
+    ax.ticklabel_format(useOffset=False, style="plain")
+    for lab in ax.get_xticklabels():
+        lab.set_rotation(30)
+        lab.set_ha("right")
+    ax.tick_params(labelsize=8)
+    _scale_bar(ax, extent)
 
 
 def _imshow_extent(shape: tuple[int, int], extent: Extent | None, step: int) -> Extent:
@@ -369,7 +463,7 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
     grey = tuple(np.array(UNCLASSIFIED_RGB) / 255)
     cmap = ListedColormap([(1, 1, 1), grey] + [tuple(np.array(c[:3]) / 255) for c in colors[:n]])
     fig = _figure(7.5, 6)
-    ax = fig.add_subplot()
+    ax, lax = _with_legend_axes(fig)
     ax.imshow(img, cmap=cmap, vmin=-0.5, vmax=n + 1.5, extent=_imshow_extent(img.shape, v.extent, step),
               interpolation="nearest")
     counts = np.bincount(img.ravel(), minlength=n + 2)
@@ -379,7 +473,7 @@ def _fig_classmap(v: ClassMapView, max_pixels: int) -> str:
         handles.append(Patch(facecolor=grey, edgecolor="black", lw=0.5, label="0 unclassified"))
     if counts[0]:
         handles.append(Patch(facecolor="white", edgecolor="black", lw=0.5, label="no data (outside the mosaic)"))
-    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
+    lax.legend(handles=handles, loc="upper left", fontsize=8, frameon=False)  # in its own axes: never clipped
     _axes_labels(ax, v.extent)
     ax.set_title(v.name)
     return _img(fig, f"class map {v.name}")
@@ -422,7 +516,7 @@ def _fig_continuous(v: ContinuousMapView, max_pixels: int) -> str:
 
 def _fig_spectra(v: SpectraView) -> str:
     fig = _figure(7.5, 4.5)
-    ax = fig.add_subplot()
+    ax, lax = _with_legend_axes(fig)
     wl = np.asarray(v.wavelengths, dtype=float)
     for k, (name, s) in enumerate(v.spectra.items()):
         ax.plot(wl, np.asarray(s, dtype=float), lw=1.3, label=name,
@@ -432,7 +526,7 @@ def _fig_spectra(v: SpectraView) -> str:
     ax.set_title(v.title)
     ax.grid(alpha=0.3)
     if v.spectra:
-        ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+        lax.legend(*ax.get_legend_handles_labels(), fontsize=8, loc="upper left", frameon=False)
     return _img(fig, v.title)
 
 
@@ -492,6 +586,44 @@ def _fig_confusion(v: AccuracyView) -> str:
     return _img(fig, f"confusion matrix {v.map_name}")
 
 
+def _fig_gains(g: LineGains) -> str:
+    """Gain and offset of each line against wavelength (the reference line is 1 and 0)."""
+    fig = _figure(8, 3.6)
+    gs = fig.add_gridspec(1, 3, width_ratios=[4, 4, 1.6])
+    ax1, ax2, lax = fig.add_subplot(gs[0]), fig.add_subplot(gs[1]), fig.add_subplot(gs[2])
+    lax.axis("off")
+    wl = np.asarray(g.wavelengths, dtype=float)
+    gain, offset = np.atleast_2d(np.asarray(g.gain, float)), np.atleast_2d(np.asarray(g.offset, float))
+    x = wl if wl.size == gain.shape[1] else np.arange(1, gain.shape[1] + 1)
+    for k, name in enumerate(g.names):
+        color = np.array(_DEFAULT_COLORS[k % len(_DEFAULT_COLORS)]) / 255
+        ax1.plot(x, gain[k], lw=1.2, color=color, label=name)
+        ax2.plot(x, offset[k], lw=1.2, color=color, label=name)
+    for ax, what in ((ax1, "gain"), (ax2, "offset (reflectance)")):
+        ax.set_xlabel("wavelength (nm)" if x is wl else "band")
+        ax.set_ylabel(what)
+        ax.grid(alpha=0.3)
+        ax.tick_params(labelsize=8)
+    ax1.set_title("brightness gain per line", fontsize=10)
+    ax2.set_title("brightness offset per line", fontsize=10)
+    lax.legend(*ax2.get_legend_handles_labels(), fontsize=7, loc="upper left", frameon=False)
+    return _img(fig, "brightness gains and offsets per flight line")
+
+
+def overall_ci(correct: float, n: int, z: float = 1.96) -> tuple[float, float]:
+    """Sample-based overall accuracy and the half-width of its confidence interval.
+
+    Under simple random sampling the variance of the proportion correct is p (1 - p) / (n - 1)
+    (Olofsson et al. 2014, Remote Sensing of Environment 148, eq. 5 with one stratum); the interval is
+    ``p ± z * sqrt(var)``, z = 1.96 for 95 %.
+    """
+    if n <= 0:
+        return float("nan"), float("nan")
+    p = correct / n
+    var = p * (1 - p) / (n - 1) if n > 1 else float("nan")
+    return p, z * float(np.sqrt(var))
+
+
 def _fig_timings(ts: Sequence[StepTiming]) -> str:
     labels = [f"{t.step} {t.phase}".strip() for t in ts]
     secs = [float(t.seconds) for t in ts]
@@ -522,7 +654,8 @@ th,td{border:1px solid #cfd8e3;padding:.25em .6em;text-align:right}
 th:first-child,td:first-child{text-align:left}
 thead th{background:#eef3f8}
 img{max-width:100%;height:auto;display:block;margin:.4em 0 1em}
-.muted{color:#6b7785}.grid{display:flex;flex-wrap:wrap;gap:1em}.grid>div{flex:1 1 420px}
+.params{background:#f3f6f9;border-left:4px solid #9fb3c8;padding:.4em .8em}
+details{margin:.3em 0 1em}.muted{color:#6b7785}.grid{display:flex;flex-wrap:wrap;gap:1em}.grid>div{flex:1 1 420px}
 nav ul{columns:2;font-size:.95em}code{background:#f1f4f7;padding:0 .25em}
 """
 
@@ -570,10 +703,26 @@ def _accuracy_html(v: AccuracyView) -> str:
     parts = [f"<h3>{_e(v.map_name)}</h3>"]
     if v.note:
         parts.append(f"<p>{_e(v.note)}</p>")
+    oa, ci = overall_ci(float(np.trace(a.matrix)), a.n)
     parts.append(
-        f"<p>{a.n} validation samples. Overall accuracy <b>{a.overall:.3f}</b>; "
-        f"kappa {_num(a.kappa, 3)} (standard error {_num(a.kappa_se, 3)}). Sample-based figures "
+        f"<p>{a.n} validation samples. Overall accuracy <b>{_pm(oa, ci)}</b> (± the 95% confidence "
+        f"interval); kappa {_num(a.kappa, 3)} (standard error {_num(a.kappa_se, 3)}). Sample-based figures "
         f"(each sample counts once, whatever the area of its class):</p>")
+    if v.producible is not None:
+        can = set(v.producible)
+        ref_counts = np.asarray(a.matrix).sum(0)
+        cannot = [(nm, int(ref_counts[i])) for i, nm in enumerate(a.names) if nm not in can and ref_counts[i] > 0]
+        if cannot:
+            keep = [i for i, nm in enumerate(a.names) if nm in can]
+            sub = np.asarray(a.matrix)[np.ix_(keep, keep)]
+            n_sub = int(np.asarray(a.matrix)[:, keep].sum())
+            oa2, ci2 = overall_ci(float(np.trace(sub)), n_sub)
+            parts.append(
+                f"<p><b>Classes this map cannot produce.</b> {sum(c for _, c in cannot)} of the {a.n} samples "
+                f"belong to reference classes the method was not given ("
+                + _e(", ".join(f"{nm}: {c}" for nm, c in cannot))
+                + f"); they count as errors in the overall accuracy above. Over the {n_sub} samples of the "
+                  f"classes it can produce, overall accuracy is <b>{_pm(oa2, ci2)}</b>.</p>")
     parts.append(_fig_confusion(v))
     rows = [[_e(nm), str(int(a.matrix[i].sum())), str(int(a.matrix[:, i].sum())), _num(a.users[i], 3),
              _num(a.producers[i], 3), _num(a.f1[i], 3)] for i, nm in enumerate(a.names)]
@@ -710,6 +859,7 @@ def _section(anchor: str, title: str, body: str) -> str:
 def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
     """The report page as a string (see :func:`build_report`)."""
     s = summary
+    _CRS_UNIT["unit"] = s.crs_unit
     created = s.created or datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
     sections: list[tuple[str, str, str]] = []
     missing: list[str] = []
@@ -744,15 +894,31 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
         body = "\n".join(parts)
     add("inputs", "Inputs and flight-line footprints", body)
     add("quicklook", "True-colour quicklook", _fig_quicklook(s.quicklook, max_pixels) if s.quicklook else None)
-    add("mnf", "MNF eigenvalues", "\n".join(_fig_eigen(c) for c in s.eigenvalues) or None)
-    add("classes", "Class maps", "\n".join(
-        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_classmap(v, max_pixels) for v in s.class_maps) or None)
-    ab = [v for v in s.continuous_maps if v.kind == "abundance"]
-    qt = [v for v in s.continuous_maps if v.kind != "abundance"]
-    add("abundance", "Abundance maps", "\n".join(
-        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_continuous(v, max_pixels) for v in ab) or None)
-    add("quantity", "Quantity maps", "\n".join(
-        (f"<p>{_e(v.note)}</p>" if v.note else "") + _fig_continuous(v, max_pixels) for v in qt) or None)
+    add("mnf", "MNF eigenvalues", "\n".join(
+        "".join(f'<p class="params">{" ".join(_e(t) for t in p.sentences)}</p>' for p in s.parameters
+                if p.sentences and f"({p.step})" in c.title) + _fig_eigen(c) for c in s.eigenvalues) or None)
+    params = {p.step: p for p in s.parameters}
+
+    def maps(views, fig) -> str | None:
+        shown: set[str] = set()
+        out = []
+        for v in views:
+            if v.step and v.step not in shown and v.step in params and params[v.step].sentences:
+                shown.add(v.step)
+                out.append(f'<p class="params"><b>{_e(v.step)}</b>: '
+                           + " ".join(_e(t) for t in params[v.step].sentences)
+                           + f' <a href="#params-{_e(v.step)}">(all parameters)</a></p>')
+            out.append((f"<p>{_e(v.note)}</p>" if v.note else "") + fig(v, max_pixels))
+        return "\n".join(out) or None
+
+    src = [v for v in s.class_maps if v.step == "mosaic"]
+    add("source", "Flight line of each pixel", maps(src, _fig_classmap))
+    add("classes", "Class maps", maps([v for v in s.class_maps if v.step != "mosaic"], _fig_classmap))
+    by_kind = lambda *kinds: [v for v in s.continuous_maps if v.kind in kinds]  # noqa: E731
+    add("abundance", "Abundance maps", maps(by_kind("abundance"), _fig_continuous))
+    add("diagnostics", "Unmixing diagnostics", maps(by_kind("diagnostic"), _fig_continuous))
+    add("features", "Spectral feature maps", maps(by_kind("feature"), _fig_continuous))
+    add("quantity", "Quantity maps", maps(by_kind("quantity", "uncertainty", "other"), _fig_continuous))
     add("spectra", "Endmember and library spectra", "\n".join(_fig_spectra(v) for v in s.spectra) or None)
     if s.scatters:
         rows = []
@@ -770,10 +936,36 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
     add("calibration", "Calibration and regression checks", body)
     add("model-choice", "Number of features and model comparison", s.model_choice)
     add("accuracy", "Accuracy of the class maps", "\n".join(_accuracy_html(v) for v in s.accuracy) or None)
+    if s.parameters:
+        blocks = []
+        for p in s.parameters:
+            b = [f'<h3 id="params-{_e(p.step)}">{_e(p.step)}</h3>']
+            if p.sentences:
+                b.append("<ul>" + "".join(f"<li>{_e(t)}</li>" for t in p.sentences) + "</ul>")
+            if p.gains is not None:
+                g = p.gains
+                gain, off = np.atleast_2d(np.asarray(g.gain, float)), np.atleast_2d(np.asarray(g.offset, float))
+                rows = [[_e(nm) + (" (reference)" if nm == g.reference else ""),
+                         f"{np.nanmean(gain[k]):.4f}", f"{np.nanmin(gain[k]):.4f} – {np.nanmax(gain[k]):.4f}",
+                         f"{np.nanmean(off[k]):.4f}", f"{np.nanmin(off[k]):.4f} – {np.nanmax(off[k]):.4f}"]
+                        for k, nm in enumerate(g.names)]
+                b.append(_table(["flight line", "mean gain", "gain range", "mean offset", "offset range"], rows))
+                b.append(_fig_gains(g))
+            if p.table:
+                b.append("<details><summary>every parameter of this step</summary>"
+                         + _table(["parameter", "value"], [[_e(k), f"<code>{_e(v)}</code>"] for k, v in p.table])
+                         + "</details>")
+            blocks.append("\n".join(b))
+        body = "\n".join(blocks)
+    else:
+        body = None
+    add("parameters", "Steps and their parameters", body)
     if s.timings:
         total = sum(float(t.seconds) for t in s.timings)
-        body = (_table(["step", "phase", "seconds", "tiles", "state"],
-                       [[_e(t.step), _e(t.phase), _num(t.seconds, 3), _num(t.tiles), _e(t.state)] for t in s.timings])
+        body = ((f"<p>{_e(s.timing_note)}</p>" if s.timing_note else "")
+                + _table(["step", "phase", "seconds (all invocations)", "invocations", "seconds (latest)", "tiles"],
+                         [[_e(t.step), _e(t.phase), _num(t.seconds, 3), str(t.invocations),
+                           _num(t.last_seconds, 3), _num(t.tiles)] for t in s.timings])
                 + f"<p>Total {total:.1f} s.</p>" + _fig_timings(s.timings))
     else:
         body = None

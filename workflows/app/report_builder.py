@@ -14,8 +14,8 @@ from swathmill.tiles.paths import resolve
 from swathmill.tiles.store import TileStore, decode
 
 from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine,
-                                            InputsSection, Quicklook, ReportSummary, ScatterView, SpectraView,
-                                            StepTiming, build_report, model_choice_html)
+                                            InputsSection, LineGains, Quicklook, ReportSummary, ScatterView,
+                                            SpectraView, StepParameters, StepTiming, build_report, model_choice_html)
 from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, is_class_map, with_role
 from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
 from swathmill.workflows.roles import Role
@@ -96,6 +96,7 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
         summary.notes.append(f"partial run: steps not finished: {', '.join(incomplete)}; their maps are left out")
     _mosaic(view, summary)
     for name in view.steps:
+        summary.parameters.append(step_parameters(view, name))
         if not view.complete(name) or name == "mosaic":
             continue
         store = view.store(name)
@@ -126,9 +127,28 @@ def _mosaic(view: RunView, summary: ReportSummary) -> None:
         return
     summary.quicklook = _quicklook(view, mosaic)
     summary.inputs = _inputs(view, mosaic, summary.quicklook.rgb if summary.quicklook else None)
-    mm = view.model("mosaic")
-    if mm and "overlap_stats" in mm:
-        summary.notes.append(f"brightness matching: {json.dumps(mm['overlap_stats'])[:600]}")
+    summary.crs_unit = _crs_unit(mosaic.grid.crs)
+    for output in with_role(mosaic.specs, Role.SOURCE):
+        names = [ln.name for ln in summary.inputs.lines] if summary.inputs else []
+        src = _thumb(mosaic, output)[0]
+        n = max(len(names), int(np.nanmax(src)) if np.isfinite(src).any() else 0)
+        names = names + [f"line {k}" for k in range(len(names) + 1, n + 1)]
+        summary.class_maps.append(ClassMapView(
+            name="mosaic: flight line of each pixel", classes=np.nan_to_num(src, nan=0).astype(np.int32),
+            class_names=names, extent=_extent(mosaic), step="mosaic",
+            note=f"Where lines overlap, each pixel comes from one line (overlap rule: "
+                 f"{mosaic.specs[output].attrs.get('policy', 'see the parameters')}); 0 is outside every line."))
+
+
+def _crs_unit(crs: str) -> str:
+    """Unit name of the first axis of ``crs`` ("metre", "degree"...), "" when unknown."""
+    try:
+        from pyproj import CRS
+
+        axes = CRS.from_user_input(crs).axis_info
+        return str(axes[0].unit_name) if axes else ""
+    except Exception:  # noqa: BLE001 - the labels then go without a unit
+        return ""
 
 
 def _step_maps(name: str, store: TileStore, model: dict | None, summary: ReportSummary) -> None:
@@ -148,39 +168,53 @@ def _step_maps(name: str, store: TileStore, model: dict | None, summary: ReportS
             summary.class_maps.append(ClassMapView(
                 name=f"{name}/{output}", classes=np.nan_to_num(cls, nan=int(spec.nodata)).astype(np.int32),
                 class_names=list(spec.class_names), colors=[tuple(c) for c in spec.colors] if spec.colors else None,
-                extent=_extent(store), nodata=int(spec.nodata)))
+                extent=_extent(store), nodata=int(spec.nodata), step=name))
         elif spec.role == Role.ABUNDANCE:
             data = _thumb(store, output)
             for b, band in enumerate(spec.bands):
                 summary.continuous_maps.append(ContinuousMapView(
                     name=f"{name}: {band}", values=data[b], units="fraction", kind="abundance", vmin=0.0,
-                    vmax=1.0, extent=_extent(store)))
+                    vmax=1.0, extent=_extent(store), step=name))
         elif spec.role == Role.DIAGNOSTIC and has_abundance and _is_residual(spec):
             summary.continuous_maps.append(ContinuousMapView(
-                name=f"{name}: residual RMSE", values=_thumb(store, output)[0], units="reflectance",
-                kind="other", extent=_extent(store)))
+                name=f"{name}: residual RMSE of the unmixing fit", values=_thumb(store, output)[0],
+                units="reflectance", kind="diagnostic", extent=_extent(store), step=name,
+                note="A diagnostic of the fit, not a quantity: high where the endmembers do not explain the "
+                     "spectrum (a missing material, noise), colours stretched between the 2nd and 98th percentiles."))
+        elif spec.role == Role.FEATURE:
+            data = _thumb(store, output)
+            units = spec.attrs.get("units")
+            for b, band in enumerate(spec.bands):
+                u = units[b] if isinstance(units, list) and b < len(units) else (units or "")
+                summary.continuous_maps.append(ContinuousMapView(
+                    name=f"{name}: {band}", values=data[b], units=str(u), kind="feature", extent=_extent(store),
+                    step=name))
         elif spec.role == Role.QUANTITY:
             _quantity_maps(name, store, output, spec, summary)
 
 
 def _is_residual(spec) -> bool:
-    """The unmixing fit's residual: its one-band diagnostic carrying units (the abundance sum has none)."""
-    return len(spec.bands) == 1 and "units" in spec.attrs
+    """The unmixing fit's residual: its one-band continuous diagnostic (not a count or a sum of fractions)."""
+    if len(spec.bands) != 1 or spec.kind != "continuous":
+        return False
+    text = f"{spec.bands[0]} {spec.attrs.get('quantity', '')} {spec.attrs.get('long_name', '')}".lower()
+    return "rmse" in text or "residual" in text
 
 
 def _quantity_maps(name: str, store: TileStore, output: str, spec, summary: ReportSummary) -> None:
-    """A calibrated quantity, hatched outside its samples' range (the store's mask), and its uncertainty."""
+    """A calibrated quantity, drawn in red outside its samples' range (the store's mask), and its uncertainty."""
     masks = with_role(store.specs, Role.MASK)
     outside = _thumb(store, masks[0])[0] == OUTSIDE_RANGE if masks else None
     units = str(spec.attrs.get("units", ""))
     summary.continuous_maps.append(ContinuousMapView(
         name=f"{name}: {spec.bands[0]}", values=_thumb(store, output)[0], units=units, kind="quantity",
-        extent=_extent(store), outside=outside,
-        note="hatched: outside the range of the calibration samples"))
+        extent=_extent(store), outside=outside, step=name,
+        note="Drawn in red: pixels whose prediction lies outside the range of the calibration samples "
+             "(an extrapolation)."))
     for unc in with_role(store.specs, Role.UNCERTAINTY):
         summary.continuous_maps.append(ContinuousMapView(
             name=f"{name}: uncertainty (1 sigma)", values=_thumb(store, unc)[0], units=units,
-            kind="uncertainty", extent=_extent(store)))
+            kind="uncertainty", extent=_extent(store), step=name))
 
 
 def _step_models(name: str, model: dict | None, summary: ReportSummary) -> None:
@@ -243,7 +277,8 @@ def _accuracy(view: RunView, summary: ReportSummary) -> None:
                                   area_unit=e["area_unit"], labels=e["labels"], names=e["names"])
         else:
             note += f"; areas not estimated: {e.get('areas_error', '')}"
-        summary.accuracy.append(AccuracyView(map_name=ref, accuracy=ca, areas=areas, note=note))
+        summary.accuracy.append(AccuracyView(map_name=ref, accuracy=ca, areas=areas, note=note,
+                                             producible=_producible(view, ref, e["names"])))
     for ref, e in acc.get("quantity_maps", {}).items():
         mt = e["metrics"]
         summary.scatters.append(ScatterView(
@@ -259,6 +294,17 @@ def _accuracy(view: RunView, summary: ReportSummary) -> None:
             metrics={k: pooled[k] for k in ("n", "r2", "rmse", "bias") if k in pooled}))
 
 
+def _producible(view: RunView, ref: str, names: list[str]) -> list[str] | None:
+    """The classes the map ``step/output`` can produce (its class names and "unclassified")."""
+    step, _, output = ref.partition("/")
+    store = view.store(step)
+    spec = store.specs.get(output) if store is not None else None
+    if spec is None or not spec.class_names:
+        return None
+    own = set(spec.class_names) | {"unclassified"}
+    return [n for n in names if n in own]
+
+
 def _timings(view: RunView, summary: ReportSummary) -> None:
     ledger = Ledger(view.dir / "ledger.sqlite")
     try:
@@ -267,8 +313,173 @@ def _timings(view: RunView, summary: ReportSummary) -> None:
         ledger.close()
     if not rows:
         return
-    last = rows[-1]["invocation"]
+    invocations = list(dict.fromkeys(r["invocation"] for r in rows))
+    last = invocations[-1]
+    sums: dict[tuple[str, str], StepTiming] = {}
+    seen: dict[tuple[str, str], set] = {}
     for r in rows:
+        k = (r["name"], r["phase"])
+        t = sums.setdefault(k, StepTiming(step=r["name"], seconds=0.0, phase=r["phase"], invocations=0,
+                                          tiles=view.steps.get(r["name"], {}).get("total")))
+        t.seconds += float(r["seconds"])
+        seen.setdefault(k, set()).add(r["invocation"])
+        t.invocations = len(seen[k])
         if r["invocation"] == last:
-            summary.timings.append(StepTiming(step=r["name"], seconds=float(r["seconds"]), phase=r["phase"],
-                                              tiles=view.steps.get(r["name"], {}).get("total")))
+            t.last_seconds = (t.last_seconds or 0.0) + float(r["seconds"])
+    summary.timings.extend(sums.values())
+    summary.timing_note = (
+        f"Seconds add up every invocation of this run that did work: {len(invocations)} invocation(s), "
+        f"{', '.join(invocations)} (the latest last). A resumed invocation adds only the tiles it computed; "
+        "a step recomputed after a change includes the time of its earlier computations.")
+
+
+# ----------------------------------------------------------------------------------------------
+# each step's parameters in plain words
+# ----------------------------------------------------------------------------------------------
+
+def _flat(value: object, prefix: str = "") -> list[tuple[str, str]]:
+    """A parameter dump as (dotted key, short value) rows; long lists are summarised."""
+    if isinstance(value, dict):
+        rows: list[tuple[str, str]] = []
+        for k, v in value.items():
+            rows += _flat(v, f"{prefix}.{k}" if prefix else str(k))
+        return rows
+    text = json.dumps(value, default=str)
+    if len(text) > 160:
+        text = (f"{len(value)} items: " if isinstance(value, list) else "") + text[:150] + " ..."
+    return [(prefix, text)]
+
+
+def _fmt(v: object) -> str:
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    return str(v)
+
+
+def _get(d: dict | None, *path: str, default: object = None) -> object:
+    for key in path:
+        if not isinstance(d, dict) or key not in d:
+            return default
+        d = d[key]
+    return d
+
+
+def step_parameters(view: RunView, name: str) -> StepParameters:
+    """The parameters of step ``name`` in plain words, from the ledger and its fitted model.
+
+    Sentences are written for what the run recorded (thresholds, bad-band windows, brightness gains,
+    components kept and why, endmembers, the SVM's chosen C and gamma, calibration metrics); every
+    parameter also appears in the table, as the step recorded it.
+    """
+    info = view.steps.get(name, {}).get("info", {})
+    params = info.get("params") or {}
+    model = view.model(name) or {}
+    out = StepParameters(step=name, table=_flat(params))
+    say = out.sentences.append
+    section = params.get("section") if isinstance(params.get("section"), dict) else None
+    settings = params.get("settings") if isinstance(params.get("settings"), dict) else {}
+    inputs = info.get("inputs") or {}
+    if inputs:
+        say("Reads " + ", ".join(f"{v}" for v in inputs.values()) + ".")
+    if section is not None and "bad_bands" in section:  # the mosaic
+        bad = section.get("bad_bands") or []
+        say("Bands dropped as bad (water vapour, detector ends): "
+            + (", ".join(f"{a:g}–{b:g} nm" for a, b in bad) if bad else "none") + ".")
+        say(f"Overlaps: each pixel taken by the rule {section.get('overlap')!s}"
+            + (f" (blend width {section.get('blend_width')})" if section.get("overlap") == "blend" else "")
+            + f"; resampling {section.get('resampling')}.")
+        if section.get("brightness_matching"):
+            say(f"Brightness matching on: every line is brought to line {model.get('reference', section.get('reference_line'))} "
+                f"by a gain and an offset per band, fitted on up to {section.get('sample_size')} overlap pixels.")
+            for row in model.get("summary", []) or []:
+                pair = row.get("pair")
+                if pair and "rmsd_before" in row and "rmsd_after" in row:
+                    say(f"Overlap of lines {pair[0]} and {pair[1]}: RMS difference {row['rmsd_before']:.4f} before, "
+                        f"{row['rmsd_after']:.4f} after matching.")
+            if "gain" in model and "offset" in model:
+                out.gains = _gains(view, params, model)
+        else:
+            say("Brightness matching off: lines are mosaicked as they are.")
+    elif "eigenvalues" in model:  # MNF or PCA
+        k = model.get("n_components")
+        why = ("the configuration asks for this number (components)" if params.get("components") else
+               f"eigenvalues of at least {params.get('min_eigenvalue')} (min_eigenvalue)"
+               if params.get("min_eigenvalue") else
+               f"the first components holding {params.get('cumulative_fraction')} of the variance "
+               "(cumulative_fraction)" if params.get("cumulative_fraction") else "the method's default")
+        lam = np.asarray(model["eigenvalues"], dtype=float)
+        last = f"; the last kept has eigenvalue {lam[k - 1]:.3g}, the first dropped {lam[k]:.3g}" \
+            if k and lam.size > k else ""
+        say(f"{str(model.get('method', 'mnf')).upper()}: {k} of {lam.size} components kept, because {why}{last}.")
+        if model.get("method") == "mnf":
+            say(f"Noise estimated from differences of neighbouring pixels ({params.get('noise_direction')}) over "
+                f"{model.get('n_pixels')} pixels.")
+    elif params.get("denoise_components"):
+        say(f"Reflectance rebuilt from the first {params['denoise_components']} MNF components (noise removal).")
+    if isinstance(params.get("extraction"), dict) and "n_endmembers" in model:
+        ex = params["extraction"]
+        say(f"{model.get('n_endmembers')} endmembers found by {model.get('method', ex.get('method'))} in "
+            f"{model.get('n_dims')} reduced dimensions among {model.get('n_candidates')} candidate pixels "
+            f"(asked for {ex.get('n_endmembers')}, seed {ex.get('seed')}).")
+    if "threshold" in settings:
+        cls = settings.get("class_thresholds") or {}
+        say(f"Spectral angle: a pixel takes the class of the closest reference spectrum when the angle is at most "
+            f"{_fmt(settings['threshold'])} rad; otherwise it stays unclassified."
+            + (" Per-class thresholds: " + ", ".join(f"{k} {_fmt(v)} rad" for k, v in cls.items()) + "." if cls else ""))
+    if "max_rmse" in settings and "range" in settings:
+        lo, hi = settings["range"]
+        say(f"Feature fitting over {lo:g}–{hi:g} nm (continuum removed): a class needs a fit RMSE of at most "
+            f"{_fmt(settings['max_rmse'])}" + (f" and a scale of at least {_fmt(settings['min_scale'])}"
+                                               if settings.get("min_scale") else "") + ".")
+    if params.get("names") and ("threshold" in settings or "max_rmse" in settings):
+        say(f"References ({model.get('source', 'library')}, resampled by {model.get('method', '?')} band "
+            f"responses): {', '.join(params['names'])}.")
+    if "best" in model and "C" in settings:
+        best = model["best"]
+        say(f"SVM (RBF kernel): chosen C = {_fmt(best.get('C'))} and gamma = {_fmt(best.get('gamma'))} from the grid "
+            f"C {settings['C']} x gamma {settings['gamma']}, by {model.get('folds', settings.get('folds'))}-fold "
+            f"spatially blocked cross-validation ({model.get('scoring', 'accuracy')} {_fmt(model.get('cv_score'))}).")
+        counts = model.get("class_counts") or {}
+        if counts:
+            say(f"Training samples per class ({model.get('n_train', sum(counts.values()))} in all): "
+                + ", ".join(f"{k} {v}" for k, v in counts.items()) + ".")
+        val = model.get("validation") or {}
+        if val:
+            say(f"{val.get('n')} validation samples kept apart (overall accuracy on them "
+                f"{_fmt(val.get('overall_accuracy'))}; per class in the accuracy section).")
+    if "size" in params and "n_classes" in params:
+        say(f"Majority (modal) filter in a {params['size']} x {params['size']} pixel window.")
+    if "condition_number" in model and "endmembers" in model:
+        say(f"Unmixing: {settings.get('method', '?')} least squares with {len(model.get('names', []))} endmembers "
+            f"from the {model.get('source', '?')} ({', '.join(model.get('names', []))}); condition number of the "
+            f"endmember matrix {model['condition_number']:.1f} (limit {_fmt(settings.get('max_condition'))}).")
+    if "cv" in model and "method" in model and "predictors" in model:
+        cv = model["cv"]
+        k = model.get("n_components")
+        say(f"Calibration: {model['method']}" + (f" with {k} components" if k else "")
+            + f" on {len(model['predictors'])} predictors; cross-validated R² {_fmt(cv.get('r2'))}, RMSE "
+              f"{_fmt(cv.get('rmse'))} {model.get('units', '')}, bias {_fmt(cv.get('bias'))}, n {cv.get('n')}.")
+    if isinstance(params.get("features"), list):
+        say("Features: " + "; ".join(
+            f"{f.get('name')} ({f.get('kind')}" + (f", {f['range'][0]:g}–{f['range'][1]:g} nm" if f.get("range") else "")
+            + ")" for f in params["features"] if isinstance(f, dict)) + ".")
+    return out
+
+
+def _gains(view: RunView, params: dict, model: dict) -> LineGains:
+    """The mosaic's brightness gains and offsets per line, at the mosaic's band wavelengths."""
+    lines = params.get("lines") or []
+    gain = np.asarray(model["gain"], dtype=float)
+    names = [str(ln.get("name", f"line {k + 1}")) if isinstance(ln, dict) else str(ln)
+             for k, ln in enumerate(lines)] or [f"line {k + 1}" for k in range(gain.shape[0])]
+    names = (names + [f"line {k + 1}" for k in range(len(names), gain.shape[0])])[:gain.shape[0]]
+    wl = np.arange(gain.shape[1], dtype=float)
+    store = view.store("mosaic")
+    if store is not None and "reflectance" in store.specs:
+        w = np.asarray(store.specs["reflectance"].coords.get("wavelength", ()), dtype=float)
+        if w.size == gain.shape[1]:
+            wl = w
+    ref = model.get("reference")
+    ref_name = names[ref - 1] if isinstance(ref, int) and 0 < ref <= len(names) else ""
+    return LineGains(names=names, wavelengths=wl, gain=gain, offset=np.asarray(model["offset"], dtype=float),
+                     reference=ref_name)
