@@ -15,14 +15,17 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .step import Block, OutputSpec, Step
-from .tasks import TileError, TileTask, compute_tile, read_block
+from .grid import Window
+from .step import Block, InputMeta, OutputSpec, Step
+from .store import decode
+from .tasks import TileError, TileTask, _store, compute_tile
 
-__all__ = ["FusedTask", "run_fused", "fusable", "fusion_groups", "task_memory", "split_by_memory",
+__all__ = ["FusedTask", "run_fused", "fusable", "fusion_groups", "task_memory", "shared_memory", "split_by_memory",
            "KERNEL_WORK_FACTOR"]
 
 # Temporaries of a kernel, in multiples of its decoded float32 input block (a documented guess the
@@ -46,51 +49,94 @@ class FusedTask:
         return f"fused-{'+'.join(m.step.name for m in self.members)}-{self.index[0]}-{self.index[1]}"
 
 
-def _member_block(shared: Block, outer, task: TileTask) -> Block:
-    """The member's own block: its padded window cut out of the shared read, copied (kernels may write
-    into their inputs, and a contiguous copy gives the kernel exactly the arrays an unfused read gives)."""
+@dataclass
+class _Shared:
+    """The stored values of every input over the group's widest window, and each input's valid mask."""
+
+    outer: Window
+    raw: dict[str, np.ndarray]  # ref -> stored values (bands, rows, cols)
+    valid: dict[str, np.ndarray]  # ref -> (rows, cols) bool
+    meta: dict[str, InputMeta]  # ref -> InputMeta
+
+
+def _read_shared(task: TileTask) -> _Shared:
+    """Read each input of ``task`` once, as stored (decoding is per member: steps differ in ``decode``)."""
     tile = task.tile
-    cut = tile.padded.relative_to(outer)
-    data = {k: np.array(v[:, cut[0], cut[1]], copy=True, order="C") for k, v in shared.data.items()}
-    valid = np.array(shared.valid[cut], copy=True, order="C")
-    return Block(data=data, valid=valid, tile=tile, grid=task.grid.window(tile.padded), params=task.step.params,
-                 static=task.step.static, meta=dict(shared.meta), decoded=shared.decoded)
+    raw, valid, meta = {}, {}, {}
+    for _alias, (path, output) in task.inputs.items():
+        store = _store(path)
+        spec = store.specs[output]
+        ref = f"{Path(path).stem}/{output}"
+        meta[ref] = InputMeta(ref, store.grid, spec)
+        raw[ref] = store.read(output, tile.padded)
+        valid[ref] = store.read_valid(tile.padded)
+    return _Shared(tile.padded, raw, valid, meta)
+
+
+def _member_block(shared: _Shared, task: TileTask) -> Block:
+    """The member's own block, made from the shared read exactly as :func:`read_block` makes it from the
+    store: its padded window cut out, decoded (or not) as the step asks, NaN where any input is invalid.
+    Each member gets its own arrays (kernels may write into their inputs)."""
+    tile, step = task.tile, task.step
+    cut = tile.padded.relative_to(shared.outer)
+    valid = np.ones(tile.padded.shape, dtype=bool)
+    data, meta = {}, {}
+    for alias, (path, output) in task.inputs.items():
+        ref = f"{Path(path).stem}/{output}"
+        m = shared.meta[ref]
+        meta[alias] = m
+        raw = np.array(shared.raw[ref][:, cut[0], cut[1]], copy=True, order="C")
+        valid &= shared.valid[ref][cut]
+        data[alias] = decode(raw, m.spec) if step.decode else raw
+    if step.decode:
+        for arr in data.values():
+            arr[:, ~valid] = np.nan
+    return Block(data=data, valid=valid, tile=tile, grid=task.grid.window(tile.padded), params=step.params,
+                 static=step.static, meta=meta, decoded=step.decode)
 
 
 def run_fused(task: FusedTask) -> dict[str, dict]:
     """Read the tile once, run every member's kernel and write its store.
 
-    Returns, per member step name, ``{"seconds", "valid"}`` or ``{"error": message}``: a failing member
-    does not stop the others (each is recorded in the ledger on its own). A failed read fails the task.
+    Returns, per member step name, ``{"seconds", "valid", "read_seconds"}`` or ``{"error": message}``: a
+    failing member does not stop the others (each is recorded in the ledger on its own). A failed read
+    fails the task.
     """
     t0 = time.perf_counter()
     first = task.members[0]
     halo = max(m.halo for m in task.members)
     reader = replace(first, halo=halo)
     try:
-        shared = read_block(reader)
+        shared = _read_shared(reader)
     except Exception as exc:
         names = ", ".join(m.step.name for m in task.members)
         raise TileError(f"fused steps {names}, {reader.tile.name}: reading the shared input failed: "
                         f"{type(exc).__name__}: {exc}") from exc
     read_s = time.perf_counter() - t0
-    outer = reader.tile.padded
     out: dict[str, dict] = {}
     for m in task.members:
         t1 = time.perf_counter()
         try:
-            res = compute_tile(m, _member_block(shared, outer, m), t1)
+            res = compute_tile(m, _member_block(shared, m), t1)
             res["read_seconds"] = read_s / len(task.members)
             out[m.step.name] = res
         except Exception as exc:  # noqa: BLE001 - reported per member, the others go on
-            out[m.step.name] = {"error": str(exc) or type(exc).__name__}
+            msg = str(exc) or type(exc).__name__
+            if not msg.startswith("step "):
+                msg = f"step {m.step.name!r}, {m.tile.name}: {type(exc).__name__}: {msg}"
+            out[m.step.name] = {"error": msg}
     return out
 
 
+def _refs(step: Step) -> list[str]:
+    return sorted(step.inputs.values())
+
+
 def fusable(a: Step, b: Step) -> bool:
-    """Whether ``b`` can share ``a``'s read: the same input references, both store-reading, same decoding."""
-    return (a.reader is None and b.reader is None and a.decode == b.decode
-            and sorted(a.inputs.items()) == sorted(b.inputs.items()))
+    """Whether ``b`` can share ``a``'s read: both read stores, the same input references (aliases may
+    differ), each reference once."""
+    ra, rb = _refs(a), _refs(b)
+    return (a.reader is None and b.reader is None and ra == rb and len(set(ra)) == len(ra))
 
 
 def fusion_groups(steps: Sequence[Step]) -> list[list[Step]]:
@@ -125,6 +171,11 @@ def task_memory(padded: tuple[int, int], inputs: Iterable[OutputSpec], outputs: 
     nout = sum(len(s.bands) for s in outputs)
     enc = sum(len(s.bands) * np.dtype(s.dtype).itemsize for s in outputs)
     return int(px * (stored + dec * (1 + KERNEL_WORK_FACTOR) + 2) + cpx * (nout * 8 + enc + 1))
+
+
+def shared_memory(padded: tuple[int, int], inputs: Iterable[OutputSpec]) -> int:
+    """Bytes of a fused task's shared read: the stored values of every input and their valid masks."""
+    return int(padded[0] * padded[1] * (sum(len(s.bands) * np.dtype(s.dtype).itemsize for s in inputs) + 1))
 
 
 def split_by_memory(members: Sequence[Any], memory: Mapping[Any, int], shared: int,

@@ -109,16 +109,20 @@ class RunEstimate:
 
     @property
     def seconds(self) -> float | None:
-        if any(s.seconds is None for s in self.steps):
-            return None
-        return sum(s.seconds for s in self.steps) / self.slots
+        """Wall seconds of the tile and fit tasks of the probed steps (None without a probe)."""
+        known = [s.seconds for s in self.steps if s.seconds is not None]
+        return sum(known) / self.slots if known else None
+
+    @property
+    def seconds_partial(self) -> bool:
+        return any(s.seconds is None for s in self.steps)
 
     def to_dict(self) -> dict:
         return {"workers": self.workers, "threads_per_worker": self.threads, "memory_limit": self.memory_limit,
                 "tile": self.tile, "fused": self.fused, "passes": self.passes,
                 "run": {"tasks": self.tasks, "bytes_read": self.bytes_read, "bytes_written": self.bytes_written,
                         "disk": self.disk, "memory_per_worker": self.memory_per_worker,
-                        "seconds": self.seconds},
+                        "seconds": self.seconds, "seconds_partial": self.seconds_partial},
                 "steps": [asdict(s) for s in self.steps]}
 
     def lines(self) -> list[str]:
@@ -131,10 +135,13 @@ class RunEstimate:
             out.append(f"{s.step:<22}{s.tiles:>7}{s.tasks:>7}{format_bytes(s.bytes_read):>11}"
                        f"{format_bytes(s.bytes_written):>11}{format_bytes(s.disk + s.products):>11}"
                        f"{format_bytes(s.memory):>11}{t:>10}{flag}")
-        t = "? (use --probe)" if self.seconds is None else _hms(self.seconds)
+        t = "?" if self.seconds is None else (">" if self.seconds_partial else "") + _hms(self.seconds)
         out.append(f"{'run':<22}{'':>7}{self.tasks:>7}{format_bytes(self.bytes_read):>11}"
                    f"{format_bytes(self.bytes_written):>11}{format_bytes(self.disk):>11}"
                    f"{format_bytes(self.memory_per_worker):>11}{t:>10}")
+        out.append("time: tile and fit tasks only (not the export of products)"
+                   + ("; steps without a probed time are left out of the run's total" if self.seconds_partial
+                      and self.seconds is not None else ""))
         out.append(f"executor: {self.workers} worker(s) x {self.threads} thread(s)"
                    + (f", {format_bytes(self.memory_limit)} per worker" if self.memory_limit else "")
                    + f"; fused passes {'on' if self.fused else 'off'}; memory of the run = per worker")

@@ -26,7 +26,7 @@ from .ledger import Ledger
 from .lock import RunLock
 from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
-from .fuse import FusedTask, fusion_groups, run_fused, split_by_memory, task_memory
+from .fuse import FusedTask, fusion_groups, run_fused, shared_memory, split_by_memory, task_memory
 from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 from ..errors import SwathmillError
 
@@ -426,7 +426,7 @@ class Run:
         pad = (min(t + 2 * max(p.step.halo for p in preps), m0.sp.grid.rows),
                min(t + 2 * max(p.step.halo for p in preps), m0.sp.grid.cols))
         ins = [mi.spec for mi in m0.sp.meta.values()]
-        shared = task_memory(pad, ins, [], core=(0, 0), decode=m0.step.decode)
+        shared = shared_memory(pad, ins)
         mem = {id(p): task_memory(pad, ins, p.outputs.values(), core=(t, t), decode=p.step.decode) for p in preps}
         parts = split_by_memory([id(p) for p in preps], mem, shared, self.options.task_memory)
         by_id = {id(p): p for p in preps}

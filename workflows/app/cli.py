@@ -26,6 +26,13 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--workers", type=int, help="override execution.workers")
     r.add_argument("--address", help="override execution.address (an existing Dask scheduler)")
     r.add_argument("--plain", action="store_true", help="plain progress lines instead of bars")
+    pl = sub.add_parser("plan", help="the cost of a run before running it: tiles, tasks, bytes, disk, memory, time")
+    pl.add_argument("config", type=Path)
+    pl.add_argument("--json", action="store_true", help="machine-readable output")
+    pl.add_argument("--probe", action="store_true", help="run a few tiles of each step to time them and "
+                                                         "measure compression and memory")
+    pl.add_argument("--executor", choices=["local", "dask", "jobqueue"], help="override execution.executor")
+    pl.add_argument("--workers", type=int, help="override execution.workers")
     s = sub.add_parser("status", help="tiles done, pending and failed per step of a run directory")
     s.add_argument("run_dir", type=Path)
     s.add_argument("--json", action="store_true", help="machine-readable output")
@@ -54,6 +61,10 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "run":
             return run_config(args.config, executor=args.executor, workers=args.workers, address=args.address,
                               plain=args.plain)
+        if args.command == "plan":
+            from swathmill.workflows.app.pipeline import plan_config
+            return plan_config(args.config, as_json=args.json, probe=args.probe, executor=args.executor,
+                               workers=args.workers)
         if args.command == "status":
             return _status(args.run_dir, args.json)
         if args.command == "demo":
