@@ -448,13 +448,15 @@ def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False
     probed = None
     if probe:
         scratch = run_dir / f"plan-probe-{time.time_ns()}"
+        made = [d for d in (run_dir, *run_dir.parents) if not d.exists()]  # folders the probe creates
         try:
             probed = run_probe(plan.steps, scratch, tile=opts.tile, layout=opts.layout(), n_tiles=probe_tiles)
         except (StepError, ValueError) as exc:
             raise InputError(str(exc)) from None
         finally:
-            if run_dir.is_dir() and not any(run_dir.iterdir()):
-                run_dir.rmdir()
+            for d in made:  # deepest first: leave no empty folder behind
+                if d.is_dir() and not any(d.iterdir()):
+                    d.rmdir()
     est = estimate_run(cfg, base, plan, opts, probed)
     if as_json:
         d = est.to_dict()
