@@ -169,6 +169,11 @@ def _hms(s: float) -> str:
     return f"{s // 3600}:{s % 3600 // 60:02d}:{s % 60:02d}"
 
 
+def _tiling(grid: Grid, tile: int, halo: int) -> Tiling:
+    """The tiling the engine uses, with the halo cut to the tile where the engine would refuse it."""
+    return Tiling(grid, tile, min(halo, tile))
+
+
 def _read_area(tiling: Tiling, chunk: int, tiles=None) -> int:
     """Pixels decoded to read every tile's padded window (zarr decodes whole inner chunks)."""
     g = tiling.grid
@@ -232,18 +237,22 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
             outputs, guessed = dict(pr.outputs), False
         else:
             outputs, guessed = _guess_outputs(step, meta, None)
-        tiling = Tiling(g, tile, step.halo)
+        note = None
+        if max(step.halo, step.fit.halo if step.fit else 0) > tile:
+            note = (f"halo of {max(step.halo, step.fit.halo if step.fit else 0)} px is larger than the tile size "
+                    f"of {tile} px: the run refuses this step (counted here with the halo cut to the tile)")
+        tiling = _tiling(g, tile, step.halo)
         n = len(tiling)
         fit_tiles = 0
         read = 0
         reads: dict[str, int] = {}
         in_bytes = _spec_bytes([m.spec for m in meta.values()])
         if step.fit is not None:
-            ft = list(Tiling(g, tile, step.fit.halo))
+            ft = list(_tiling(g, tile, step.fit.halo))
             if step.fit.select is not None:
                 ft = list(step.fit.select(ft, step.params))
             fit_tiles = len(ft)
-            read += _read_area(Tiling(g, tile, step.fit.halo), layout.chunk, ft) * (in_bytes + 1)
+            read += _read_area(_tiling(g, tile, step.fit.halo), layout.chunk, ft) * (in_bytes + 1)
             for ref in set(step.inputs.values()):
                 src = ref.split("/")[0]
                 reads[src] = reads.get(src, 0) + 1
@@ -261,7 +270,7 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
                     passes[src] = passes.get(src, 0) + 1
             if first_of_group or not fuse:
                 gmax = max(s.halo for s in groups[group_of[step.name]]) if fuse else step.halo
-                read += _read_area(Tiling(g, tile, gmax), layout.chunk) * (in_bytes + 1)
+                read += _read_area(_tiling(g, tile, gmax), layout.chunk) * (in_bytes + 1)
         core_px = g.rows * g.cols
         written = core_px * (_spec_bytes(outputs) + 1)
         if pr is not None and pr.ratio is not None:
@@ -284,7 +293,8 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
             mem, msrc = task_memory(pad, ins, outputs.values(), core=(min(tile, g.rows), min(tile, g.cols)),
                                     decode=step.decode), "declared"
         secs = None
-        note = pr.error if pr is not None else None
+        if pr is not None and pr.error:
+            note = f"{note}; {pr.error}" if note else pr.error
         if pr is not None and pr.tile_seconds is not None:
             secs = n * pr.tile_seconds + fit_tiles * (pr.fit_seconds or 0.0)
         out.append(StepEstimate(step.name, n, fit_tiles, n + fit_tiles, reads, int(read), int(written), disk, prod,
