@@ -26,6 +26,7 @@ from .ledger import Ledger, describe_changes
 from .lock import RunLock
 from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
+from .fuse import FusedTask, fusion_groups, run_fused, shared_memory, split_by_memory, task_memory
 from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 from ..errors import SwathmillError
 
@@ -71,6 +72,8 @@ class RunOptions:
     software_version: str = ENGINE_VERSION
     config_hash: str = ""
     warn_tasks: int = 50_000
+    fuse: bool = True  # steps reading the same input share one read per tile (tiles/fuse.py)
+    task_memory: int | None = None  # bytes one running task may hold (worker memory / threads); splits fused groups
 
     def layout(self) -> StoreLayout:
         shard = self.shard or self.tile
@@ -213,14 +216,21 @@ class Run:
         dup = {n for n in names if names.count(n) > 1} | (set(names) & set(known))
         if dup:
             raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
-        for step in steps:
-            report = self._run_step(step, executor, layout, known, result)
-            result.steps.append(report)
-            if not report.complete:
-                result.stopped_at = step.name
-                later = names[names.index(step.name) + 1:]
+        groups = fusion_groups(steps) if self.options.fuse else [[s] for s in steps]
+        started: set[str] = set()
+        for group in groups:
+            if len(group) == 1:
+                reports = [self._run_step(group[0], executor, layout, known, result)]
+            else:
+                reports = self._run_group(group, executor, layout, known, result)
+            result.steps.extend(reports)
+            started.update(s.name for s in group)
+            bad = next((r for r in reports if not r.complete), None)
+            if bad is not None:
+                result.stopped_at = bad.name
+                later = [n for n in names if n not in started]
                 if later:
-                    self._say(result, f"step {step.name!r} did not finish; not started: {', '.join(later)}")
+                    self._say(result, f"step {bad.name!r} did not finish; not started: {', '.join(later)}")
                 break
         return result
 
@@ -381,6 +391,108 @@ class Run:
         self.progress.end(step.name)
         self.ledger.add_timing(step.name, "tiles", time.perf_counter() - t0)
 
+    # fused passes (tiles/fuse.py) -------------------------------------------------------------------
+    def _run_group(self, group: Sequence[Step], executor: Executor, layout: StoreLayout, known,
+                   result: RunResult) -> list[StepReport]:
+        """Steps that read the same input: each is planned, fitted and opened on its own (own key,
+        invalidation, ledger), then their pending tiles run in one pass that reads each tile once."""
+        t_group = time.perf_counter()
+        preps = []
+        for step in group:
+            sp = self._plan_step(step, layout, known, result)
+            fitted = self._fit(step, sp, executor, result)
+            outputs = step.resolve_outputs(sp.meta, fitted.model)
+            key = _sha("step", *sp.base, fitted.hash, {k: v.to_dict() for k, v in outputs.items()})
+            report = StepReport(step.name, key, total=len(sp.tiling), fit=fitted.state)
+            store, fresh = self._open_store(step, sp, key, outputs, fitted, report, result)
+            pending = self._pending_tiles(step, sp, key, store, fresh, outputs, report, result)
+            preps.append(_Member(step, sp, key, outputs, fitted, report, store, pending))
+        prep_s = time.perf_counter() - t_group
+        for part in self._split_group(preps, layout):
+            self._compute_fused(part, executor, result)
+        reports = []
+        for m in preps:
+            if m.report.complete:
+                known[m.step.name] = (self.store_path(m.step.name), m.key, m.store)
+            if m.report.complete and self.options.export:
+                t0 = time.perf_counter()
+                m.report.products = self._export(m.step, m.key, m.store, m.outputs, m.sp.in_keys, m.fitted.hash,
+                                                 executor, result)
+                self.ledger.add_timing(m.step.name, "export", time.perf_counter() - t0)
+            m.report.seconds += prep_s / len(preps)
+            reports.append(m.report)
+        return reports
+
+    def _split_group(self, preps: list["_Member"], layout: StoreLayout) -> list[list["_Member"]]:
+        """The group cut to the per-task memory limit (RunOptions.task_memory) by the steps' estimates."""
+        m0 = preps[0]
+        t = self.options.tile
+        pad = (min(t + 2 * max(p.step.halo for p in preps), m0.sp.grid.rows),
+               min(t + 2 * max(p.step.halo for p in preps), m0.sp.grid.cols))
+        ins = [mi.spec for mi in m0.sp.meta.values()]
+        shared = shared_memory(pad, ins)
+        mem = {id(p): task_memory(pad, ins, p.outputs.values(), core=(t, t), decode=p.step.decode) for p in preps}
+        parts = split_by_memory([id(p) for p in preps], mem, shared, self.options.task_memory)
+        by_id = {id(p): p for p in preps}
+        out = [[by_id[i] for i in part] for part in parts]
+        if len(out) > 1:
+            log.info("fused group %s split by memory into %s", [p.step.name for p in preps],
+                     [[p.step.name for p in part] for part in out])
+        return out
+
+    def _compute_fused(self, part: list["_Member"], executor: Executor, result: RunResult) -> None:
+        """One pass over the union of the members' pending tiles; each member's tile recorded on its own."""
+        if len(part) == 1:
+            m = part[0]
+            self._compute(m.step, m.sp, m.key, m.outputs, m.fitted, m.pending, executor, m.report)
+            return
+        by_tile: dict[tuple[int, int], list[TileTask]] = {}
+        for m in part:
+            spath = self.store_path(m.step.name)
+            for t in m.pending:
+                by_tile.setdefault(t.index, []).append(TileTask(
+                    m.step, t.index, m.sp.grid, self.options.tile, m.step.halo, m.sp.inputs, str(spath),
+                    m.outputs, m.fitted.path))
+        tasks = [FusedTask(tuple(v)) for _k, v in sorted(by_tile.items())]
+        by_name = {m.step.name: m for m in part}
+        for m in part:
+            self.progress.start(m.step.name, len(m.sp.tiling), m.report.done_before)
+        own = {m.step.name: 0.0 for m in part}
+        t0 = time.perf_counter()
+
+        def on_done(task: FusedTask, res: dict) -> None:
+            for name, r in res.items():
+                m = by_name[name]
+                if "error" in r:
+                    self.ledger.mark(name, m.key, task.index, "failed", error=r["error"])
+                    m.report.failed[task.index] = r["error"]
+                    log.error("%s", r["error"])
+                else:
+                    secs = r.get("seconds", 0.0) + r.get("read_seconds", 0.0)
+                    own[name] += secs
+                    self.ledger.mark(name, m.key, task.index, "done", secs)
+                    m.report.computed += 1
+                    self.progress.advance(name)
+
+        def on_error(task: FusedTask, exc: BaseException, tb: str) -> None:
+            msg = str(exc) or type(exc).__name__
+            for tt in task.members:
+                m = by_name[tt.step.name]
+                self.ledger.mark(m.step.name, m.key, task.index, "failed", error=msg)
+                m.report.failed[task.index] = msg
+            log.error("%s\n%s", msg, tb)
+
+        executor.map(run_fused, tasks, on_done, on_error)
+        wall = time.perf_counter() - t0
+        total = sum(own.values()) or 1.0
+        for m in part:
+            self.progress.end(m.step.name)
+            share = wall * (own[m.step.name] / total if sum(own.values()) else 1.0 / len(part))
+            self.ledger.add_timing(m.step.name, "tiles", share)
+            m.report.seconds += share
+        self._say(result, f"fused pass over {len(tasks)} tiles for steps {', '.join(by_name)} "
+                          f"({wall:.1f}s, each tile read once)")
+
     def provenance(self, step: Step, key: str, in_keys: dict, model_hash: str | None) -> dict:
         return {
             "software": self.options.software,
@@ -424,6 +536,20 @@ class Run:
         if errors:
             raise RuntimeError("; ".join(errors))
         return made
+
+
+@dataclass
+class _Member:
+    """A step of a fused group once planned, fitted and opened: what its share of the pass needs."""
+
+    step: Step
+    sp: _StepPlan
+    key: str
+    outputs: dict
+    fitted: _Fitted
+    report: StepReport
+    store: TileStore
+    pending: list
 
 
 @dataclass(frozen=True)

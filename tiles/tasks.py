@@ -19,7 +19,7 @@ from .step import Block, InputMeta, OutputSpec, Step
 from .store import TileStore, decode, encode
 from ..errors import SwathmillError
 
-__all__ = ["TileTask", "run_tile", "run_accumulate", "load_model", "save_model", "TileError"]
+__all__ = ["TileTask", "run_tile", "compute_tile", "read_block", "run_accumulate", "load_model", "save_model", "TileError"]
 
 
 class TileError(SwathmillError, RuntimeError):
@@ -132,9 +132,21 @@ def run_accumulate(task: TileTask) -> Any:
 def run_tile(task: TileTask) -> dict:
     """Compute one tile and write its core region. Returns small statistics."""
     t0 = time.perf_counter()
-    step, tile = task.step, task.tile
     try:
         block = read_block(task)
+    except Exception as exc:
+        raise TileError(f"step {task.step.name!r}, {task.tile.name}: {type(exc).__name__}: {exc}") from exc
+    return compute_tile(task, block, t0)
+
+
+def compute_tile(task: TileTask, block: Block, t0: float | None = None) -> dict:
+    """Run the step's kernel on ``block`` (read for ``task``) and write the tile's core region.
+
+    Returns ``{"seconds": ..., "valid": ...}``; ``seconds`` counts from ``t0`` (default: now).
+    """
+    t0 = time.perf_counter() if t0 is None else t0
+    step, tile = task.step, task.tile
+    try:
         model = load_model(task.model_path)
         out = dict(step.kernel(block, model))
         valid = out.pop("valid", None)

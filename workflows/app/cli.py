@@ -83,7 +83,7 @@ def _parser() -> argparse.ArgumentParser:
                                 epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--version", action="store_true", help="print the version and exit")
     sub = p.add_subparsers(dest="command", metavar="COMMAND",
-                           help="one of: run, status, demo, report (swathmill COMMAND --help for its arguments)")
+                           help="one of: run, plan, status, demo, report (swathmill COMMAND --help for its arguments)")
 
     r = sub.add_parser("run", help="run or resume the run a YAML configuration describes",
                        description="Run the steps a YAML configuration describes, or resume them: tiles already "
@@ -99,6 +99,20 @@ def _parser() -> argparse.ArgumentParser:
                                      "instead of execution.address; implies --executor dask")
     r.add_argument("--plain", action="store_true",
                    help="print progress as plain lines (for logs and batch jobs) instead of progress bars")
+
+
+    pl = sub.add_parser("plan", help="the cost of a run before running it: tiles, tasks, bytes, disk, memory, time",
+                        description="Plan a run without running it: per step and for the run, tiles, tasks, passes "
+                                    "over each store, bytes read and written, disk needed, peak memory per task and "
+                                    "a time estimate. Nothing is written unless --probe is given.")
+    pl.add_argument("config", type=Path, help="the run's YAML configuration file")
+    pl.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
+    pl.add_argument("--probe", action="store_true",
+                    help="run two tiles of each step in a scratch folder inside the run directory (removed "
+                         "afterwards) to time them and measure compression and memory")
+    pl.add_argument("--executor", choices=["local", "dask", "jobqueue"],
+                    help="the executor whose workers the estimate assumes, instead of execution.executor")
+    pl.add_argument("--workers", type=int, help="number of workers the estimate assumes, instead of execution.workers")
 
     s = sub.add_parser("status", help="tiles done, pending and failed per step of a run directory",
                        description="Tiles done, pending and failed per step of a run directory, and the error "
@@ -160,6 +174,10 @@ def _command(args: argparse.Namespace) -> int:
         if args.command == "run":
             return run_config(args.config, executor=args.executor, workers=args.workers, address=args.address,
                               plain=args.plain)
+        if args.command == "plan":
+            from swathmill.workflows.app.pipeline import plan_config
+            return plan_config(args.config, as_json=args.json, probe=args.probe, executor=args.executor,
+                               workers=args.workers)
         if args.command == "status":
             return _status(args.run_dir, args.json)
         if args.command == "demo":

@@ -73,6 +73,7 @@ class EngineConfig(Section):
     chunk: int | None = Field(None, ge=8, description="inner chunk size in pixels (divides tile)")
     zstd_level: int = Field(1, ge=0, le=22)
     export: bool = Field(True, description="write COG products and STAC items")
+    fuse: bool = Field(True, description="steps reading the same input share one read per tile (fused passes)")
 
 
 def _format_error(err: dict, data: Any, model: type[BaseModel]) -> str:

@@ -49,10 +49,15 @@ from swathmill.workflows.methods.rtm.step import build_steps as canopy_steps
 from swathmill.errors import SwathmillError
 from swathmill.workflows.params import Section
 
-__all__ = ["RunConfig", "InputError", "load_run_config", "build_steps", "run_config", "rebuild_report"]
+__all__ = ["RunConfig", "InputError", "DiskSpaceError", "load_run_config", "build_steps", "run_config",
+           "rebuild_report", "plan_config", "estimate_run", "check_disk"]
 
 class InputError(SwathmillError, ValueError):
     """Input data is missing or unusable; the message names the file, band, tile or key."""
+
+
+class DiskSpaceError(SwathmillError, ValueError):
+    """The run would not fit on the disk of its run directory; the message gives the figures."""
 
 
 class ModalFilterConfig(Section):
@@ -320,12 +325,9 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     except (StepError, FileNotFoundError, OSError, ValueError) as exc:
         raise InputError(str(exc)) from None
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
-    opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
-                      export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash)
-    try:
-        opts.layout()
-    except ValueError as exc:
-        raise InputError(f"{config_path}: engine: {exc}") from None
+    opts = _run_options(cfg, config_path, chash)
+    est = estimate_run(cfg, base, plan, opts)
+    check_disk(est, run_dir)
     progress = make_progress(force_plain=plain)
     t0 = time.perf_counter()
     result: RunResult | None = None
@@ -335,6 +337,7 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
             plan.write(run.dir / "plan.json")
             if plan.legend is not None:
                 plan.legend.write_csv(run.dir / LEGEND_FILE)
+            _save_estimate(run.dir / "estimate.json", est)
             ex = _executor(cfg.execution, run.dir / "dask-scratch")  # Dask's scratch space inside the run
             try:
                 if getattr(ex, "dashboard", None):
@@ -347,6 +350,147 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
         progress.close()
     print(f"run directory: {run_dir}", file=out)
     return _summarize(result, time.perf_counter() - t0, run_dir, out)
+
+
+def _run_options(cfg: RunConfig, config_path: Path, chash: str = "") -> RunOptions:
+    """The engine options of a run: tile layout, fusion and the memory one running task may hold."""
+    workers, threads, limit = _slots(cfg.execution)
+    opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
+                      export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash,
+                      fuse=cfg.engine.fuse, task_memory=(limit // threads) if limit else None)
+    try:
+        opts.layout()
+    except ValueError as exc:
+        raise InputError(f"{config_path}: engine: {exc}") from None
+    return opts
+
+
+def _slots(ex: ExecutionConfig) -> tuple[int, int, int | None]:
+    """Workers, threads per worker and memory per worker (bytes) the execution section gives."""
+    import os
+
+    import psutil
+
+    if ex.executor == "local":
+        return 1, 1, None
+    if ex.executor == "jobqueue" and ex.jobqueue is not None:
+        from dask.utils import parse_bytes
+        jq = ex.jobqueue
+        return jq.jobs * jq.processes, max(1, jq.cores // jq.processes), parse_bytes(jq.memory) // jq.processes
+    threads = ex.threads_per_worker
+    workers = ex.workers or max(1, (os.cpu_count() or 1) // threads)
+    if ex.address:
+        return workers, threads, None
+    if ex.memory_limit == "auto":
+        return workers, threads, psutil.virtual_memory().total // workers
+    from dask.utils import parse_bytes
+    return workers, threads, parse_bytes(ex.memory_limit)
+
+
+def _line_bytes(cfg: RunConfig, base: Path) -> int:
+    from swathmill.workflows.app.config import resolve as _resolve
+    total = 0
+    for ln in cfg.mosaic.lines:
+        p = _resolve(base, ln)
+        total += p.stat().st_size if p is not None and p.is_file() else 0
+    return total
+
+
+def estimate_run(cfg: RunConfig, base: Path, plan: Plan, opts: RunOptions, probed: dict | None = None):
+    """The planner's estimate of the run (``tiles.plan.estimate``) for this configuration."""
+    from swathmill.tiles.plan import estimate
+
+    workers, threads, limit = _slots(cfg.execution)
+    return estimate(plan.steps, tile=opts.tile, layout=opts.layout(), grid=plan.grid,
+                    reader_bytes={plan.steps[0].name: _line_bytes(cfg, base)}, workers=workers, threads=threads,
+                    memory_limit=limit, fuse=opts.fuse, export=opts.export, probed=probed)
+
+
+def _used_bytes(run_dir: Path) -> dict[str, int]:
+    """Bytes already on disk per step store and product of a run directory (resumed work needs no more)."""
+    used: dict[str, int] = {}
+    for sub, sep in (("stores", ".zarr"), ("products", "__")):
+        d = run_dir / sub
+        if not d.is_dir():
+            continue
+        for p in d.iterdir():
+            name = p.name.split(sep)[0]
+            size = sum(f.stat().st_size for f in p.rglob("*") if f.is_file()) if p.is_dir() else p.stat().st_size
+            used[name] = used.get(name, 0) + size
+    return used
+
+
+def check_disk(est, run_dir: Path) -> None:
+    """Refuse the run (exit 2) when what it still has to write exceeds the free space of its disk."""
+    import shutil as _shutil
+
+    from swathmill.tiles.plan import format_bytes
+
+    used = _used_bytes(run_dir)
+    need = sum(max(0, s.disk + s.products - used.get(s.step, 0)) for s in est.steps)
+    where = Path(run_dir)
+    while not where.exists():
+        where = where.parent
+    free = _shutil.disk_usage(where).free
+    if need > free:
+        raise DiskSpaceError(
+            f"run directory {run_dir}: the run needs about {format_bytes(need)} more on disk (stores and products, "
+            f"estimated; {format_bytes(sum(used.values()))} already written) but {where} has "
+            f"{format_bytes(free)} free. Free space, choose another run_dir, or see `swathmill plan` for the "
+            "figures per step")
+
+
+def _save_estimate(path: Path, est, probed: bool = False) -> None:
+    d = est.to_dict()
+    d["probe"] = probed
+    d["written"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+    path.write_text(json.dumps(d, indent=1, default=str))
+
+
+def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False, probe_tiles: int = 2,
+                executor: str | None = None, workers: int | None = None, out=None) -> int:
+    """``swathmill plan``: the estimate of a run, without running it (``probe``: time a few tiles of each
+    step in a scratch folder inside the run directory, removed afterwards). Returns the exit code."""
+    from swathmill.tiles.plan import probe as run_probe
+
+    out = out or sys.stdout
+    config_path = Path(config_path).resolve()
+    cfg, _data = load_run_config(config_path)
+    cfg = _with_overrides(cfg, executor=executor, workers=workers)
+    base = config_path.parent
+    run_dir = run_dir_of(cfg, config_path)
+    try:
+        plan = build_plan(cfg, base)
+    except (StepError, FileNotFoundError, OSError, ValueError) as exc:
+        raise InputError(str(exc)) from None
+    opts = _run_options(cfg, config_path)
+    probed = None
+    if probe:
+        scratch = run_dir / f"plan-probe-{time.time_ns()}"
+        made = [d for d in (run_dir, *run_dir.parents) if not d.exists()]  # folders the probe creates
+        try:
+            probed = run_probe(plan.steps, scratch, tile=opts.tile, layout=opts.layout(), n_tiles=probe_tiles)
+        except (StepError, ValueError) as exc:
+            raise InputError(str(exc)) from None
+        finally:
+            for d in made:  # deepest first: leave no empty folder behind
+                if d.is_dir() and not any(d.iterdir()):
+                    d.rmdir()
+    est = estimate_run(cfg, base, plan, opts, probed)
+    if as_json:
+        d = est.to_dict()
+        d["probe"] = probe
+        d["run_dir"] = str(run_dir)
+        print(json.dumps(d, indent=1, default=str), file=out)
+    else:
+        print(f"plan of {config_path.name}: grid {plan.grid.rows} x {plan.grid.cols} px, tiles of {opts.tile} px, "
+              f"run directory {run_dir}", file=out)
+        for line in est.lines():
+            print(line, file=out)
+        if not probe:
+            print("sizes on disk assume no compression and no time is estimated; --probe runs a few tiles of each "
+                  "step to measure both", file=out)
+    return 0
 
 
 def _with_overrides(cfg: RunConfig, **overrides: Any) -> RunConfig:

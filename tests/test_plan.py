@@ -1,0 +1,116 @@
+"""The planner: ``swathmill plan`` counts tiles, tasks, passes, bytes, disk and memory without running
+anything heavy; ``--probe`` times a few tiles; ``swathmill run`` refuses a run its disk cannot hold."""
+from __future__ import annotations
+
+import json
+import shutil
+from collections import namedtuple
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import test_cli as tc
+from swathmill.tiles.grid import Tiling
+from swathmill.tiles.plan import probe_tiles
+from swathmill.tiles.store import TileStore
+from swathmill.workflows.app.cli import main
+
+__all__: list[str] = []
+
+FEATURES = {"name": "feat", "input": "mosaic/reflectance",
+            "features": [{"kind": "normalized_difference", "name": "nd", "a": 860, "b": 660}]}
+
+
+def _plan(capsys, cfg: Path, *extra: str) -> dict:
+    assert main(["plan", str(cfg), "--json", *extra]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def test_plan_counts_without_running(tmp_path, capsys):
+    cfg = tc._config(tmp_path)
+    plan = _plan(capsys, cfg)
+    assert not (tmp_path / "run").exists()  # nothing written, not even the run directory
+    steps = {s["step"]: s for s in plan["steps"]}
+    assert list(steps) == ["mosaic", "pca"]
+    # the mosaic grid of the two lines (40 rows; columns 0..64) in tiles of 16 px: 3 x 4 tiles
+    assert steps["mosaic"]["tiles"] == 12 and steps["pca"]["tiles"] == 12
+    # the PCA fits over every tile, then computes every tile: 24 tasks
+    assert steps["pca"]["fit_tiles"] == 12 and steps["pca"]["tasks"] == 24
+    # the mosaic's store, uncompressed: int16 reflectance, the uint8 source layer and the uint8 valid mask
+    assert steps["mosaic"]["bytes_written"] == 40 * 64 * (tc.BANDS * 2 + 1 + 1)
+    # PCA reads the mosaic twice (its fit, then its tiles); its outputs come from the fitted model, so
+    # without a probe they are counted as float32 with as many bands as the input, and marked so
+    assert plan["passes"] == {"mosaic": 2}
+    assert steps["pca"]["outputs_guessed"]
+    assert steps["pca"]["bytes_written"] == 40 * 64 * (tc.BANDS * 4 + 1)
+    # no probe: no time, sizes on disk with the documented ratio (1.0: no compression counted on)
+    assert plan["run"]["seconds"] is None and steps["pca"]["ratio"] == 1.0
+    assert plan["workers"] == 1 and plan["threads_per_worker"] == 1  # the local executor of the config
+    assert plan["run"]["memory_per_worker"] > 0
+
+
+def test_fusion_saves_passes_over_the_cube(tmp_path, capsys):
+    cfg = tc._config(tmp_path, features=FEATURES)
+    fused = _plan(capsys, cfg)
+    cfg = tc._config(tmp_path, features=FEATURES, engine={"tile": 16, "chunk": 16, "fuse": False})
+    plain = _plan(capsys, cfg)
+    # unfused: PCA fit, PCA tiles, features tiles; fused: PCA and features share the tile pass
+    assert plain["passes"]["mosaic"] == 3 and fused["passes"]["mosaic"] == 2
+    assert fused["run"]["bytes_read"] < plain["run"]["bytes_read"]
+
+
+def test_probe_times_each_step_and_measures_what_a_run_writes(tmp_path, capsys):
+    cfg = tc._config(tmp_path, features=FEATURES)
+    plan = _plan(capsys, cfg, "--probe")
+    steps = {s["step"]: s for s in plan["steps"]}
+    assert not (tmp_path / "run").exists()  # the scratch folder is removed, and the folders made for it
+    for name in ("mosaic", "pca", "feat"):
+        s = steps[name]
+        assert s["seconds"] is not None and s["seconds"] > 0, s
+        assert s["ratio_source"] == "probe" and 0 < s["ratio"] < 2, s
+        assert s["memory_source"] == "probe"
+    # tracemalloc sees numpy's arrays: a PCA tile task holds at least its decoded float32 block
+    assert steps["pca"]["memory"] >= 16 * 16 * tc.BANDS * 4
+    assert plan["run"]["seconds"] > 0 and not plan["run"]["seconds_partial"]
+    # the probe's fit gives the real outputs: 4 float32 components
+    assert not steps["pca"]["outputs_guessed"] and steps["pca"]["bytes_written"] == 40 * 64 * (4 * 4 + 1)
+    # the estimate against a real run: the stores on disk within a factor of two of the estimate
+    assert main(["run", str(cfg), "--plain"]) == 0
+    capsys.readouterr()
+    run_dir = tmp_path / "run"
+    for name in ("mosaic", "pca"):
+        measured = sum(p.stat().st_size for p in (run_dir / "stores" / f"{name}.zarr").rglob("*")
+                       if p.is_file() and p.name != "zarr.json")
+        assert 0.5 * measured <= steps[name]["disk"] <= 2.0 * measured, (name, steps[name]["disk"], measured)
+    saved = json.loads((run_dir / "estimate.json").read_text())
+    assert [s["step"] for s in saved["steps"]] == ["mosaic", "pca", "feat"]
+
+
+def test_plan_text_names_the_executor_and_the_passes(tmp_path, capsys):
+    cfg = tc._config(tmp_path)
+    assert main(["plan", str(cfg), "--executor", "dask", "--workers", "3"]) == 0
+    out = capsys.readouterr().out
+    assert "3 worker(s) x 1 thread(s)" in out and "passes over each store: mosaic 2" in out
+    assert "pca" in out and "mosaic" in out
+
+
+def test_run_refuses_when_the_disk_cannot_hold_it(tmp_path, capsys, monkeypatch):
+    cfg = tc._config(tmp_path)
+    Usage = namedtuple("Usage", "total used free")
+    monkeypatch.setattr(shutil, "disk_usage", lambda p: Usage(10**9, 10**9 - 1000, 1000))
+    assert main(["run", str(cfg), "--plain"]) == 2
+    err = capsys.readouterr().err
+    assert "needs about" in err and "1000 B free" in err, err
+    assert not (tmp_path / "run" / "stores").exists()  # refused before writing anything
+
+
+def test_probe_tiles_are_spread_and_distinct():
+    from swathmill.tiles.testing import default_grid
+
+    g = default_grid(100, 130)
+    picks = probe_tiles(g, 16, 4)
+    assert len(set(picks)) == 4 and picks[0] == (3, 4)
+    ni, nj = Tiling(g, 16).shape
+    assert all(0 <= i < ni and 0 <= j < nj for i, j in picks)
+    assert probe_tiles(default_grid(10, 10), 16, 3) == [(0, 0)]

@@ -1,0 +1,400 @@
+"""The planner: what a list of steps will cost before anything heavy runs.
+
+:func:`estimate` counts, per step and for the run: tiles, tasks (fit and tile tasks), passes over each
+store (with the fused passes of :mod:`swathmill.tiles.fuse`), bytes read and written, disk needed,
+peak memory per worker and, given a probe, a time estimate. It reads no pixel.
+
+:func:`probe` runs the steps for real on a few tiles in a scratch folder (inside the run directory, removed
+afterwards): it times each kernel and fit on those tiles, measures the compressed size of what they
+wrote and the kernel's peak of allocated memory (``tracemalloc``, which numpy reports its arrays to).
+
+Without a probe, sizes on disk assume :data:`DEFAULT_RATIO` (compressed / raw bytes; 1.0 means no
+compression is counted on, which errs on the side of refusing a run that would have fitted), products
+add :data:`OVERVIEW_FACTOR` for their overviews, and outputs that depend on a fitted model (e.g. the
+number of components) are counted with as many bands as the step's input, marked ``outputs_guessed``.
+"""
+from __future__ import annotations
+
+import shutil
+import statistics
+import time
+import tracemalloc
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from .fuse import fusion_groups, task_memory
+from .grid import Grid, Tiling
+from .step import InputMeta, OutputSpec, Step
+from .store import StoreLayout, TileStore, create_store
+from .tasks import TileTask, run_accumulate, run_tile, save_model, load_model
+
+__all__ = ["StepEstimate", "RunEstimate", "ProbeResult", "estimate", "probe", "probe_tiles", "DEFAULT_RATIO",
+           "OVERVIEW_FACTOR", "format_bytes"]
+
+DEFAULT_RATIO = 1.0  # compressed / raw bytes when no probe measured it (no compression counted on)
+OVERVIEW_FACTOR = 4.0 / 3.0  # a COG with 2x overviews down to one tile holds about 4/3 of its full level
+
+
+@dataclass
+class ProbeResult:
+    """What running a step on a few tiles measured."""
+
+    tiles: int = 0
+    tile_seconds: float | None = None  # median seconds of one tile task (read, kernel, write)
+    fit_seconds: float | None = None  # median seconds of one fit accumulation
+    ratio: float | None = None  # compressed bytes on disk / raw bytes written
+    peak_bytes: int | None = None  # peak of memory allocated while one tile ran (tracemalloc)
+    outputs: dict[str, OutputSpec] | None = None
+    error: str | None = None
+
+
+@dataclass
+class StepEstimate:
+    step: str
+    tiles: int
+    fit_tiles: int
+    tasks: int
+    reads: dict[str, int]  # store ref -> passes (fit passes included)
+    bytes_read: int
+    bytes_written: int
+    disk: int  # store on disk
+    products: int  # COG products on disk
+    memory: int  # peak bytes per task
+    memory_source: str  # "declared" (from the specs) or "probe"
+    ratio: float
+    ratio_source: str
+    outputs_guessed: bool
+    seconds: float | None  # worker-seconds (sum over tasks); wall time = seconds / slots
+    group: int  # the fused pass this step's tiles run in
+    note: str | None = None
+
+
+@dataclass
+class RunEstimate:
+    steps: list[StepEstimate]
+    workers: int
+    threads: int
+    memory_limit: int | None  # per worker
+    tile: int
+    fused: bool
+    passes: dict[str, int] = field(default_factory=dict)  # store -> passes over it in the run
+
+    @property
+    def slots(self) -> int:
+        return max(1, self.workers * self.threads)
+
+    @property
+    def tasks(self) -> int:
+        return sum(s.tasks for s in self.steps)
+
+    @property
+    def bytes_read(self) -> int:
+        return sum(s.bytes_read for s in self.steps)
+
+    @property
+    def bytes_written(self) -> int:
+        return sum(s.bytes_written for s in self.steps)
+
+    @property
+    def disk(self) -> int:
+        return sum(s.disk + s.products for s in self.steps)
+
+    @property
+    def memory_per_worker(self) -> int:
+        return max((s.memory for s in self.steps), default=0) * self.threads
+
+    @property
+    def seconds(self) -> float | None:
+        """Wall seconds of the tile and fit tasks of the probed steps (None without a probe)."""
+        known = [s.seconds for s in self.steps if s.seconds is not None]
+        return sum(known) / self.slots if known else None
+
+    @property
+    def seconds_partial(self) -> bool:
+        return any(s.seconds is None for s in self.steps)
+
+    def to_dict(self) -> dict:
+        return {"workers": self.workers, "threads_per_worker": self.threads, "memory_limit": self.memory_limit,
+                "tile": self.tile, "fused": self.fused, "passes": self.passes,
+                "run": {"tasks": self.tasks, "bytes_read": self.bytes_read, "bytes_written": self.bytes_written,
+                        "disk": self.disk, "memory_per_worker": self.memory_per_worker,
+                        "seconds": self.seconds, "seconds_partial": self.seconds_partial},
+                "steps": [asdict(s) for s in self.steps]}
+
+    def lines(self) -> list[str]:
+        """A plain-text table of the estimate."""
+        head = f"{'step':<22}{'tiles':>7}{'tasks':>7}{'read':>11}{'written':>11}{'disk':>11}{'memory':>11}{'time':>10}"
+        out = [head]
+        for s in self.steps:
+            t = "?" if s.seconds is None else _hms(s.seconds / self.slots)
+            flag = " *" if s.outputs_guessed else ""
+            out.append(f"{s.step:<22}{s.tiles:>7}{s.tasks:>7}{format_bytes(s.bytes_read):>11}"
+                       f"{format_bytes(s.bytes_written):>11}{format_bytes(s.disk + s.products):>11}"
+                       f"{format_bytes(s.memory):>11}{t:>10}{flag}")
+        t = "?" if self.seconds is None else (">" if self.seconds_partial else "") + _hms(self.seconds)
+        out.append(f"{'run':<22}{'':>7}{self.tasks:>7}{format_bytes(self.bytes_read):>11}"
+                   f"{format_bytes(self.bytes_written):>11}{format_bytes(self.disk):>11}"
+                   f"{format_bytes(self.memory_per_worker):>11}{t:>10}")
+        out.append("time: tile and fit tasks only (not the export of products)"
+                   + ("; steps without a probed time are left out of the run's total" if self.seconds_partial
+                      and self.seconds is not None else ""))
+        out.append(f"executor: {self.workers} worker(s) x {self.threads} thread(s)"
+                   + (f", {format_bytes(self.memory_limit)} per worker" if self.memory_limit else "")
+                   + f"; fused passes {'on' if self.fused else 'off'}; memory of the run = per worker")
+        out.append("passes over each store: " + ", ".join(f"{k} {v}" for k, v in self.passes.items()))
+        if any(s.outputs_guessed for s in self.steps):
+            out.append("* outputs depend on a fitted model; counted with as many bands as the input (--probe fits "
+                       "on a few tiles to know them)")
+        notes = [f"{s.step}: {s.note}" for s in self.steps if s.note]
+        out += notes
+        return out
+
+
+def format_bytes(n: float | None) -> str:
+    if n is None:
+        return "?"
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if abs(n) < 1024 or unit == "TiB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1024
+    return f"{n:.1f} TiB"
+
+
+def _hms(s: float) -> str:
+    s = int(round(s))
+    return f"{s // 3600}:{s % 3600 // 60:02d}:{s % 60:02d}"
+
+
+def _tiling(grid: Grid, tile: int, halo: int) -> Tiling:
+    """The tiling the engine uses, with the halo cut to the tile where the engine would refuse it."""
+    return Tiling(grid, tile, min(halo, tile))
+
+
+def _read_area(tiling: Tiling, chunk: int, tiles=None) -> int:
+    """Pixels decoded to read every tile's padded window (zarr decodes whole inner chunks)."""
+    g = tiling.grid
+    total = 0
+    for t in tiles if tiles is not None else tiling:
+        p = t.padded
+        r0, c0 = p.row // chunk * chunk, p.col // chunk * chunk
+        r1 = min(-(-(p.row + p.rows) // chunk) * chunk, g.rows)
+        c1 = min(-(-(p.col + p.cols) // chunk) * chunk, g.cols)
+        total += (r1 - r0) * (c1 - c0)
+    return total
+
+
+def _spec_bytes(specs: Mapping[str, OutputSpec] | Sequence[OutputSpec]) -> int:
+    vals = specs.values() if isinstance(specs, Mapping) else specs
+    return sum(len(s.bands) * np.dtype(s.dtype).itemsize for s in vals)
+
+
+def _guess_outputs(step: Step, meta: dict[str, InputMeta], model: Any) -> tuple[dict[str, OutputSpec], bool]:
+    try:
+        return step.resolve_outputs(meta, model), False
+    except Exception:  # noqa: BLE001 - outputs that need the fitted model: guessed below
+        first = next(iter(meta.values()), None)
+        nb = len(first.spec.bands) if first else 1
+        return {"unknown": OutputSpec(bands=tuple(f"b{i}" for i in range(nb)), dtype="float32",
+                                      nodata=float("nan"))}, True
+
+
+def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Grid | None = None,
+             sources: Mapping[str, tuple[Grid, Mapping[str, OutputSpec]]] | None = None,
+             reader_bytes: Mapping[str, int] | None = None, workers: int = 1, threads: int = 1,
+             memory_limit: int | None = None, fuse: bool = True, export: bool = True,
+             probed: Mapping[str, ProbeResult] | None = None) -> RunEstimate:
+    """The cost of running ``steps`` (in order) with tiles of ``tile`` px.
+
+    sources: name -> (grid, outputs) of stores the steps read that no step makes.
+    reader_bytes: step name -> bytes a reader step reads from outside files (e.g. the flight lines).
+    probed: step name -> what :func:`probe` measured (times, compression, memory, outputs).
+    """
+    probed = dict(probed or {})
+    known: dict[str, tuple[Grid, dict[str, OutputSpec]]] = {k: (g, dict(o)) for k, (g, o) in (sources or {}).items()}
+    groups = fusion_groups(steps) if fuse else [[s] for s in steps]
+    group_of = {s.name: i for i, g in enumerate(groups) for s in g}
+    passes: dict[str, int] = {}
+    counted_groups: set[tuple[int, str]] = set()
+    out: list[StepEstimate] = []
+    for step in steps:
+        meta: dict[str, InputMeta] = {}
+        g = step.grid if step.reader is not None else None
+        for alias, ref in step.inputs.items():
+            src, output = ref.split("/")
+            sg, specs = known.get(src, (grid, {}))
+            spec = specs.get(output) or next(iter(specs.values()), None)
+            if spec is None:
+                spec = OutputSpec(bands=("b0",), dtype="float32", nodata=float("nan"))
+            meta[alias] = InputMeta(ref, sg, spec)
+            g = sg
+        g = g or grid
+        pr = probed.get(step.name)
+        if pr is not None and pr.outputs is not None:
+            outputs, guessed = dict(pr.outputs), False
+        else:
+            outputs, guessed = _guess_outputs(step, meta, None)
+        note = None
+        if max(step.halo, step.fit.halo if step.fit else 0) > tile:
+            note = (f"halo of {max(step.halo, step.fit.halo if step.fit else 0)} px is larger than the tile size "
+                    f"of {tile} px: the run refuses this step (counted here with the halo cut to the tile)")
+        tiling = _tiling(g, tile, step.halo)
+        n = len(tiling)
+        fit_tiles = 0
+        read = 0
+        reads: dict[str, int] = {}
+        in_bytes = _spec_bytes([m.spec for m in meta.values()])
+        if step.fit is not None:
+            ft = list(_tiling(g, tile, step.fit.halo))
+            if step.fit.select is not None:
+                ft = list(step.fit.select(ft, step.params))
+            fit_tiles = len(ft)
+            read += _read_area(_tiling(g, tile, step.fit.halo), layout.chunk, ft) * (in_bytes + 1)
+            for ref in set(step.inputs.values()):
+                src = ref.split("/")[0]
+                reads[src] = reads.get(src, 0) + 1
+                passes[src] = passes.get(src, 0) + 1
+        if step.reader is not None:
+            read += int((reader_bytes or {}).get(step.name, 0))
+        else:
+            shared = (group_of[step.name], ",".join(sorted(step.inputs.values())))
+            first_of_group = shared not in counted_groups
+            counted_groups.add(shared)
+            for ref in set(step.inputs.values()):
+                src = ref.split("/")[0]
+                reads[src] = reads.get(src, 0) + 1
+                if first_of_group:
+                    passes[src] = passes.get(src, 0) + 1
+            if first_of_group or not fuse:
+                gmax = max(s.halo for s in groups[group_of[step.name]]) if fuse else step.halo
+                read += _read_area(_tiling(g, tile, gmax), layout.chunk) * (in_bytes + 1)
+        core_px = g.rows * g.cols
+        written = core_px * (_spec_bytes(outputs) + 1)
+        if pr is not None and pr.ratio is not None:
+            ratio, rsrc = pr.ratio, "probe"
+        else:
+            ratio, rsrc = DEFAULT_RATIO, "default"
+        disk = int(written * ratio)
+        prod = 0
+        if export:
+            prod_raw = core_px * sum(len(s.bands) * np.dtype(s.dtype).itemsize for s in outputs.values() if s.product)
+            prod = int(prod_raw * ratio * OVERVIEW_FACTOR)
+        pad = (min(tile + 2 * step.halo, g.rows), min(tile + 2 * step.halo, g.cols))
+        if pr is not None and pr.peak_bytes is not None:
+            mem, msrc = pr.peak_bytes, "probe"
+        else:
+            ins = [m.spec for m in meta.values()]
+            if step.reader is not None:  # the reader's block is about the size of the output, in float32
+                ins = [OutputSpec(bands=tuple(f"b{i}" for i in range(sum(len(s.bands) for s in outputs.values()))),
+                                  dtype="float32", nodata=float("nan"))]
+            mem, msrc = task_memory(pad, ins, outputs.values(), core=(min(tile, g.rows), min(tile, g.cols)),
+                                    decode=step.decode), "declared"
+        secs = None
+        if pr is not None and pr.error:
+            note = f"{note}; {pr.error}" if note else pr.error
+        if pr is not None and pr.tile_seconds is not None:
+            secs = n * pr.tile_seconds + fit_tiles * (pr.fit_seconds or 0.0)
+        out.append(StepEstimate(step.name, n, fit_tiles, n + fit_tiles, reads, int(read), int(written), disk, prod,
+                                int(mem), msrc, ratio, rsrc, guessed, secs, group_of[step.name], note))
+        known[step.name] = (g, outputs)
+    return RunEstimate(out, workers, threads, memory_limit, tile, fuse, passes)
+
+
+def probe_tiles(grid: Grid, tile: int, n: int) -> list[tuple[int, int]]:
+    """``n`` tile indices spread over the grid, the central one first."""
+    tiling = Tiling(grid, tile)
+    ni, nj = tiling.shape
+    picks = [(ni // 2, nj // 2)]
+    k = 1
+    while len(picks) < min(n, ni * nj):
+        f = k / (n + 1)
+        cand = (min(ni - 1, int(ni * f)), min(nj - 1, int(nj * (1 - f))))
+        k += 1
+        if cand not in picks:
+            picks.append(cand)
+        if k > 4 * n + 4:
+            cand = next(t.index for t in tiling if t.index not in picks)
+            picks.append(cand)
+    return picks
+
+
+def _dir_bytes(path: Path) -> int:
+    return sum(p.stat().st_size for p in path.rglob("*") if p.is_file() and p.name != "zarr.json")
+
+
+def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayout,
+          sources: Mapping[str, Path] | None = None, n_tiles: int = 2) -> dict[str, ProbeResult]:
+    """Run every step on ``n_tiles`` tiles in ``scratch`` (removed afterwards); see the module docstring.
+
+    A step whose fit cannot finish on so few tiles (or whose input was not probed) is reported with
+    ``error`` and without times; the steps that read it are skipped the same way.
+    """
+    scratch = Path(scratch)
+    if scratch.exists():
+        shutil.rmtree(scratch)
+    (scratch / "stores").mkdir(parents=True)
+    (scratch / "models").mkdir()
+    known: dict[str, TileStore] = {k: TileStore(Path(p)) for k, p in (sources or {}).items()}
+    results: dict[str, ProbeResult] = {}
+    picks: list[tuple[int, int]] | None = None
+    try:
+        for step in steps:
+            res = ProbeResult()
+            results[step.name] = res
+            try:
+                inputs, meta, g = {}, {}, step.grid
+                for alias, ref in step.inputs.items():
+                    src, output = ref.split("/")
+                    if src not in known:
+                        raise LookupError(f"its input {ref!r} could not be probed")
+                    st = known[src]
+                    inputs[alias] = (str(st.path), output)
+                    meta[alias] = InputMeta(ref, st.grid, st.specs[output])
+                    g = st.grid
+                if picks is None:
+                    picks = probe_tiles(g, tile, n_tiles)
+                model_path = None
+                if step.fit is not None:
+                    ftasks = [TileTask(step, ix, g, tile, step.fit.halo, inputs) for ix in picks]
+                    accs, secs = [], []
+                    for t in ftasks:
+                        t0 = time.perf_counter()
+                        accs.append(run_accumulate(t))
+                        secs.append(time.perf_counter() - t0)
+                    acc = accs[0]
+                    for a in accs[1:]:
+                        acc = step.fit.merge(acc, a)
+                    res.fit_seconds = statistics.median(secs)
+                    base = scratch / "models" / step.name
+                    save_model(step.fit.finalize(acc, step.params, meta), base)
+                    model_path = str(base)
+                outputs = step.resolve_outputs(meta, load_model(model_path))
+                res.outputs = outputs
+                spath = scratch / "stores" / f"{step.name}.zarr"
+                store = create_store(spath, g, outputs, layout, attrs={"step": step.name, "probe": True})
+                empty = _dir_bytes(spath)
+                tasks = [TileTask(step, ix, g, tile, step.halo, inputs, str(spath), outputs, model_path)
+                         for ix in picks]
+                secs = []
+                for t in tasks:
+                    t0 = time.perf_counter()
+                    run_tile(t)
+                    secs.append(time.perf_counter() - t0)
+                res.tile_seconds = statistics.median(secs)
+                res.tiles = len(tasks)
+                raw = sum(t.tile.core.rows * t.tile.core.cols for t in tasks) * (_spec_bytes(outputs) + 1)
+                res.ratio = max(_dir_bytes(spath) - empty, 0) / raw if raw else None
+                tracemalloc.start()
+                try:
+                    run_tile(tasks[0])
+                    res.peak_bytes = tracemalloc.get_traced_memory()[1]
+                finally:
+                    tracemalloc.stop()
+                known[step.name] = store
+            except Exception as exc:  # noqa: BLE001 - the plan reports it per step
+                res.error = f"probe failed: {type(exc).__name__}: {exc}"
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+    return results
