@@ -30,8 +30,12 @@ from .forward import Geometry, RtmError, covered_bands
 from .lut import (TARGETS, UNITS, hybrid_from_bytes, hybrid_to_bytes, lut_search, predict_hybrid,
                   sample_parameters, simulate_entries, train_hybrid)
 
-__all__ = ["GeometryConfig", "ParameterRanges", "HybridConfig", "CanopyConfig", "canopy_step", "build_steps",
+__all__ = ["CAUTION_CANOPY", "GeometryConfig", "ParameterRanges", "HybridConfig", "CanopyConfig", "canopy_step", "build_steps",
            "select_tiles", "MASK_CLASSES"]
+
+CAUTION_CANOPY = ("The leaf and canopy property maps are estimates for research and planning; field checks and "
+                  "agronomic advice come before decisions on fertiliser or irrigation.")
+"""The caution the report adds when a run maps canopy properties."""
 
 MASK_CLASSES = ("inverted", "not_vegetation")  # vegetation mask classes 1 and 2 (0: no data)
 
@@ -109,6 +113,10 @@ class CanopyConfig(Section):
     hybrid: HybridConfig = HybridConfig()
     ndvi_threshold: float = Field(0.3, ge=-1.0, le=1.0,
                                   description="pixels with a lower NDVI (670/800 nm) are flagged, not inverted")
+    reference_columns: dict[Literal["lai", "cab", "cw", "cm"], str] = Field(
+        default_factory=lambda: {t: t for t in TARGETS},
+        description="retrieved property -> numeric column of the ground reference holding its measurements; "
+                    "the accuracy report validates each band against its column (absent columns are noted)")
 
     @field_validator("input")
     @classmethod
@@ -246,7 +254,8 @@ def _outputs(meta: dict[str, InputMeta], model: dict | None, params: CanopyConfi
     out: dict[str, OutputSpec] = {}
     for method in params.methods:
         out[method] = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"), role=Role.QUANTITY.value,
-                                 attrs={"units": units, "method": method})
+                                 attrs={"units": units, "method": method,
+                                        "reference_columns": dict(params.reference_columns)})
         out[f"{method}_sd"] = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"),
                                          role=Role.UNCERTAINTY.value,
                                          attrs={"units": units, "method": method, "of": method})
