@@ -269,3 +269,69 @@ def test_run_config_takes_a_canopy_section():
     assert cfg.canopy.geometry.sun_zenith == 42.0 and cfg.canopy.input == "mosaic/reflectance"
     with pytest.raises(ValueError, match="sun_zenith"):
         RunConfig.model_validate({"name": "r", "mosaic": {"lines": ["a.tif"]}, "canopy": {"geometry": {"sun_zenith": 95}}})
+
+
+# per-line geometry -----------------------------------------------------------------------------------
+def test_line_geometry_from_tags(tmp_path):
+    import rasterio
+    from affine import Affine
+
+    from swathmill.workflows.methods.rtm.step import GeometryConfig, line_geometry_from_tags, with_line_geometry
+
+    def line(name, **tags):
+        p = tmp_path / name
+        with rasterio.open(p, "w", driver="GTiff", width=2, height=2, count=1, dtype="uint8",
+                           crs="EPSG:32612", transform=Affine(1, 0, 0, 0, -1, 0)) as ds:
+            ds.update_tags(**tags)
+        return p
+
+    a, b, c = line("a.tif", sun_zenith="41.5", view_zenith="5"), line("b.tif"), line("c.tif", view_zenith="3")
+    d = line("d.tif", sun_zenith="north")
+    default = GeometryConfig(sun_zenith=30.0, relative_azimuth=20.0)
+    assert line_geometry_from_tags(a, default) == GeometryConfig(sun_zenith=41.5, view_zenith=5.0,
+                                                                 relative_azimuth=20.0)
+    assert line_geometry_from_tags(b, default) is None
+    with pytest.raises(SwathmillError, match="c.tif.*sun_zenith"):
+        line_geometry_from_tags(c, default)
+    with pytest.raises(SwathmillError, match="d.tif.*sun_zenith='north'"):
+        line_geometry_from_tags(d, default)
+    cfg = with_line_geometry(CanopyConfig(**CFG, geometry=default), [a, b])
+    assert cfg.line_geometry == [GeometryConfig(sun_zenith=41.5, view_zenith=5.0, relative_azimuth=20.0), None]
+    assert with_line_geometry(CanopyConfig(**CFG), [b, b]).line_geometry is None
+    with pytest.raises(SwathmillError, match="2 entries for 3 flight lines"):
+        with_line_geometry(cfg, [a, b, b])
+
+
+@pytest.mark.slow
+def test_step_inverts_each_line_on_its_own_geometry(tmp_path):
+    """Two lines under different sun angles: each pixel's table search equals a search of the table
+    simulated for its own line's geometry, done directly (brute force over the same entries)."""
+    cube, lai, cab = _scene(6, 8, seed=3)
+    g1, g2 = {"sun_zenith": 20.0}, {"sun_zenith": 60.0}
+    # the right half is seen under the second geometry
+    right = to_bands(simulate_canopy(lai[:, 4:], cab[:, 4:], 0.02, 0.008, soil_moisture=0.8,
+                                     geometry=Geometry(60.0)), WL, FWHM)
+    cube[:, :, 4:] = np.moveaxis(right, -1, 0)
+    source = np.ones((1, 6, 8), np.uint8)
+    source[:, :, 4:] = 2
+    src_spec = OutputSpec(bands=("source",), dtype="uint8", nodata=0, kind="categorical", class_names=("l1", "l2"))
+    cfg = CanopyConfig(**{**CFG, "methods": ["lut"], "line_geometry": [g1, g2], "source": "src/source"})
+    out, res = run_on_arrays([canopy_step(cfg)], {"cube": (cube, _spec(WL.size)), "source": (source, src_spec)},
+                             tmp_path, tile=4)
+    assert res.ok
+    m = np.load(next((tmp_path / "run" / "models").glob("canopy-*.npz")))
+    assert m["spectra"].shape[0] == 2 * cfg.lut_size and list(m["geometry_of_source"]) == [0, 0, 1]
+    names, table = sample_parameters(ParameterRanges().model_dump(), cfg.lut_size, cfg.seed)
+    bands = m["bands"]
+    Y = table[:, [names.index(t) for t in TARGETS]]
+    veg = out["canopy/vegetation"][0] == 1
+    e = cfg.lut_size
+    for g, (sun, cols) in enumerate(((20.0, slice(0, 4)), (60.0, slice(4, 8)))):
+        stored = m["spectra"][g * e:(g + 1) * e].astype(np.float64)
+        L = simulate_entries(names, table, np.arange(e), Geometry(sun), WL[bands], FWHM[bands])
+        np.testing.assert_allclose(stored, L, rtol=1e-6, atol=1e-7)  # the table of this line's geometry
+        x = cube[:, :, cols][bands].reshape(bands.size, -1).T.astype(np.float64)
+        k = veg[:, cols].ravel()
+        want = brute_force(x[k], stored, Y, max(1, round(cfg.best_fraction * e)))[0]
+        got = out["canopy/lut"][:, :, cols].reshape(4, -1).T[k]
+        np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-6)
