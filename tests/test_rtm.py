@@ -335,3 +335,43 @@ def test_step_inverts_each_line_on_its_own_geometry(tmp_path):
         want = brute_force(x[k], stored, Y, max(1, round(cfg.best_fraction * e)))[0]
         got = out["canopy/lut"][:, :, cols].reshape(4, -1).T[k]
         np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-6)
+
+
+# validation in the accuracy report -------------------------------------------------------------------
+def test_canopy_maps_validated_against_mapped_reference_columns(tmp_path):
+    from types import SimpleNamespace
+
+    from sklearn.metrics import mean_squared_error, r2_score
+
+    from swathmill.tiles.store import open_store
+    from swathmill.tiles.testing import default_grid, write_source_store
+    from swathmill.workflows.app.finish import _assess_mapped_quantity
+
+    rng = np.random.default_rng(5)
+    est = rng.uniform(0.5, 6.0, (4, 8, 8)).astype(np.float32)
+    est[:, 0, 0] = np.nan  # not vegetation: left out
+    spec = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"), role="quantity",
+                      attrs={"units": ["m2 m-2", "ug cm-2", "g cm-2", "g cm-2"],
+                             "reference_columns": {"lai": "lai_measured", "cab": "chl", "cw": "cw"}})
+    path = write_source_store(tmp_path / "s.zarr", {"lut": (est, spec)}, default_grid(8, 8), shard=8)
+    store = open_store(path)
+    rows, cols = np.array([0, 1, 2, 3, 5, 7]), np.array([0, 1, 4, 6, 2, 7])
+    lai = est[0, rows, cols] + rng.normal(0, 0.3, rows.size)
+    lai[3] = np.nan  # no measurement
+    chl = est[1, rows, cols] * 1.1
+    val = SimpleNamespace(row=rows, col=cols, extras={"lai_measured": lai, "chl": chl})
+    view = SimpleNamespace(store=lambda name: store)
+    out = {"quantity_maps": {}, "notes": []}
+    _assess_mapped_quantity(view, "canopy", "lut", store.specs["lut"], val, out)
+    assert set(out["quantity_maps"]) == {"canopy/lut:lai", "canopy/lut:cab"}
+    assert any("['cw']" in n for n in out["notes"])  # the mapped column the reference lacks
+    for band, obs, b in (("lai", lai, 0), ("cab", chl, 1)):
+        e = out["quantity_maps"][f"canopy/lut:{band}"]
+        keep = np.isfinite(obs) & np.isfinite(est[b, rows, cols])
+        o, p = obs[keep], est[b, rows, cols][keep]
+        assert e["metrics"]["n"] == keep.sum() >= 4
+        # RMSE and R2 as scikit-learn computes them; bias = mean(predicted - observed) (common practice)
+        assert e["metrics"]["rmse"] == pytest.approx(np.sqrt(mean_squared_error(o, p)), rel=1e-9)
+        assert e["metrics"]["r2"] == pytest.approx(r2_score(o, p), rel=1e-9)
+        assert e["metrics"]["bias"] == pytest.approx(np.mean(p - o), rel=1e-9)
+    assert out["quantity_maps"]["canopy/lut:cab"]["units"] == "ug cm-2"
