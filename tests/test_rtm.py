@@ -375,3 +375,47 @@ def test_canopy_maps_validated_against_mapped_reference_columns(tmp_path):
         assert e["metrics"]["r2"] == pytest.approx(r2_score(o, p), rel=1e-9)
         assert e["metrics"]["bias"] == pytest.approx(np.mean(p - o), rel=1e-9)
     assert out["quantity_maps"]["canopy/lut:cab"]["units"] == "ug cm-2"
+
+
+# the demo scenario's vegetated paddocks ----------------------------------------------------------------
+@pytest.mark.slow
+def test_scenario_paddocks_follow_the_forward_model_under_each_lines_sun(tmp_path):
+    import rasterio
+
+    from swathmill.workflows.app.scenario import generate_scenario, line_geometries
+
+    files = generate_scenario(tmp_path, "small", seed=7, canopy=True)
+    truth = np.load(files.truth_npz)
+    canopy = np.load(files.root / "truth" / "canopy.npz")
+    reed = truth["abundance"][list(truth["materials"]).index("reed_meadow")]
+    geoms = line_geometries(len(files.lines))
+    # line 1 is the reference line (gain 1, offset 0): its nearly pure vegetation pixels are the paddock
+    # canopy under line 1's sun, within the stated band noise
+    with rasterio.open(files.lines[0]) as ds:
+        assert float(ds.tags()["sun_zenith"]) == geoms[0]["sun_zenith"]
+        r0, c0 = files.facts["lines"][0]["window"][:2]
+        data = ds.read().astype(np.float64) * 1e-4
+        nodata = ds.nodata
+    rr, cc = np.nonzero(reed >= 0.999)
+    inside = (rr >= r0) & (rr < r0 + data.shape[1]) & (cc >= c0) & (cc < c0 + data.shape[2])
+    rr, cc = rr[inside], cc[inside]
+    obs = data[:, rr - r0, cc - c0]
+    ok = (obs[0] != nodata * 1e-4)
+    assert ok.sum() > 50
+    pid = canopy["paddock"][rr[ok], cc[ok]]
+    want = {}
+    for k in (0, 1):
+        want[k] = to_bands(simulate_canopy(canopy["lai"][pid], canopy["cab"][pid], canopy["cw"][pid],
+                                           canopy["cm"][pid], geometry=Geometry(**geoms[k])),
+                           truth["wavelength"], truth["fwhm"]).T
+    sigma = truth["noise_sigma"][:, None]
+    z = (obs[:, ok] - want[0]) / sigma
+    assert abs(z.mean()) < 0.1 and 0.9 < z.std() < 1.1  # white noise of the stated sigma (from the generator)
+    # the other line's sun gives a different canopy: the tags matter
+    assert np.abs(want[1] - want[0]).mean() > 0.003
+    # the measured LAI of the canopy plots follows the paddocks' LAI (8 % measurement noise)
+    import json
+    feats = [f["properties"] for f in json.loads(files.ground_reference.read_text())["features"]
+             if f["properties"].get("plot") == "canopy"]
+    assert len(feats) == files.facts["canopy"]["plots"] > 20
+    assert {f["split"] for f in feats} == {"train", "validation"}
