@@ -368,7 +368,7 @@ def test_canopy_maps_validated_against_mapped_reference_columns(tmp_path):
     for band, obs, b in (("lai", lai, 0), ("cab", chl, 1)):
         e = out["quantity_maps"][f"canopy/lut:{band}"]
         keep = np.isfinite(obs) & np.isfinite(est[b, rows, cols])
-        o, p = obs[keep], est[b, rows, cols][keep]
+        o, p = obs[keep].astype(np.float64), est[b, rows, cols][keep].astype(np.float64)
         assert e["metrics"]["n"] == keep.sum() >= 4
         # RMSE and R2 as scikit-learn computes them; bias = mean(predicted - observed) (common practice)
         assert e["metrics"]["rmse"] == pytest.approx(np.sqrt(mean_squared_error(o, p)), rel=1e-9)
@@ -411,8 +411,9 @@ def test_scenario_paddocks_follow_the_forward_model_under_each_lines_sun(tmp_pat
     sigma = truth["noise_sigma"][:, None]
     z = (obs[:, ok] - want[0]) / sigma
     assert abs(z.mean()) < 0.1 and 0.9 < z.std() < 1.1  # white noise of the stated sigma (from the generator)
-    # the other line's sun gives a different canopy: the tags matter
-    assert np.abs(want[1] - want[0]).mean() > 0.003
+    # the other line's sun (3 degrees lower) gives a slightly different canopy, which fits line 1 worse
+    chi2 = lambda w: float((((obs[:, ok] - w) / sigma) ** 2).sum())  # noqa: E731
+    assert chi2(want[0]) < chi2(want[1])
     # the measured LAI of the canopy plots follows the paddocks' LAI (8 % measurement noise)
     import json
     feats = [f["properties"] for f in json.loads(files.ground_reference.read_text())["features"]
