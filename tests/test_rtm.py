@@ -269,3 +269,154 @@ def test_run_config_takes_a_canopy_section():
     assert cfg.canopy.geometry.sun_zenith == 42.0 and cfg.canopy.input == "mosaic/reflectance"
     with pytest.raises(ValueError, match="sun_zenith"):
         RunConfig.model_validate({"name": "r", "mosaic": {"lines": ["a.tif"]}, "canopy": {"geometry": {"sun_zenith": 95}}})
+
+
+# per-line geometry -----------------------------------------------------------------------------------
+def test_line_geometry_from_tags(tmp_path):
+    import rasterio
+    from affine import Affine
+
+    from swathmill.workflows.methods.rtm.step import GeometryConfig, line_geometry_from_tags, with_line_geometry
+
+    def line(name, **tags):
+        p = tmp_path / name
+        with rasterio.open(p, "w", driver="GTiff", width=2, height=2, count=1, dtype="uint8",
+                           crs="EPSG:32612", transform=Affine(1, 0, 0, 0, -1, 0)) as ds:
+            ds.update_tags(**tags)
+        return p
+
+    a, b, c = line("a.tif", sun_zenith="41.5", view_zenith="5"), line("b.tif"), line("c.tif", view_zenith="3")
+    d = line("d.tif", sun_zenith="north")
+    default = GeometryConfig(sun_zenith=30.0, relative_azimuth=20.0)
+    assert line_geometry_from_tags(a, default) == GeometryConfig(sun_zenith=41.5, view_zenith=5.0,
+                                                                 relative_azimuth=20.0)
+    assert line_geometry_from_tags(b, default) is None
+    with pytest.raises(SwathmillError, match="c.tif.*sun_zenith"):
+        line_geometry_from_tags(c, default)
+    with pytest.raises(SwathmillError, match="d.tif.*sun_zenith='north'"):
+        line_geometry_from_tags(d, default)
+    cfg = with_line_geometry(CanopyConfig(**CFG, geometry=default), [a, b])
+    assert cfg.line_geometry == [GeometryConfig(sun_zenith=41.5, view_zenith=5.0, relative_azimuth=20.0), None]
+    assert with_line_geometry(CanopyConfig(**CFG), [b, b]).line_geometry is None
+    with pytest.raises(SwathmillError, match="2 entries for 3 flight lines"):
+        with_line_geometry(cfg, [a, b, b])
+
+
+@pytest.mark.slow
+def test_step_inverts_each_line_on_its_own_geometry(tmp_path):
+    """Two lines under different sun angles: each pixel's table search equals a search of the table
+    simulated for its own line's geometry, done directly (brute force over the same entries)."""
+    cube, lai, cab = _scene(6, 8, seed=3)
+    g1, g2 = {"sun_zenith": 20.0}, {"sun_zenith": 60.0}
+    # the right half is seen under the second geometry
+    right = to_bands(simulate_canopy(lai[:, 4:], cab[:, 4:], 0.02, 0.008, soil_moisture=0.8,
+                                     geometry=Geometry(60.0)), WL, FWHM)
+    cube[:, :, 4:] = np.moveaxis(right, -1, 0)
+    source = np.ones((1, 6, 8), np.uint8)
+    source[:, :, 4:] = 2
+    src_spec = OutputSpec(bands=("source",), dtype="uint8", nodata=0, kind="categorical", class_names=("l1", "l2"))
+    cfg = CanopyConfig(**{**CFG, "methods": ["lut"], "line_geometry": [g1, g2], "source": "src/source"})
+    out, res = run_on_arrays([canopy_step(cfg)], {"cube": (cube, _spec(WL.size)), "source": (source, src_spec)},
+                             tmp_path, tile=4)
+    assert res.ok
+    m = np.load(next((tmp_path / "run" / "models").glob("canopy-*.npz")))
+    assert m["spectra"].shape[0] == 2 * cfg.lut_size and list(m["geometry_of_source"]) == [0, 0, 1]
+    names, table = sample_parameters(ParameterRanges().model_dump(), cfg.lut_size, cfg.seed)
+    bands = m["bands"]
+    Y = table[:, [names.index(t) for t in TARGETS]]
+    veg = out["canopy/vegetation"][0] == 1
+    e = cfg.lut_size
+    for g, (sun, cols) in enumerate(((20.0, slice(0, 4)), (60.0, slice(4, 8)))):
+        stored = m["spectra"][g * e:(g + 1) * e].astype(np.float64)
+        L = simulate_entries(names, table, np.arange(e), Geometry(sun), WL[bands], FWHM[bands])
+        np.testing.assert_allclose(stored, L, rtol=1e-6, atol=1e-7)  # the table of this line's geometry
+        x = cube[:, :, cols][bands].reshape(bands.size, -1).T.astype(np.float64)
+        k = veg[:, cols].ravel()
+        want = brute_force(x[k], stored, Y, max(1, round(cfg.best_fraction * e)))[0]
+        got = out["canopy/lut"][:, :, cols].reshape(4, -1).T[k]
+        np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-6)
+
+
+# validation in the accuracy report -------------------------------------------------------------------
+def test_canopy_maps_validated_against_mapped_reference_columns(tmp_path):
+    from types import SimpleNamespace
+
+    from sklearn.metrics import mean_squared_error, r2_score
+
+    from swathmill.tiles.store import open_store
+    from swathmill.tiles.testing import default_grid, write_source_store
+    from swathmill.workflows.app.finish import _assess_mapped_quantity
+
+    rng = np.random.default_rng(5)
+    est = rng.uniform(0.5, 6.0, (4, 8, 8)).astype(np.float32)
+    est[:, 0, 0] = np.nan  # not vegetation: left out
+    spec = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"), role="quantity",
+                      attrs={"units": ["m2 m-2", "ug cm-2", "g cm-2", "g cm-2"],
+                             "reference_columns": {"lai": "lai_measured", "cab": "chl", "cw": "cw"}})
+    path = write_source_store(tmp_path / "s.zarr", {"lut": (est, spec)}, default_grid(8, 8), shard=8)
+    store = open_store(path)
+    rows, cols = np.array([0, 1, 2, 3, 5, 7]), np.array([0, 1, 4, 6, 2, 7])
+    lai = est[0, rows, cols] + rng.normal(0, 0.3, rows.size)
+    lai[3] = np.nan  # no measurement
+    chl = est[1, rows, cols] * 1.1
+    val = SimpleNamespace(row=rows, col=cols, extras={"lai_measured": lai, "chl": chl})
+    view = SimpleNamespace(store=lambda name: store)
+    out = {"quantity_maps": {}, "notes": []}
+    _assess_mapped_quantity(view, "canopy", "lut", store.specs["lut"], val, out)
+    assert set(out["quantity_maps"]) == {"canopy/lut:lai", "canopy/lut:cab"}
+    assert any("['cw']" in n for n in out["notes"])  # the mapped column the reference lacks
+    for band, obs, b in (("lai", lai, 0), ("cab", chl, 1)):
+        e = out["quantity_maps"][f"canopy/lut:{band}"]
+        keep = np.isfinite(obs) & np.isfinite(est[b, rows, cols])
+        o, p = obs[keep].astype(np.float64), est[b, rows, cols][keep].astype(np.float64)
+        assert e["metrics"]["n"] == keep.sum() >= 4
+        # RMSE and R2 as scikit-learn computes them; bias = mean(predicted - observed) (common practice)
+        assert e["metrics"]["rmse"] == pytest.approx(np.sqrt(mean_squared_error(o, p)), rel=1e-9)
+        assert e["metrics"]["r2"] == pytest.approx(r2_score(o, p), rel=1e-9)
+        assert e["metrics"]["bias"] == pytest.approx(np.mean(p - o), rel=1e-9)
+    assert out["quantity_maps"]["canopy/lut:cab"]["units"] == "ug cm-2"
+
+
+# the demo scenario's vegetated paddocks ----------------------------------------------------------------
+@pytest.mark.slow
+def test_scenario_paddocks_follow_the_forward_model_under_each_lines_sun(tmp_path):
+    import rasterio
+
+    from swathmill.workflows.app.scenario import generate_scenario, line_geometries
+
+    files = generate_scenario(tmp_path, "small", seed=7, canopy=True)
+    truth = np.load(files.truth_npz)
+    canopy = np.load(files.root / "truth" / "canopy.npz")
+    reed = truth["abundance"][list(truth["materials"]).index("reed_meadow")]
+    geoms = line_geometries(len(files.lines))
+    # line 1 is the reference line (gain 1, offset 0): its nearly pure vegetation pixels are the paddock
+    # canopy under line 1's sun, within the stated band noise
+    with rasterio.open(files.lines[0]) as ds:
+        assert float(ds.tags()["sun_zenith"]) == geoms[0]["sun_zenith"]
+        r0, c0 = files.facts["lines"][0]["window"][:2]
+        data = ds.read().astype(np.float64) * 1e-4
+        nodata = ds.nodata
+    rr, cc = np.nonzero(reed >= 0.999)
+    inside = (rr >= r0) & (rr < r0 + data.shape[1]) & (cc >= c0) & (cc < c0 + data.shape[2])
+    rr, cc = rr[inside], cc[inside]
+    obs = data[:, rr - r0, cc - c0]
+    ok = (obs[0] != nodata * 1e-4)
+    assert ok.sum() > 50
+    pid = canopy["paddock"][rr[ok], cc[ok]]
+    want = {}
+    for k in (0, 1):
+        want[k] = to_bands(simulate_canopy(canopy["lai"][pid], canopy["cab"][pid], canopy["cw"][pid],
+                                           canopy["cm"][pid], geometry=Geometry(**geoms[k])),
+                           truth["wavelength"], truth["fwhm"]).T
+    sigma = truth["noise_sigma"][:, None]
+    z = (obs[:, ok] - want[0]) / sigma
+    assert abs(z.mean()) < 0.1 and 0.9 < z.std() < 1.1  # white noise of the stated sigma (from the generator)
+    # the other line's sun (3 degrees lower) gives a slightly different canopy, which fits line 1 worse
+    chi2 = lambda w: float((((obs[:, ok] - w) / sigma) ** 2).sum())  # noqa: E731
+    assert chi2(want[0]) < chi2(want[1])
+    # the measured LAI of the canopy plots follows the paddocks' LAI (8 % measurement noise)
+    import json
+    feats = [f["properties"] for f in json.loads(files.ground_reference.read_text())["features"]
+             if f["properties"].get("plot") == "canopy"]
+    assert len(feats) == files.facts["canopy"]["plots"] > 20
+    assert {f["split"] for f in feats} == {"train", "validation"}

@@ -13,7 +13,7 @@ import yaml
 
 from swathmill.workflows.app.scenario import SIZES, generate_scenario
 
-__all__ = ["demo_config", "write_demo", "run_demo"]
+__all__ = ["canopy_section", "demo_config", "write_demo", "run_demo"]
 
 #: engine tile size per scenario size (the small demo has about a dozen tiles per step)
 TILES = {"small": 64, "medium": 128, "large": 256}
@@ -77,6 +77,24 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
     }
 
 
+def canopy_section() -> dict:
+    """The demo's canopy inversion: a small table (2,000 entries) to keep the demo quick; the sun and view
+    angles come from the lines' tags; measured LAI and chlorophyll of the ground plots validate it."""
+    return {"name": "canopy", "input": "mosaic/reflectance", "lut_size": 2000, "lut_chunks": 4,
+            "hybrid": {"trees": 30, "training_size": 2000}, "reference_columns": {"lai": "lai", "cab": "cab"}}
+
+
+def _has_canopy_model() -> bool:
+    import importlib.util
+
+    return importlib.util.find_spec("prosail") is not None
+
+
+def _with_canopy(cfg: dict) -> dict:
+    """The demo configuration with the canopy step (on a scenario generated with its paddocks)."""
+    return {**cfg, "canopy": canopy_section()}
+
+
 HEADER = """\
 # swathmill demo configuration: the invented Corrowan Playa campaign (all data made up).
 # Rerun or resume:  swathmill run {path}
@@ -91,8 +109,10 @@ def write_demo(root: Path, size: str = "small", seed: int = 7, executor: str | N
         raise ValueError(f"demo size must be one of {sorted(SIZES)}. Got {size!r}")
     root = Path(root).resolve()
     root.mkdir(parents=True, exist_ok=True)
-    files = generate_scenario(root, size=size, seed=seed)
+    files = generate_scenario(root, size=size, seed=seed, canopy=_has_canopy_model())
     cfg = demo_config(files, root, size, executor)
+    if files.facts.get("canopy"):
+        cfg = _with_canopy(cfg)
     path = root / "demo.yaml"
     path.write_text(HEADER.format(path=path) + yaml.safe_dump(cfg, sort_keys=False))
     return path

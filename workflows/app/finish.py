@@ -99,6 +99,11 @@ def assess_accuracy(run_dir: Path) -> dict:
             _assess_abundance(view, name, output, outs[output], val, out)
     for entry in cfg.get("calibrations", []):
         _assess_quantity(view, entry, val, out)
+    for name in complete:
+        outs = view.outputs(name)
+        for output in with_role(outs, Role.QUANTITY):
+            if isinstance(outs[output].attrs.get("reference_columns"), dict):
+                _assess_mapped_quantity(view, name, output, outs[output], val, out)
     return _write(view, out)
 
 
@@ -156,6 +161,37 @@ def _assess_quantity(view: RunView, entry: dict, val, out: dict) -> None:
         out["quantity_maps"][f"{name}/{output}"] = {"property": prop, "units": entry.get("units", ""),
                                                     "metrics": _metrics(m), "observed": obs[keep].tolist(),
                                                     "predicted": est[0][keep].tolist()}
+
+
+def _assess_mapped_quantity(view: RunView, name: str, output: str, spec: OutputSpec, val, out: dict) -> None:
+    """RMSE, bias and R2 of each band of a several-band quantity output (e.g. the canopy inversion's)
+    against the reference column its ``reference_columns`` attribute maps the band to."""
+    store = view.store(name)
+    if store is None:
+        return
+    mapping = {str(b): str(c) for b, c in spec.attrs["reference_columns"].items() if b in spec.bands}
+    units = spec.attrs.get("units", "")
+    present = {b: c for b, c in mapping.items() if c in val.extras}
+    absent = sorted(set(mapping.values()) - set(present.values()))
+    note = f"{name}: the ground reference has no column {absent}; those properties are not validated"
+    if absent and note not in out["notes"]:
+        out["notes"].append(note)
+    if not present:
+        return
+    est, ok = _values_at(store, output, val.row, val.col)
+    for band, column in present.items():
+        b = spec.bands.index(band)
+        obs = val.extras[column]
+        keep = ok & np.isfinite(obs) & np.isfinite(est[b])
+        if keep.sum() < 2:
+            out["notes"].append(f"{name}/{output}: fewer than 2 validation samples with {column!r} inside the "
+                                f"map (vegetation mask); {band} not assessed")
+            continue
+        m = regression_metrics(obs[keep], est[b][keep])
+        u = units[b] if isinstance(units, (list, tuple)) else units
+        out["quantity_maps"][f"{name}/{output}:{band}"] = {"property": column, "units": u, "band": band,
+                                                           "metrics": _metrics(m), "observed": obs[keep].tolist(),
+                                                           "predicted": est[b][keep].tolist()}
 
 
 def _metrics(m) -> dict:

@@ -253,7 +253,7 @@ def build_later_steps(cfg: RunConfig, base: Path, grid: Grid | TileStore) -> Pla
     if cfg.features is not None:
         steps += feature_steps(cfg.features, ctx)
     if cfg.canopy is not None:
-        steps += canopy_steps(cfg.canopy, ctx)
+        steps += canopy_steps(cfg.canopy, ctx, lines=[resolve(base, p) for p in cfg.mosaic.lines])
     calibrations: list[str] = []
     for entry in cfg.calibrations:
         if cfg.reference is None:

@@ -94,6 +94,10 @@ def report_from_run(view: RunView, title: str | None = None) -> Path:
     incomplete = [n for n in view.steps if not view.complete(n)]
     if incomplete:
         summary.notes.append(f"partial run: steps not finished: {', '.join(incomplete)}; their maps are left out")
+    if cfg.get("canopy"):
+        from swathmill.workflows.methods.rtm.step import CAUTION_CANOPY
+
+        summary.caution = f"{summary.caution} {CAUTION_CANOPY}"
     _mosaic(view, summary)
     for name in view.steps:
         summary.parameters.append(step_parameters(view, name))
@@ -203,6 +207,9 @@ def _is_residual(spec) -> bool:
 
 def _quantity_maps(name: str, store: TileStore, output: str, spec, summary: ReportSummary) -> None:
     """A calibrated quantity, drawn in red outside its samples' range (the store's mask), and its uncertainty."""
+    if len(spec.bands) > 1:
+        _band_quantity_maps(name, store, output, spec, summary)
+        return
     masks = with_role(store.specs, Role.MASK)
     outside = _thumb(store, masks[0])[0] == OUTSIDE_RANGE if masks else None
     units = str(spec.attrs.get("units", ""))
@@ -215,6 +222,24 @@ def _quantity_maps(name: str, store: TileStore, output: str, spec, summary: Repo
         summary.continuous_maps.append(ContinuousMapView(
             name=f"{name}: uncertainty (1 sigma)", values=_thumb(store, unc)[0], units=units,
             kind="uncertainty", extent=_extent(store), step=name))
+
+
+def _band_quantity_maps(name: str, store: TileStore, output: str, spec, summary: ReportSummary) -> None:
+    """A several-band quantity (one property per band, e.g. the canopy inversion) and the uncertainty
+    output that names it in its ``of`` attribute, band by band."""
+    units = spec.attrs.get("units", "")
+    data = _thumb(store, output)
+    sds = [u for u in with_role(store.specs, Role.UNCERTAINTY) if store.specs[u].attrs.get("of") == output]
+    sd = _thumb(store, sds[0]) if sds else None
+    for b, band in enumerate(spec.bands):
+        u = str(units[b] if isinstance(units, (list, tuple)) else units)
+        summary.continuous_maps.append(ContinuousMapView(
+            name=f"{name}/{output}: {band}", values=data[b], units=u, kind="quantity", extent=_extent(store),
+            note="empty where the step's mask leaves the pixel out", step=name))
+        if sd is not None:
+            summary.continuous_maps.append(ContinuousMapView(
+                name=f"{name}/{sds[0]}: {band} (1 sigma)", values=sd[b], units=u, kind="uncertainty",
+                extent=_extent(store), step=name))
 
 
 def _step_models(name: str, model: dict | None, summary: ReportSummary) -> None:

@@ -36,7 +36,8 @@ from typing import Any, Literal
 
 import numpy as np
 
-__all__ = ["ScenarioFiles", "MATERIALS", "SIZES", "SITE_NAME", "material_spectra", "generate_scenario"]
+__all__ = ["ScenarioFiles", "MATERIALS", "SIZES", "SITE_NAME", "material_spectra", "generate_scenario",
+           "PADDOCK_PX", "CANOPY_RANGES", "line_geometries"]
 
 SITE_NAME = "Corrowan Playa"
 CRS = "EPSG:32612"
@@ -382,11 +383,100 @@ def _geojson(feats: list[dict]) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------
+# the vegetated paddocks (canopy model demo; only with ``canopy=True``)
+
+PADDOCK_PX = 20  #: side of a paddock in pixels: each has one set of leaf and canopy properties
+
+#: ranges of the paddocks' properties (invented for the demo; inside the inversion's default table)
+CANOPY_RANGES = {"lai": (0.5, 6.0), "cab": (20.0, 70.0), "cw": (0.006, 0.04), "cm": (0.003, 0.012)}
+
+
+def line_geometries(n_lines: int) -> list[dict[str, float]]:
+    """Sun and view angles (degrees) of each invented line: the sun climbs as the lines are flown."""
+    return [{"sun_zenith": 40.0 - 3.0 * k, "view_zenith": 0.0, "relative_azimuth": 0.0} for k in range(n_lines)]
+
+
+def _paddocks(rng: np.random.Generator, rows: int, cols: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """Paddock index of each pixel and each paddock's lai, cab, cw, cm (uniform over CANOPY_RANGES)."""
+    pr, pc = -(-rows // PADDOCK_PX), -(-cols // PADDOCK_PX)
+    ii, jj = np.mgrid[0:rows, 0:cols]
+    ids = (ii // PADDOCK_PX) * pc + jj // PADDOCK_PX
+    props = {k: rng.uniform(lo, hi, pr * pc) for k, (lo, hi) in CANOPY_RANGES.items()}
+    return ids, props
+
+
+def _paddock_spectra(props: dict[str, np.ndarray], geoms: list[dict[str, float]], wl: np.ndarray,
+                     fwhm: np.ndarray) -> np.ndarray:
+    """(lines, paddocks, bands) canopy reflectance of each paddock under each line's geometry, by the
+    project's wrapper of the leaf and canopy model, convolved to the bands."""
+    from swathmill.workflows.methods.rtm.forward import Geometry, simulate_canopy, to_bands
+
+    out = []
+    for g in geoms:
+        spec = simulate_canopy(props["lai"], props["cab"], props["cw"], props["cm"], geometry=Geometry(**g))
+        out.append(to_bands(spec, wl, fwhm))
+    return np.stack(out).astype(np.float32)
+
+
+def _canopy_cube(base: Any, reed: np.ndarray, reed_spectrum: np.ndarray, ids: np.ndarray,
+                 paddock: np.ndarray) -> Any:
+    """The true cube of one line: the green-vegetation share of each pixel is its paddock's canopy."""
+    def cube(r0: int, r1: int, c0: int, c1: int) -> np.ndarray:
+        a = reed[r0:r1, c0:c1]
+        canopy = np.moveaxis(paddock[ids[r0:r1, c0:c1]], -1, 0)  # (nb, r, c)
+        return (base(r0, r1, c0, c1) + a * (canopy - reed_spectrum[:, None, None])).astype(np.float32)
+    return cube
+
+
+def _canopy_plots(rng: np.random.Generator, feats: list[dict], abund: np.ndarray, ids: np.ndarray,
+                  props: dict[str, np.ndarray], transform: Any, n_plots: int) -> int:
+    """Add ground plots of measured LAI and chlorophyll (and set them on vegetated features).
+
+    Every feature gets ``lai`` and ``cab``: measured where its green-vegetation share is at least 0.8
+    (the fraction-weighted paddock value, plus measurement noise: 8 % for LAI, 3 ug cm-2 for
+    chlorophyll, invented), None elsewhere. ``n_plots`` extra points on nearly pure vegetation are
+    added, labelled ``reed_meadow``; whole paddocks go to validation (every third one).
+    """
+    reed = abund[list(MATERIALS).index("reed_meadow")]
+    rows, cols = reed.shape
+
+    def measured(rr: np.ndarray, cc: np.ndarray) -> dict[str, float | None]:
+        fr = reed[rr, cc]
+        if fr.mean() < 0.8:
+            return {"lai": None, "cab": None}
+        lai = float((fr * props["lai"][ids[rr, cc]]).mean()) * (1 + rng.normal(0, 0.08))
+        cab = float(props["cab"][ids[rr, cc]].mean()) + rng.normal(0, 3.0)
+        return {"lai": round(max(lai, 0.0), 3), "cab": round(max(cab, 0.0), 2)}
+
+    inv = ~transform
+    for f in feats:
+        pts = [f["xy"]] if f["kind"] == "Point" else f["xy"][:4]
+        cc, rr = zip(*[inv * p for p in pts])
+        if f["kind"] == "Point":
+            rr_, cc_ = np.array([int(rr[0])]), np.array([int(cc[0])])
+        else:
+            r0, c0 = int(round(min(rr))), int(round(min(cc)))
+            g = np.mgrid[r0:int(round(max(rr))), c0:int(round(max(cc)))]
+            rr_, cc_ = g[0].ravel(), g[1].ravel()
+        f["props"].update(measured(rr_, cc_))
+    cand = np.flatnonzero((reed >= 0.95).ravel())
+    added = 0
+    for idx in rng.permutation(cand)[:n_plots]:
+        r, c = divmod(int(idx), cols)
+        p = {"label": "reed_meadow", **{f"frac_{m}": round(float(abund[i, r, c]), 4) for i, m in enumerate(MATERIALS)},
+             "clay_pct": None, **measured(np.array([r]), np.array([c])),
+             "split": "validation" if ids[r, c] % 3 == 0 else "train", "plot": "canopy"}
+        feats.append({"kind": "Point", "xy": transform @ (c + 0.5, r + 0.5), "block": None, "props": p})
+        added += 1
+    return added
+
+
+# ---------------------------------------------------------------------------------------------
 # the scenario
 
 
 def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "large"] = "small",
-                      seed: int = 7) -> ScenarioFiles:
+                      seed: int = 7, canopy: bool = False) -> ScenarioFiles:
     """Write the invented Corrowan Playa scenario under ``out_dir`` and return its paths and facts.
 
     Parameters
@@ -396,6 +486,13 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         4 lines) or "large" (2200 x 2200 px, 170 bands, 5 lines; a cube of about 1.65 GB, for
         benchmarks).
     seed : everything is deterministic from it.
+    canopy : also simulate vegetated paddocks for the canopy inversion (needs the ``rtm`` extra): the
+        green-vegetation share of each pixel becomes the canopy reflectance of its paddock (leaf area
+        index, chlorophyll, water and dry matter known per paddock, see :data:`CANOPY_RANGES`), simulated
+        by the project's wrapper of the leaf and canopy model under each line's sun and view angles,
+        which the lines carry as tags (``sun_zenith``, ``view_zenith``, ``relative_azimuth``); the
+        ground reference gains measured ``lai`` and ``cab`` and canopy plots; ``truth/canopy.npz``
+        holds the paddocks.
     """
     import rasterio
     from affine import Affine
@@ -423,6 +520,11 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         a = abund[:, r0:r1, c0:c1]
         return np.tensordot(spectra.T, a, axes=(1, 0)).astype(np.float32)  # (nb, r, c)
 
+    geoms = line_geometries(n_lines)
+    if canopy:
+        r_canopy = np.random.default_rng(ss.spawn(1)[0])  # a stream of its own: the others stay unchanged
+        paddock_ids, paddock_props = _paddocks(r_canopy, rows, cols)
+        paddock_refl = _paddock_spectra(paddock_props, geoms, wl, fwhm)
     swaths = _swaths(n_lines, rows, cols, r_lines)
     gains, offsets = _brightness(n_lines, wl, r_bright)
     sigma = _noise_sigma(wl)
@@ -434,13 +536,19 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         r0, r1, c0, c1 = int(rr[0]), int(rr[-1]) + 1, int(cc[0]), int(cc[-1]) + 1
         name = f"corrowan_line{k + 1:02d}"
         path = root / "lines" / f"{name}.tif"
-        _write_line(path, true_cube, mask, r0, r1, c0, c1, gains[k], offsets[k], sigma, wl, fwhm,
+        cube_k = true_cube if not canopy else _canopy_cube(true_cube, abund[names.index("reed_meadow")],
+                                                           spectra[names.index("reed_meadow")], paddock_ids,
+                                                           paddock_refl[k])
+        _write_line(path, cube_k, mask, r0, r1, c0, c1, gains[k], offsets[k], sigma, wl, fwhm,
                     transform @ Affine.translation(c0, r0), r_noise[k], name)
         import datetime as _dt
         import rasterio
         flown = _dt.datetime(2025, 6, 14, 17, 40, tzinfo=_dt.timezone.utc) + _dt.timedelta(minutes=12 * k)
         with rasterio.open(path, "r+") as ds:  # invented flight times: one line every 12 minutes
             ds.update_tags(acquisition_time=flown.strftime("%Y-%m-%dT%H:%M:%SZ"))
+        if canopy:
+            with rasterio.open(path, "r+") as ds:
+                ds.update_tags(**{k2: f"{v:g}" for k2, v in geoms[k].items()})
         line_paths.append(path)
         line_facts.append({"name": name, "file": f"lines/{name}.tif", "window": [r0, c0, r1 - r0, c1 - c0],
                            "valid_pixels": int(mask.sum()), **{k2: v for k2, v in sw.items()},
@@ -466,6 +574,8 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
             wr.writerow([f"{w:g}", *[f"{lspec[m][i]:.5f}" for m in names]])
     # ground reference
     feats, counts = _ground_reference(r_ref, abund, classes, transform, n_points, n_polys)
+    if canopy:
+        n_canopy_plots = _canopy_plots(r_canopy, feats, abund, paddock_ids, paddock_props, transform, 2 * n_points)
     gref = root / "ground_reference.geojson"
     gref.write_text(json.dumps(_geojson(feats)))
     # truth
@@ -491,6 +601,13 @@ def generate_scenario(out_dir: str | Path, size: Literal["small", "medium", "lar
         "suggested_bad_bands_nm": SUGGESTED_BAD_BANDS,
         "samples": counts, "measured_property": "clay_pct = 3 + 85 * frac_pallid_clay + N(0, 2.5), clipped to 0..100",
     }
+    if canopy:
+        np.savez_compressed(root / "truth" / "canopy.npz", paddock=paddock_ids, **paddock_props,
+                            reflectance=paddock_refl, wavelength=wl)
+        facts["canopy"] = {"paddock_px": PADDOCK_PX, "ranges": CANOPY_RANGES, "line_geometry": geoms,
+                           "plots": n_canopy_plots, "model": "PROSPECT-D + 4SAIL via swathmill's wrapper",
+                           "measured": "lai: fraction-weighted paddock LAI x (1 + N(0, 0.08)); "
+                                       "cab: paddock Cab + N(0, 3), on features at least 80 % green vegetation"}
     facts_json = root / "scenario.json"
     facts_json.write_text(json.dumps(facts, indent=1))
     return ScenarioFiles(root, tuple(line_paths), table, lib, gref, ab_path, cl_path, npz, facts_json, facts)

@@ -16,7 +16,8 @@ Kernel
 """
 from __future__ import annotations
 
-from typing import Any, Literal, Mapping
+from pathlib import Path
+from typing import Any, Literal, Mapping, Sequence
 
 import numpy as np
 from pydantic import Field, field_validator, model_validator
@@ -30,8 +31,13 @@ from .forward import Geometry, RtmError, covered_bands
 from .lut import (TARGETS, UNITS, hybrid_from_bytes, hybrid_to_bytes, lut_search, predict_hybrid,
                   sample_parameters, simulate_entries, train_hybrid)
 
-__all__ = ["GeometryConfig", "ParameterRanges", "HybridConfig", "CanopyConfig", "canopy_step", "build_steps",
-           "select_tiles", "MASK_CLASSES"]
+__all__ = ["CAUTION_CANOPY", "GeometryConfig", "ParameterRanges", "HybridConfig", "CanopyConfig", "canopy_step", "build_steps",
+           "select_tiles", "MASK_CLASSES", "GEOMETRY_TAGS", "line_geometry_from_tags", "with_line_geometry",
+           "geometries"]
+
+CAUTION_CANOPY = ("The leaf and canopy property maps are estimates for research and planning; field checks and "
+                  "agronomic advice come before decisions on fertiliser or irrigation.")
+"""The caution the report adds when a run maps canopy properties."""
 
 MASK_CLASSES = ("inverted", "not_vegetation")  # vegetation mask classes 1 and 2 (0: no data)
 
@@ -109,11 +115,20 @@ class CanopyConfig(Section):
     hybrid: HybridConfig = HybridConfig()
     ndvi_threshold: float = Field(0.3, ge=-1.0, le=1.0,
                                   description="pixels with a lower NDVI (670/800 nm) are flagged, not inverted")
+    line_geometry: list[GeometryConfig | None] | None = Field(
+        None, description="sun and view angles of each flight line, in the mosaic's line order (None entries "
+                          "use 'geometry'); filled from the lines' tags when the pipeline builds the step")
+    source: str = Field("mosaic/source", description="the layer naming each pixel's flight line ('step/output'), "
+                                                     "read when the lines' geometries differ")
+    reference_columns: dict[Literal["lai", "cab", "cw", "cm"], str] = Field(
+        default_factory=lambda: {t: t for t in TARGETS},
+        description="retrieved property -> numeric column of the ground reference holding its measurements; "
+                    "the accuracy report validates each band against its column (absent columns are noted)")
 
-    @field_validator("input")
+    @field_validator("input", "source")
     @classmethod
-    def _ref(cls, v: str) -> str:
-        return check_ref(v, "input")
+    def _ref(cls, v: str, info: Any) -> str:
+        return check_ref(v, info.field_name)
 
     @field_validator("methods")
     @classmethod
@@ -121,6 +136,65 @@ class CanopyConfig(Section):
         if len(set(v)) != len(v):
             raise ValueError(f"methods repeat. Got {v}")
         return v
+
+
+# per-line geometry -------------------------------------------------------------------------------
+#: dataset tags of a flight line read as its sun and view angles (degrees)
+GEOMETRY_TAGS = ("sun_zenith", "view_zenith", "relative_azimuth")
+
+
+def line_geometry_from_tags(path: str | Path, default: GeometryConfig) -> GeometryConfig | None:
+    """The sun and view angles a flight line's dataset tags state, or None when it states none.
+
+    Tags ``sun_zenith`` (required once any is present), ``view_zenith`` and ``relative_azimuth``; a
+    missing view tag takes the value of ``default``.
+    """
+    import rasterio
+
+    with rasterio.open(path) as ds:
+        tags = {k.lower(): v for k, v in ds.tags().items()}
+    found = {k: tags[k] for k in GEOMETRY_TAGS if k in tags}
+    if not found:
+        return None
+    if "sun_zenith" not in found:
+        raise RtmError(f"{path}: tags {sorted(found)} state a view geometry without 'sun_zenith'")
+    values = default.model_dump()
+    for k, v in found.items():
+        try:
+            values[k] = float(str(v).strip())
+        except ValueError:
+            raise RtmError(f"{path}: tag {k}={v!r} is not a number of degrees") from None
+    try:
+        return GeometryConfig(**values)
+    except ValueError as exc:
+        raise RtmError(f"{path}: tags {found} are not valid angles: {exc}") from None
+
+
+def with_line_geometry(cfg: CanopyConfig, lines: Sequence[str | Path]) -> CanopyConfig:
+    """``cfg`` with ``line_geometry`` read from the tags of ``lines`` (the mosaic's lines, in order),
+    unless the section gives it; lines without geometry tags use ``cfg.geometry``."""
+    if cfg.line_geometry is not None:
+        if len(cfg.line_geometry) != len(lines):
+            raise RtmError(f"canopy.line_geometry has {len(cfg.line_geometry)} entries for {len(lines)} flight "
+                           "lines; give one per line (null for the section's geometry)")
+        return cfg
+    found = [line_geometry_from_tags(p, cfg.geometry) for p in lines]
+    if all(g is None for g in found):
+        return cfg
+    return cfg.model_copy(update={"line_geometry": found})
+
+
+def geometries(params: CanopyConfig) -> tuple[list[GeometryConfig], np.ndarray]:
+    """The distinct geometries the table is simulated for, and the geometry index of each source value
+    (0: no line, then the lines in order). Without line geometries: the section's one geometry."""
+    if not params.line_geometry:
+        return [params.geometry], np.zeros(1, np.int64)
+    per_line = [g or params.geometry for g in params.line_geometry]
+    distinct: list[GeometryConfig] = []
+    for g in per_line:
+        if g not in distinct:
+            distinct.append(g)
+    return distinct, np.array([0, *[distinct.index(g) for g in per_line]], np.int64)
 
 
 # ------------------------------------------------------------------------------------------------
@@ -199,10 +273,12 @@ def _accumulate(block: Block) -> dict:
     wl, fw = _wavelengths(block.meta)
     bands = inversion_bands(params, block.meta)
     names, table = sample_parameters(_ranges(params), params.lut_size, params.seed)
-    rows = np.arange(pos, params.lut_size, n)
-    spectra = simulate_entries(names, table, rows, params.geometry.geometry(), wl[bands],
-                               None if fw is None else fw[bands])
-    return {"rows": rows, "spectra": spectra}
+    geoms, _ = geometries(params)
+    e = params.lut_size
+    rows = np.arange(pos, e * len(geoms), n)  # entry j of geometry g is row g * e + j
+    parts = [simulate_entries(names, table, rows[rows // e == g] - g * e, geom.geometry(), wl[bands],
+                              None if fw is None else fw[bands]) for g, geom in enumerate(geoms)]
+    return {"rows": rows, "spectra": np.vstack(parts)}
 
 
 def _merge(a: dict, b: dict) -> dict:
@@ -216,10 +292,11 @@ def _merge(a: dict, b: dict) -> dict:
 
 def _finalize(acc: dict, params: CanopyConfig, meta: dict[str, InputMeta]) -> dict:
     rows = np.asarray(acc["rows"])
-    if acc["spectra"] is None or rows.size != params.lut_size or not np.array_equal(np.sort(rows),
-                                                                                     np.arange(params.lut_size)):
-        raise RtmError(f"the look-up table's simulation is incomplete: {rows.size} of {params.lut_size} entries")
-    spectra = np.empty((params.lut_size, acc["spectra"].shape[1]))
+    geoms, lookup = geometries(params)
+    total = params.lut_size * len(geoms)
+    if acc["spectra"] is None or rows.size != total or not np.array_equal(np.sort(rows), np.arange(total)):
+        raise RtmError(f"the look-up table's simulation is incomplete: {rows.size} of {total} entries")
+    spectra = np.empty((total, acc["spectra"].shape[1]))
     spectra[rows] = acc["spectra"]
     names, table = sample_parameters(_ranges(params), params.lut_size, params.seed)
     targets = np.ascontiguousarray(table[:, [names.index(t) for t in TARGETS]])
@@ -229,13 +306,17 @@ def _finalize(acc: dict, params: CanopyConfig, meta: dict[str, InputMeta]) -> di
         "table": table,
         "table_names": names,
         "targets": targets,
+        "geometries": np.array([[g.sun_zenith, g.view_zenith, g.relative_azimuth] for g in geoms]),
+        "geometry_of_source": lookup,
     }
     if "hybrid" in params.methods:
         h = params.hybrid
-        fitted = train_hybrid(spectra.astype(np.float32).astype(np.float64), targets, trees=h.trees,
-                              min_leaf=h.min_leaf, training_size=h.training_size, noise_relative=h.noise_relative,
-                              noise_absolute=h.noise_absolute, seed=params.seed)
-        model["hybrid_skops"] = hybrid_to_bytes(fitted)
+        e = params.lut_size
+        for g in range(len(geoms)):  # one forest per geometry, each on its own table
+            fitted = train_hybrid(spectra[g * e:(g + 1) * e].astype(np.float32).astype(np.float64), targets,
+                                  trees=h.trees, min_leaf=h.min_leaf, training_size=h.training_size,
+                                  noise_relative=h.noise_relative, noise_absolute=h.noise_absolute, seed=params.seed)
+            model[_hybrid_key(g)] = hybrid_to_bytes(fitted)
         model["hybrid_mean"] = fitted["mean"]
         model["hybrid_scale"] = fitted["scale"]
     return model
@@ -246,7 +327,8 @@ def _outputs(meta: dict[str, InputMeta], model: dict | None, params: CanopyConfi
     out: dict[str, OutputSpec] = {}
     for method in params.methods:
         out[method] = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"), role=Role.QUANTITY.value,
-                                 attrs={"units": units, "method": method})
+                                 attrs={"units": units, "method": method,
+                                        "reference_columns": dict(params.reference_columns)})
         out[f"{method}_sd"] = OutputSpec(bands=TARGETS, dtype="float32", nodata=float("nan"),
                                          role=Role.UNCERTAINTY.value,
                                          attrs={"units": units, "method": method, "of": method})
@@ -263,12 +345,18 @@ def _outputs(meta: dict[str, InputMeta], model: dict | None, params: CanopyConfi
 _HYBRID_CACHE: dict[str, dict] = {}
 
 
-def _hybrid(model: dict) -> dict:
-    raw = np.asarray(model["hybrid_skops"], dtype=np.uint8)
+def _hybrid_key(g: int) -> str:
+    """The model key of geometry ``g``'s forest (``hybrid_skops`` for the first)."""
+    return "hybrid_skops" if g == 0 else f"hybrid_skops_{g}"
+
+
+def _hybrid(model: dict, g: int = 0) -> dict:
+    raw = np.asarray(model[_hybrid_key(g)], dtype=np.uint8)
     import hashlib
     key = hashlib.sha256(raw.tobytes()).hexdigest()
     if key not in _HYBRID_CACHE:
-        _HYBRID_CACHE.clear()
+        if len(_HYBRID_CACHE) >= 8:
+            _HYBRID_CACHE.clear()
         _HYBRID_CACHE[key] = hybrid_from_bytes(raw, model["hybrid_mean"], model["hybrid_scale"])
     return _HYBRID_CACHE[key]
 
@@ -294,9 +382,22 @@ def canopy_kernel(block: Block, model: dict) -> dict[str, np.ndarray]:
     mask[veg] = 1
     out["vegetation"] = mask.reshape(1, rows, cols)
     xv = x[veg]
+    e = params.lut_size
+    lookup = np.asarray(model.get("geometry_of_source", np.zeros(1, np.int64)), dtype=np.int64)
+    if lookup.max() > 0:  # the lines' geometries differ: each pixel is inverted on its line's table
+        src = block.data["source"].reshape(-1).astype(np.int64)[veg]
+        if (src >= lookup.size).any():
+            raise RtmError(f"tile {block.tile.index}: source layer names line {int(src.max())}, but the canopy "
+                           f"step knows the geometry of {lookup.size - 1} line(s)")
+        gv = lookup[src]
+    else:
+        gv = np.zeros(xv.shape[0], np.int64)
+    groups = [(g, np.flatnonzero(gv == g)) for g in np.unique(gv)]
     if "lut" in params.methods:
-        est, spread, best = (np.empty((0, q)), np.empty((0, q)), np.empty(0)) if xv.shape[0] == 0 else \
-            lut_search(xv, model["spectra"], model["targets"], params.best_fraction)
+        est, spread, best = np.empty((xv.shape[0], q)), np.empty((xv.shape[0], q)), np.empty(xv.shape[0])
+        for g, idx in groups:
+            est[idx], spread[idx], best[idx] = lut_search(xv[idx], model["spectra"][g * e:(g + 1) * e],
+                                                          model["targets"], params.best_fraction)
         for name, vals in (("lut", est), ("lut_sd", spread)):
             a = np.full((q, rows * cols), np.nan, np.float32)
             a[:, veg] = vals.T
@@ -305,7 +406,9 @@ def canopy_kernel(block: Block, model: dict) -> dict[str, np.ndarray]:
         a[veg] = best
         out["fit_rmse"] = a.reshape(1, rows, cols)
     if "hybrid" in params.methods:
-        est, spread = (np.empty((0, q)), np.empty((0, q))) if xv.shape[0] == 0 else predict_hybrid(_hybrid(model), xv)
+        est, spread = np.empty((xv.shape[0], q)), np.empty((xv.shape[0], q))
+        for g, idx in groups:
+            est[idx], spread[idx] = predict_hybrid(_hybrid(model, int(g)), xv[idx])
         for name, vals in (("hybrid", est), ("hybrid_sd", spread)):
             a = np.full((q, rows * cols), np.nan, np.float32)
             a[:, veg] = vals.T
@@ -315,11 +418,18 @@ def canopy_kernel(block: Block, model: dict) -> dict[str, np.ndarray]:
 
 def canopy_step(cfg: CanopyConfig) -> Step:
     """The canopy inversion step for a config section (input alias ``cube``)."""
-    return Step(name=cfg.name, kernel=canopy_kernel, outputs=_outputs, inputs={"cube": cfg.input}, params=cfg,
+    inputs = {"cube": cfg.input}
+    if len(geometries(cfg)[0]) > 1:
+        inputs["source"] = cfg.source
+    return Step(name=cfg.name, kernel=canopy_kernel, outputs=_outputs, inputs=inputs, params=cfg,
                 fit=Fit(accumulate=_accumulate, merge=_merge, finalize=_finalize, select=select_tiles))
 
 
-def build_steps(section: CanopyConfig | Mapping[str, Any], ctx: Any = None) -> list[Step]:
-    """The steps of a ``canopy`` config section (one step)."""
+def build_steps(section: CanopyConfig | Mapping[str, Any], ctx: Any = None,
+                lines: Sequence[str | Path] | None = None) -> list[Step]:
+    """The steps of a ``canopy`` config section (one step); ``lines`` (the mosaic's flight lines, in
+    order) give per-line sun and view angles from their tags (see :func:`with_line_geometry`)."""
     cfg = section if isinstance(section, CanopyConfig) else CanopyConfig.model_validate(section)
+    if lines is not None:
+        cfg = with_line_geometry(cfg, lines)
     return [canopy_step(cfg)]
