@@ -71,6 +71,7 @@ class RunOptions:
     software_version: str = ENGINE_VERSION
     config_hash: str = ""
     warn_tasks: int = 50_000
+    incremental: str | None = None  # "frozen": per-tile keys, growing stores, kept models (tiles.incremental)
 
     def layout(self) -> StoreLayout:
         shard = self.shard or self.tile
@@ -213,8 +214,14 @@ class Run:
         dup = {n for n in names if names.count(n) > 1} | (set(names) & set(known))
         if dup:
             raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
+        if self.options.incremental:
+            from .incremental import run_step_incremental, start_invocation
+            start_invocation(self)
         for step in steps:
-            report = self._run_step(step, executor, layout, known, result)
+            if self.options.incremental:
+                report = run_step_incremental(self, step, executor, layout, known, result, self.options.incremental)
+            else:
+                report = self._run_step(step, executor, layout, known, result)
             result.steps.append(report)
             if not report.complete:
                 result.stopped_at = step.name
@@ -222,6 +229,8 @@ class Run:
                 if later:
                     self._say(result, f"step {step.name!r} did not finish; not started: {', '.join(later)}")
                 break
+        if self.options.incremental:
+            self.ledger.finish_invocation({"complete": result.ok})
         return result
 
     def _inputs(self, step: Step, known) -> tuple[dict[str, tuple[str, str]], dict[str, InputMeta], Grid, dict]:
@@ -450,6 +459,8 @@ def run_status(run_dir: Path) -> list[dict]:
         out = []
         for s in ledger.steps():
             done = ledger.done(s["name"], s["key"])
+            if s["info"].get("incremental"):  # per-tile keys (tiles.incremental)
+                done = set(ledger.tile_keys(s["name"]))
             failed = ledger.failed(s["name"], s["key"])
             total = s["total"] or 0
             out.append({"step": s["name"], "key": s["key"], "total": total, "done": len(done),

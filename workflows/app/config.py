@@ -72,6 +72,9 @@ class EngineConfig(Section):
     chunk: int | None = Field(None, ge=8, description="inner chunk size in pixels (divides tile)")
     zstd_level: int = Field(1, ge=0, le=22)
     export: bool = Field(True, description="write COG products and STAC items")
+    incremental: Literal["off", "frozen"] = Field(
+        "off", description="frozen: a growing campaign recomputes only the tiles its new or re-flown lines "
+                           "touch, with the fitted models of the first invocation kept")
 
 
 def _format_error(err: dict, data: Any, model: type[BaseModel]) -> str:

@@ -177,7 +177,10 @@ class Plan:
 
 
 def build_mosaic(cfg: RunConfig, base: Path) -> Step:
-    return build_mosaic_step(cfg.mosaic, base)
+    # the grid is anchored to the tile size unless the section says otherwise: tile indices then stay
+    # put as the campaign grows (swathmill.tiles.incremental)
+    section = cfg.mosaic if cfg.mosaic.anchor else cfg.mosaic.model_copy(update={"anchor": cfg.engine.tile})
+    return build_mosaic_step(section, base)
 
 
 def build_plan(cfg: RunConfig, base: Path) -> Plan:
@@ -304,7 +307,8 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
         raise InputError(str(exc)) from None
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
     opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
-                      export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash)
+                      export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash,
+                      incremental=None if cfg.engine.incremental == "off" else cfg.engine.incremental)
     try:
         opts.layout()
     except ValueError as exc:
