@@ -241,8 +241,8 @@ def test_reflown_line_replaces_the_old_one_everywhere(scene, tmp_path):
     grid = open_store(run_dir / "stores" / "mosaic.zarr").grid
     # the scene's pixel (row 42, col 110) was covered by the old line only; both stores share the grid
     # (its extent is still the centre line's and the old southeast line's footprint, anchored)
-    x, y = T0 * (110.5, 42.5)
-    c, r = (int(v) for v in ~grid.transform * (x, y))
+    x, y = T0 @ (110.5, 42.5)
+    c, r = (int(v) for v in ~grid.transform @ (x, y))
     assert old_src[0, r, c] == 2 and new["mosaic/source"][0, r, c] == 0
     assert new["mosaic/valid"][r, c] == 0
     # the kept brightness model knows only the current lines' contents
