@@ -45,7 +45,8 @@ if TYPE_CHECKING:  # pragma: no cover
     from .executors import Executor
     from .run import Run, RunResult, StepReport
 
-__all__ = ["MODES", "start_invocation", "run_step_incremental", "regrid_store", "campaign_history", "frozen_model_dir"]
+__all__ = ["MODES", "start_invocation", "run_step_incremental", "regrid_store", "campaign_history", "campaign_notes",
+           "frozen_model_dir"]
 
 MODES = ("frozen",)
 
@@ -415,3 +416,17 @@ def campaign_history(run_dir: Path) -> list[dict]:
         return out
     finally:
         ledger.close()
+
+
+def campaign_notes(run_dir: Path) -> list[str]:
+    """The campaign's history in sentences, one per incremental invocation (empty for other runs)."""
+    if not (Path(run_dir) / "ledger.sqlite").is_file():
+        return []
+    out = []
+    for n, h in enumerate(campaign_history(run_dir), 1):
+        events = ", ".join(f"{e['line']} {e['event']}" for e in h["lines"]) or "no line changed"
+        tiles = ", ".join(f"{step} {len(t)}" for step, t in h["tiles"].items()) or "none"
+        took = f"{h['seconds']:.1f} s" if h["seconds"] is not None else "did not finish"
+        out.append(f"Invocation {n} ({h['invocation']}, {h['mode']} models): {events}; tiles recomputed: "
+                   f"{tiles}; {took}.")
+    return out
