@@ -305,3 +305,40 @@ def main(argv: list[str] | None = None) -> int:
 
 if __name__ == "__main__":
     sys.exit(main())
+
+
+# ------------------------------------------------------------------------------- store growth
+
+
+def test_store_growth_interrupted_midway_is_finished_by_the_next_call(tmp_path):
+    """A kill between moving shard files and shifting the ledger: the journal lets a second call finish."""
+    from swathmill.tiles.incremental import regrid_store
+    from swathmill.tiles.step import OutputSpec
+    from swathmill.tiles.store import StoreLayout, create_store
+
+    old = Grid(32, 32, Affine(RES, 0, 500080.0, 0, -RES, 4000000.0), CRS)
+    new = Grid(64, 48, Affine(RES, 0, 500000.0, 0, -RES, 4000080.0), CRS)  # grown west and north
+    spec = {"out": OutputSpec(bands=("a", "b"), dtype="int16", nodata=-1)}
+    layout = StoreLayout(shard=TILE, chunk=TILE)
+    path = tmp_path / "s.zarr"
+    st = create_store(path, old, spec, layout)
+    data = np.arange(2 * 32 * 32, dtype=np.int16).reshape(2, 32, 32)
+    st.write("out", old.full, data)
+    st.write_valid(old.full, np.ones((32, 32), bool))
+    shifts = []
+
+    def killed(di, dj):
+        raise KeyboardInterrupt("killed")
+
+    with pytest.raises(KeyboardInterrupt):
+        regrid_store(path, old, new, TILE, spec, layout, {}, on_moved=killed)
+    assert (tmp_path / "s.zarr.regrid.json").is_file()
+    regrid_store(path, old, new, TILE, spec, layout, {}, on_moved=lambda di, dj: shifts.append((di, dj)))
+    assert shifts == [(1, 1)] and not (tmp_path / "s.zarr.regrid.json").exists()
+    grown = open_store(path)
+    assert grown.grid == new
+    got = grown.read("out", new.full)
+    # the old grid's corner is 1 tile (80 m) down and 1 tile right of the new one's
+    assert np.array_equal(got[:, 16:48, 16:48], data)
+    assert np.all(got[:, :16] == -1) and np.all(got[:, :, :16] == -1) and np.all(got[:, 48:] == -1)
+    assert grown.read_valid(new.full).sum() == 32 * 32
