@@ -64,17 +64,31 @@ def _file_hash(base: Path) -> str:
     return hashlib.sha256(base.with_suffix(".json").read_bytes() + base.with_suffix(".npz").read_bytes()).hexdigest()[:16]
 
 
-def _current_model(run_dir: Path, name: str) -> Path | None:
+def _fit_identity(step: Step) -> str:
+    """What a kept model was fitted for: the step's fit and settings (not its inputs or extent)."""
+    from .step import params_dump
+
+    params = step.params.campaign_free() if hasattr(step.params, "campaign_free") else params_dump(step.params)
+    fit = step.fit
+    return _sha("kept-fit", step.name, step.version, params,
+                [f"{f.__module__}.{f.__qualname__}" for f in (fit.accumulate, fit.merge, fit.finalize)] if fit else None)
+
+
+def _current_model(run_dir: Path, name: str, ident: str | None = None) -> Path | None:
+    """The kept model of step ``name``; None if there is none or it was fitted with other settings."""
     ptr = frozen_model_dir(run_dir) / f"{name}.current"
     if not ptr.is_file():
         return None
-    base = ptr.parent / ptr.read_text().strip()
+    lines = ptr.read_text().split()
+    if ident is not None and (len(lines) < 2 or lines[1] != ident):
+        return None
+    base = ptr.parent / lines[0]
     if base.with_suffix(".json").is_file() and base.with_suffix(".npz").is_file():
         return base
     return None
 
 
-def _keep_model(run_dir: Path, name: str, model: dict) -> Path:
+def _keep_model(run_dir: Path, name: str, model: dict, ident: str = "") -> Path:
     """Save ``model`` under its content hash and point ``<name>.current`` at it (atomically)."""
     d = frozen_model_dir(run_dir)
     d.mkdir(parents=True, exist_ok=True)
@@ -84,7 +98,7 @@ def _keep_model(run_dir: Path, name: str, model: dict) -> Path:
     for suf in (".json", ".npz"):
         os.replace(tmp.with_suffix(suf), base.with_suffix(suf))
     ptr_tmp = d / f"{name}.current.tmp"
-    ptr_tmp.write_text(base.name)
+    ptr_tmp.write_text(f"{base.name}\n{ident}\n")
     os.replace(ptr_tmp, d / f"{name}.current")
     return base
 
@@ -95,10 +109,13 @@ def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunRe
 
     if step.fit is None:
         return _Fitted()
-    base = _current_model(run.dir, step.name)
+    ident = _fit_identity(step)
+    base = _current_model(run.dir, step.name, ident)
     if base is None:
+        if _current_model(run.dir, step.name) is not None:
+            run._say(result, f"step {step.name!r}: its fit settings changed; the kept model is fitted again")
         fitted = run._fit(step, sp, executor, result)
-        base = _keep_model(run.dir, step.name, load_model(fitted.path))
+        base = _keep_model(run.dir, step.name, load_model(fitted.path), ident)
         run._say(result, f"step {step.name!r}: model fitted and kept for later invocations ({base.name})")
         return _Fitted(load_model(str(base)), str(base), _file_hash(base), "fitted")
     model = load_model(str(base))
@@ -111,7 +128,7 @@ def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunRe
         run.progress.start(step.name, len(tasks), 0, phase="fit")
         acc = executor.reduce(run_accumulate, tasks, step.fit.merge) if tasks else None
         run.progress.end(step.name)
-        base = _keep_model(run.dir, step.name, params.frozen_finalize(acc, model, sp.meta))
+        base = _keep_model(run.dir, step.name, params.frozen_finalize(acc, model, sp.meta), ident)
         run.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
         run._say(result, f"step {step.name!r}: kept model extended to new inputs over {len(tasks)} tiles "
                          f"({base.name})")
