@@ -36,6 +36,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from ..errors import SwathmillError
 from .grid import Grid, Tiling, Window, tile_origin
 from .step import OutputSpec, Step, canonical_json
 from .store import TileStore, create_store
@@ -43,12 +44,15 @@ from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 
 if TYPE_CHECKING:  # pragma: no cover
     from .executors import Executor
-    from .run import Run, RunResult, StepReport
 
-__all__ = ["MODES", "start_invocation", "run_step_incremental", "regrid_store", "campaign_history", "campaign_notes",
+__all__ = ["MODES", "IncrementalError", "start_invocation", "run_step_incremental", "regrid_store", "campaign_history", "campaign_notes",
            "frozen_model_dir"]
 
 MODES = ("frozen",)
+
+
+class IncrementalError(SwathmillError, ValueError):
+    """An incremental run cannot go ahead (unknown mode, a grid off the tile lattice)."""
 
 
 def _sha(*parts: Any) -> str:
@@ -103,10 +107,8 @@ def _keep_model(run_dir: Path, name: str, model: dict, ident: str = "") -> Path:
     return base
 
 
-def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunResult"):
+def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunResult", _Fitted: type):
     """The kept model of ``step`` (extended to new inputs where the step knows how), else a first fit."""
-    from .run import _Fitted
-
     if step.fit is None:
         return _Fitted()
     ident = _fit_identity(step)
@@ -341,22 +343,24 @@ def start_invocation(run: "Run") -> None:
 
 
 def run_step_incremental(run: "Run", step: Step, executor: "Executor", layout, known: dict,
-                         result: "RunResult", mode: str = "frozen") -> "StepReport":
-    """Run ``step`` under per-tile keys (see the module's description); the incremental ``Run._run_step``."""
-    from .run import PlanError, StepReport
+                         result: "RunResult", mode: str, StepReport: type, _Fitted: type) -> "StepReport":
+    """Run ``step`` under per-tile keys (see the module's description); the incremental ``Run._run_step``.
 
+    ``StepReport`` and ``_Fitted`` are the run module's classes (passed in: this module does not
+    import the run module, which calls it).
+    """
     if mode not in MODES:
-        raise PlanError(f"incremental mode must be one of {list(MODES)}. Got {mode!r}")
+        raise IncrementalError(f"incremental mode must be one of {list(MODES)}. Got {mode!r}")
     t_step = time.perf_counter()
     sp = run._plan_step(step, layout, known, result)
     try:
         origin = tile_origin(sp.grid, run.options.tile)
     except ValueError as exc:
-        raise PlanError(f"step {step.name!r}: an incremental run needs a grid anchored to the tile size: {exc}") from exc
+        raise IncrementalError(f"step {step.name!r}: an incremental run needs a grid anchored to the tile size: {exc}") from exc
     if step.reader is not None and hasattr(step.params, "line_changes"):
         for e in run.ledger.record_lines(step.params.line_changes()):
             run._say(result, f"campaign: line {e['line']!r} {e['event']}")
-    fitted = _frozen_fit(run, step, sp, executor, result)
+    fitted = _frozen_fit(run, step, sp, executor, result, _Fitted)
     outputs = step.resolve_outputs(sp.meta, fitted.model)
     stable, keyed = _stable_key(run, step, sp, fitted, outputs)
     tkeys = _tile_keys(run, step, sp, stable, keyed, fitted, origin)

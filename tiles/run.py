@@ -219,7 +219,8 @@ class Run:
             start_invocation(self)
         for step in steps:
             if self.options.incremental:
-                report = run_step_incremental(self, step, executor, layout, known, result, self.options.incremental)
+                report = run_step_incremental(self, step, executor, layout, known, result,
+                                              self.options.incremental, StepReport, _Fitted)
             else:
                 report = self._run_step(step, executor, layout, known, result)
             result.steps.append(report)
