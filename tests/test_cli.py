@@ -279,7 +279,11 @@ def test_library_unmixing_on_components_equals_unmixing_on_reflectance(tmp_path,
     on_pc = read_output(tmp_path / "run", "unmix/abundance")
     on_refl = read_output(tmp_path / "run2", "unmix/abundance")
     ok = np.isfinite(on_refl)
-    assert ok.mean() > 0.9
+    # the grid is anchored to the tile size, so its edges may hold nodata: count within the mosaic's data
+    from swathmill.tiles.store import open_store
+
+    mst = open_store(tmp_path / "run2" / "stores" / "mosaic.zarr")
+    assert ok[:, mst.read_valid(mst.grid.full).astype(bool)].mean() > 0.9
     np.testing.assert_allclose(on_pc[ok], on_refl[ok], atol=2e-4)
 
 

@@ -1,12 +1,13 @@
 """Immutable grids, windows and tilings: all index arithmetic of the engine lives here."""
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Iterator
 
 from affine import Affine
 
-__all__ = ["Window", "Grid", "Tile", "Tiling"]
+__all__ = ["Window", "Grid", "Tile", "Tiling", "anchor_grid", "tile_origin"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -176,3 +177,42 @@ class Tiling:
 
     def with_halo(self, halo: int) -> "Tiling":
         return Tiling(self.grid, self.size, halo)
+
+
+def anchor_grid(grid: Grid, size: int) -> Grid:
+    """``grid`` grown outwards so that its edges lie on multiples of ``size`` pixels in its CRS.
+
+    Tiles of ``size`` pixels over the result then have absolute indices (:func:`tile_origin`) that do
+    not move when the extent grows in any direction. Needs a north-up transform (no rotation).
+    """
+    t = grid.transform
+    if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
+        raise ValueError(f"anchoring needs a north-up grid without rotation. Got transform {tuple(t)[:6]}")
+    if size <= 0:
+        raise ValueError(f"anchor size must be positive. Got {size}")
+    sx, sy = size * t.a, size * -t.e
+    eps = 1e-9
+    left, bottom, right, top = grid.bounds
+    left = math.floor(left / sx + eps) * sx
+    top = math.ceil(top / sy - eps) * sy
+    right = math.ceil(right / sx - eps) * sx
+    bottom = math.floor(bottom / sy + eps) * sy
+    cols = max(size, int(round((right - left) / t.a)))
+    rows = max(size, int(round((top - bottom) / -t.e)))
+    return Grid(rows, cols, Affine(t.a, 0.0, left, 0.0, t.e, top), grid.crs)
+
+
+def tile_origin(grid: Grid, size: int) -> tuple[int, int]:
+    """Absolute (row, col) index of the tile at the grid's top-left corner, for tiles of ``size`` px.
+
+    Absolute tile row ``I`` covers y from ``-I * size * res_y`` downwards, absolute column ``J`` x from
+    ``J * size * res_x``; local tile (i, j) is absolute (I0 + i, J0 + j). Raises ``ValueError`` when the
+    grid's corner is not on that lattice (see :func:`anchor_grid`).
+    """
+    t = grid.transform
+    sx, sy = size * t.a, size * -t.e
+    J0, I0 = t.c / sx, -t.f / sy
+    if abs(J0 - round(J0)) > 1e-6 or abs(I0 - round(I0)) > 1e-6 or t.b != 0 or t.d != 0:
+        raise ValueError(f"the grid's corner ({t.c}, {t.f}) is not on the lattice of {size} px tiles "
+                         f"(multiples of {sx} x {sy} in its CRS); anchor the grid to the tile size")
+    return int(round(I0)), int(round(J0))

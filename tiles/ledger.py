@@ -24,6 +24,9 @@ CREATE TABLE IF NOT EXISTS history (invocation TEXT, name TEXT, key TEXT, i INTE
                                     status TEXT, time REAL);
 CREATE TABLE IF NOT EXISTS products (name TEXT, key TEXT, output TEXT, path TEXT, PRIMARY KEY (name, output));
 CREATE TABLE IF NOT EXISTS timings (invocation TEXT, name TEXT, phase TEXT, seconds REAL, time REAL);
+CREATE TABLE IF NOT EXISTS invocations (invocation TEXT PRIMARY KEY, mode TEXT, started REAL, finished REAL,
+                                        seconds REAL, info TEXT);
+CREATE TABLE IF NOT EXISTS campaign (invocation TEXT, line TEXT, fingerprint TEXT, event TEXT, time REAL);
 """
 
 
@@ -100,6 +103,95 @@ class Ledger:
         q = "SELECT invocation, name, key, i, j, status, time FROM history"
         rows = self.db.execute(q + (" WHERE name=?" if name else "") + " ORDER BY time", (name,) if name else ())
         return [dict(zip(("invocation", "name", "key", "i", "j", "status", "time"), r)) for r in rows]
+
+    # per-tile keys (incremental runs) -------------------------------------------------------------
+    def tile_keys(self, name: str) -> dict[tuple[int, int], str]:
+        """Finished tiles of step ``name`` and the per-tile key each was computed under."""
+        rows = self.db.execute("SELECT i, j, key FROM tiles WHERE name=? AND status='done'", (name,))
+        return {(i, j): k for i, j, k in rows}
+
+    def mark_tile(self, name: str, key: str, index: tuple[int, int], status: str, seconds: float = 0.0,
+                  error: str | None = None) -> None:
+        """Record tile ``index`` of ``name`` under its own key, replacing its record under any other key."""
+        now = time.time()
+        with self._transaction():
+            self.db.execute("DELETE FROM tiles WHERE name=? AND i=? AND j=?", (name, index[0], index[1]))
+            self.db.execute("INSERT INTO tiles VALUES (?,?,?,?,?,?,?,?)",
+                            (name, key, index[0], index[1], status, error, seconds, now))
+            self.db.execute("INSERT INTO history VALUES (?,?,?,?,?,?,?)",
+                            (self.invocation, name, key, index[0], index[1], status, now))
+
+    def regrid_step(self, name: str, old_grid: dict, new_grid: dict, di: int, dj: int) -> bool:
+        """Shift the tile indices of ``name`` by (di, dj) and record ``new_grid``, once, in one transaction.
+
+        Does nothing (returns False) when the step's recorded grid is not ``old_grid`` any more (the
+        shift was already made by an earlier, interrupted invocation).
+        """
+        with self._transaction():
+            row = self.db.execute("SELECT info FROM steps WHERE name=?", (name,)).fetchone()
+            info = json.loads(row[0] or "{}") if row else {}
+            if info.get("grid") != old_grid:
+                return False
+            self.db.execute("UPDATE tiles SET i=i+?, j=j+? WHERE name=?", (di, dj, name))
+            info["grid"] = new_grid
+            self.db.execute("UPDATE steps SET info=? WHERE name=?", (json.dumps(info, default=str), name))
+        return True
+
+    def step_info(self, name: str) -> dict | None:
+        row = self.db.execute("SELECT info FROM steps WHERE name=?", (name,)).fetchone()
+        return json.loads(row[0] or "{}") if row else None
+
+    # campaign history ------------------------------------------------------------------------------
+    def start_invocation(self, mode: str, info: dict | None = None) -> None:
+        self.db.execute("INSERT OR IGNORE INTO invocations VALUES (?,?,?,?,?,?)",
+                        (self.invocation, mode, time.time(), None, None, json.dumps(info or {}, default=str)))
+
+    def finish_invocation(self, info: dict | None = None) -> None:
+        """Stamp the invocation's end and its duration since it started (called after each ``execute``)."""
+        row = self.db.execute("SELECT info, started FROM invocations WHERE invocation=?", (self.invocation,)).fetchone()
+        if row is None:
+            return
+        merged = {**json.loads(row[0] or "{}"), **(info or {})}
+        now = time.time()
+        self.db.execute("UPDATE invocations SET finished=?, seconds=?, info=? WHERE invocation=?",
+                        (now, now - row[1], json.dumps(merged, default=str), self.invocation))
+
+    def invocations(self) -> list[dict]:
+        rows = self.db.execute("SELECT invocation, mode, started, finished, seconds, info FROM invocations "
+                               "ORDER BY started").fetchall()
+        return [{"invocation": r[0], "mode": r[1], "started": r[2], "finished": r[3], "seconds": r[4],
+                 "info": json.loads(r[5] or "{}")} for r in rows]
+
+    def lines(self) -> dict[str, str]:
+        """The campaign's current lines: name -> fingerprint (from the recorded events)."""
+        out: dict[str, str] = {}
+        for line, fp, event in self.db.execute("SELECT line, fingerprint, event FROM campaign ORDER BY time, rowid"):
+            if event == "removed":
+                out.pop(line, None)
+            else:
+                out[line] = fp
+        return out
+
+    def record_lines(self, lines: dict[str, str]) -> list[dict]:
+        """Compare ``lines`` (name -> fingerprint) with the recorded campaign, record and return the changes."""
+        before = self.lines()
+        now = time.time()
+        events = []
+        for name, fp in lines.items():
+            if name not in before:
+                events.append({"line": name, "fingerprint": fp, "event": "added"})
+            elif before[name] != fp:
+                events.append({"line": name, "fingerprint": fp, "event": "reflown"})
+        events += [{"line": n, "fingerprint": fp, "event": "removed"} for n, fp in before.items() if n not in lines]
+        with self._transaction():
+            for e in events:
+                self.db.execute("INSERT INTO campaign VALUES (?,?,?,?,?)",
+                                (self.invocation, e["line"], e["fingerprint"], e["event"], now))
+        return events
+
+    def campaign(self) -> list[dict]:
+        rows = self.db.execute("SELECT invocation, line, fingerprint, event, time FROM campaign ORDER BY time, rowid")
+        return [dict(zip(("invocation", "line", "fingerprint", "event", "time"), r)) for r in rows]
 
     # products and timings ------------------------------------------------------------------------
     def product(self, name: str, output: str) -> tuple[str, str] | None:

@@ -74,6 +74,7 @@ class RunOptions:
     warn_tasks: int = 50_000
     fuse: bool = True  # steps reading the same input share one read per tile (tiles/fuse.py)
     task_memory: int | None = None  # bytes one running task may hold (worker memory / threads); splits fused groups
+    incremental: str | None = None  # "frozen": per-tile keys, growing stores, kept models (tiles.incremental)
 
     def layout(self) -> StoreLayout:
         shard = self.shard or self.tile
@@ -216,10 +217,17 @@ class Run:
         dup = {n for n in names if names.count(n) > 1} | (set(names) & set(known))
         if dup:
             raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
-        groups = fusion_groups(steps) if self.options.fuse else [[s] for s in steps]
+        incremental = self.options.incremental
+        if incremental:  # per-tile keys step by step (fused passes are not combined with it yet)
+            from .incremental import run_step_incremental, start_invocation
+            start_invocation(self)
+        groups = fusion_groups(steps) if self.options.fuse and not incremental else [[s] for s in steps]
         started: set[str] = set()
         for group in groups:
-            if len(group) == 1:
+            if incremental:
+                reports = [run_step_incremental(self, group[0], executor, layout, known, result, incremental,
+                                                StepReport, _Fitted)]
+            elif len(group) == 1:
                 reports = [self._run_step(group[0], executor, layout, known, result)]
             else:
                 reports = self._run_group(group, executor, layout, known, result)
@@ -232,6 +240,8 @@ class Run:
                 if later:
                     self._say(result, f"step {bad.name!r} did not finish; not started: {', '.join(later)}")
                 break
+        if self.options.incremental:
+            self.ledger.finish_invocation({"complete": result.ok})
         return result
 
     def _inputs(self, step: Step, known) -> tuple[dict[str, tuple[str, str]], dict[str, InputMeta], Grid, dict]:
@@ -580,6 +590,8 @@ def run_status(run_dir: Path) -> list[dict]:
         out = []
         for s in ledger.steps():
             done = ledger.done(s["name"], s["key"])
+            if s["info"].get("incremental"):  # per-tile keys (tiles.incremental)
+                done = set(ledger.tile_keys(s["name"]))
             failed = ledger.failed(s["name"], s["key"])
             total = s["total"] or 0
             out.append({"step": s["name"], "key": s["key"], "total": total, "done": len(done),

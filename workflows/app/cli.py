@@ -205,9 +205,12 @@ def _status(run_dir: Path, as_json: bool) -> int:
     if why:
         print(f"swathmill: error: {why}", file=sys.stderr)
         return EXIT_INPUT
+    from swathmill.tiles.incremental import campaign_history, campaign_notes
+
     rows = run_status(run_dir)
     if as_json:
-        print(json.dumps({"run_dir": str(Path(run_dir).resolve()), "steps": rows}, indent=2))
+        print(json.dumps({"run_dir": str(Path(run_dir).resolve()), "steps": rows,
+                          "campaign": campaign_history(run_dir)}, indent=2))
     else:
         from rich.console import Console
         from rich.table import Table
@@ -222,6 +225,8 @@ def _status(run_dir: Path, as_json: bool) -> int:
         for r in rows:
             for tile, err in r["errors"].items():
                 con.print(f"  {r['step']} tile ({tile}): {err}", highlight=False, markup=False)
+        for note in campaign_notes(run_dir):
+            con.print(note, highlight=False, markup=False)
     incomplete = any(r["pending"] or r["failed"] for r in rows)
     return EXIT_FAILED if incomplete else EXIT_OK
 

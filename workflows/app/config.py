@@ -74,6 +74,9 @@ class EngineConfig(Section):
     zstd_level: int = Field(1, ge=0, le=22)
     export: bool = Field(True, description="write COG products and STAC items")
     fuse: bool = Field(True, description="steps reading the same input share one read per tile (fused passes)")
+    incremental: Literal["off", "frozen"] = Field(
+        "off", description="frozen: a growing campaign recomputes only the tiles its new or re-flown lines "
+                           "touch, with the fitted models of the first invocation kept")
 
 
 def _format_error(err: dict, data: Any, model: type[BaseModel]) -> str:

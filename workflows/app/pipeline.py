@@ -184,7 +184,10 @@ class Plan:
 
 
 def build_mosaic(cfg: RunConfig, base: Path) -> Step:
-    return build_mosaic_step(cfg.mosaic, base)
+    # the grid is anchored to the tile size unless the section says otherwise: tile indices then stay
+    # put as the campaign grows (swathmill.tiles.incremental)
+    section = cfg.mosaic if cfg.mosaic.anchor else cfg.mosaic.model_copy(update={"anchor": cfg.engine.tile})
+    return build_mosaic_step(section, base)
 
 
 def build_plan(cfg: RunConfig, base: Path) -> Plan:
@@ -357,7 +360,8 @@ def _run_options(cfg: RunConfig, config_path: Path, chash: str = "") -> RunOptio
     workers, threads, limit = _slots(cfg.execution)
     opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
                       export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash,
-                      fuse=cfg.engine.fuse, task_memory=(limit // threads) if limit else None)
+                      fuse=cfg.engine.fuse, task_memory=(limit // threads) if limit else None,
+                      incremental=None if cfg.engine.incremental == "off" else cfg.engine.incremental)
     try:
         opts.layout()
     except ValueError as exc:

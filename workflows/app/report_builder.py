@@ -336,6 +336,9 @@ def _timings(view: RunView, summary: ReportSummary) -> None:
         rows = ledger.timings()
     finally:
         ledger.close()
+    from swathmill.tiles.incremental import campaign_notes
+
+    summary.notes.extend(campaign_notes(view.dir))
     if not rows:
         return
     invocations = list(dict.fromkeys(r["invocation"] for r in rows))

@@ -38,7 +38,7 @@ from pydantic import Field, field_validator, model_validator
 
 from affine import Affine
 
-from swathmill.tiles.grid import Grid, Tile
+from swathmill.tiles.grid import Grid, Tile, Window, anchor_grid
 from swathmill.tiles.paths import resolve as resolve_path
 from swathmill.tiles.samples import pixel_sample_mask, tiles_touching
 from swathmill.workflows.params import Section
@@ -77,6 +77,7 @@ __all__ = [
     "merge_overlaps",
     "finalize_brightness",
     "solve_brightness",
+    "extend_brightness",
     "overlap_statistics",
     "select_overlap_tiles",
     "write_footprints",
@@ -133,6 +134,9 @@ class MosaicConfig(Section):
     acquisition_time: str | dict[str, str] | None = Field(
         None, description="ISO 8601 acquisition time (UTC unless it names a zone) for lines whose files carry "
                           "none: one for every line, or {line name: time}; a line's own tag wins")
+    anchor: int | None = Field(
+        None, ge=1, description="snap the grid's edges outwards to multiples of this many pixels in the CRS "
+                                "(the run sets it to the tile size, so tile indices stay put as the campaign grows)")
 
     @field_validator("bad_bands")
     @classmethod
@@ -267,6 +271,8 @@ def plan_mosaic(cfg: MosaicConfig, base_dir: str | Path = ".") -> MosaicPlan:
     wl = ref.wavelength[keep]
     fw = ref.fwhm[keep]
     grid = target_grid(lines, cfg.crs, cfg.resolution, cfg.bounds)
+    if cfg.anchor:
+        grid = anchor_grid(grid, int(cfg.anchor))
     yscale = grid.res[1] / grid.res[0]
     line_params: list[LineParams] = []
     spectral: dict[int, np.ndarray] = {}
@@ -430,9 +436,11 @@ class MosaicParams:
     sample_rates: Mapping[str, float] = field(default_factory=dict)
     overlap_shapes: Mapping[str, str] = field(default_factory=dict)
     grid_shape: tuple[int, int] = (0, 0)
+    fingerprints: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "lines", tuple(self.lines))
+        object.__setattr__(self, "fingerprints", tuple(self.fingerprints))
         object.__setattr__(self, "pairs", tuple(tuple(int(v) for v in p) for p in self.pairs))
         object.__setattr__(self, "grid_shape", tuple(int(v) for v in self.grid_shape))
 
@@ -443,6 +451,75 @@ class MosaicParams:
     @property
     def resampling(self) -> str:
         return self.section.resampling
+
+    # growing campaigns (see swathmill.tiles.incremental) ---------------------------------------------
+    def campaign_free(self) -> dict:
+        """What the step's key hashes in an incremental run: every setting that does not name the lines.
+
+        The lines themselves, their number and the extent enter each tile's own key instead
+        (:meth:`tile_identity`), so adding a line changes only the keys of the tiles it touches.
+        """
+        sec = self.section.model_dump(mode="json", exclude={"lines", "names", "bounds"})
+        # whether matching is on follows from the section and the lines; its gains enter the tile keys
+        return {"section": sec, "n_bands": self.n_bands, "yscale": self.yscale}
+
+    def line_changes(self) -> dict[str, str]:
+        """The campaign's lines as name -> content fingerprint (what the run's history records)."""
+        return {ln.name: fp for ln, fp in zip(self.lines, self.fingerprints)}
+
+    def tile_identity(self, window: Window, model: Mapping[str, Any] | None) -> list:
+        """What a tile whose padded window is ``window`` depends on: the lines the reader reads for it.
+
+        Per line: its number (the source layer's value), name, content fingerprint, how it is read
+        (bands, scales, resampling to the reference bands follows from the fingerprint and the step's
+        key) and, when brightness matching is on, a hash of its gain and offset rows.
+        """
+        import hashlib
+
+        out = []
+        for k, ln in enumerate(self.lines):
+            c0, r0, c1, r1 = ln.bbox_px
+            if c1 <= window.col or c0 >= window.col + window.cols or r1 <= window.row or r0 >= window.row + window.rows:
+                continue
+            entry = [int(ln.number), ln.name, self.fingerprints[k] if k < len(self.fingerprints) else ln.path,
+                     list(ln.bands), list(ln.scale), list(ln.offset), ln.nodata]
+            if model is not None and "gain" in model:
+                g = np.ascontiguousarray(np.asarray(model["gain"])[k], dtype=np.float64)
+                o = np.ascontiguousarray(np.asarray(model["offset"])[k], dtype=np.float64)
+                # no correction and gain 1, offset 0 give the same bytes (x * 1 + 0 == x in float32)
+                if not (np.all(g == 1.0) and np.all(o == 0.0)):
+                    entry.append(hashlib.sha256(g.tobytes() + o.tobytes()).hexdigest()[:16])
+            out.append(entry)
+        return out
+
+    def frozen_stale(self, model: Mapping[str, Any]) -> bool:
+        """Whether a kept brightness model lacks (or orders differently) any line of this plan."""
+        return [str(v) for v in model.get("fingerprints", [])] != list(self.fingerprints)
+
+    def _new_lines(self, model: Mapping[str, Any]) -> set[int]:
+        old = {str(v) for v in model.get("fingerprints", [])}
+        return {k + 1 for k, fp in enumerate(self.fingerprints) if fp not in old}
+
+    def frozen_select(self, tiles: Sequence[Tile], model: Mapping[str, Any]) -> list[Tile]:
+        """Tiles meeting an overlap of a line the kept model does not know (those are all its fit reads)."""
+        import shapely
+
+        new = self._new_lines(model)
+        shapes = [shapely.from_wkt(w) for key, w in self.overlap_shapes.items()
+                  if {int(v) for v in key.split("-")} & new]
+        if not shapes:
+            return []
+        return tiles_touching(tiles, shapes, Affine.scale(1.0, float(self.yscale)))
+
+    def frozen_finalize(self, acc: Mapping[str, np.ndarray] | None, model: Mapping[str, Any], meta: Any) -> dict:
+        """The kept model extended to this plan's lines: known lines keep their gains, new ones are fitted.
+
+        Lines are matched by content fingerprint (a re-flown line is a new line; a line no longer in
+        the campaign is dropped). The new lines' gains and offsets come from one least-squares
+        adjustment over their overlaps with each other and with the known lines, whose corrections are
+        held fixed (:func:`solve_brightness` with ``fixed``).
+        """
+        return extend_brightness(acc, model, self)
 
 
 def mosaic_step(plan: MosaicPlan) -> Step:
@@ -456,7 +533,7 @@ def mosaic_step(plan: MosaicPlan) -> Step:
         section=cfg, lines=tuple(plan.line_params), n_bands=int(len(plan.wavelength)),
         yscale=float(plan.grid.res[1] / plan.grid.res[0]), matching=matching, reference=plan.reference,
         pairs=tuple(tuple(p) for p in pairs), sample_rates=rates, overlap_shapes=dict(plan.overlap_shapes),
-        grid_shape=(plan.grid.rows, plan.grid.cols))
+        grid_shape=(plan.grid.rows, plan.grid.cols), fingerprints=tuple(ln.fingerprint or f"path:{ln.path}" for ln in plan.lines))
     static: dict[str, Any] = {f"segments_{k}": v for k, v in plan.segments.items()}
     static.update({f"spectral_{k}": v for k, v in plan.spectral.items()})
     static["footprints"] = footprints_geojson(plan.lines, plan.grid, plan.overlaps)
@@ -703,6 +780,7 @@ def solve_brightness(
     n_lines: int,
     reference: int = 1,
     min_samples: int = 10,
+    fixed: Mapping[int, tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> tuple[np.ndarray, np.ndarray, list[int]]:
     """One least-squares adjustment of per-band gains and offsets over all lines.
 
@@ -712,6 +790,10 @@ def solve_brightness(
     with at least ``min_samples`` samples keep ``g = 1, o = 0`` and are returned as unmatched. A
     ridge of 1e-12 times the mean diagonal pulls any direction the data leave free (e.g. a band that
     is constant over an overlap) towards no correction.
+
+    ``fixed`` holds lines whose (gain, offset) per band are known and kept (a growing campaign's
+    already-matched lines); they anchor the adjustment as the reference does, and the reference keeps
+    ``g = 1, o = 0`` unless it is among them.
 
     Returns
     -------
@@ -727,16 +809,22 @@ def solve_brightness(
     for i, j in used:
         adj[i].add(j)
         adj[j].add(i)
-    comp, todo = {reference}, [reference]
+    known: dict[int, tuple[np.ndarray, np.ndarray]] = {reference: (np.ones(max(nb, 0)), np.zeros(max(nb, 0)))}
+    for k, (g, o) in (fixed or {}).items():
+        known[int(k)] = (np.asarray(g, dtype=np.float64), np.asarray(o, dtype=np.float64))
+    comp, todo = set(known), list(known)
     while todo:
         for m in adj[todo.pop()]:
             if m not in comp:
                 comp.add(m)
                 todo.append(m)
     unmatched = sorted(set(range(1, n_lines + 1)) - comp)
-    if nb == 0 or len(comp) == 1:
+    for k, (g, o) in known.items():
+        if k != reference and g.shape == gain[k - 1].shape:
+            gain[k - 1], offset[k - 1] = g, o
+    if nb == 0 or len(comp) == len(known):
         return gain, offset, unmatched
-    free = sorted(comp - {reference})
+    free = sorted(comp - set(known))
     idx = {k: n for n, k in enumerate(free)}
     m = len(free)
     N = np.zeros((nb, 2 * m, 2 * m))
@@ -749,7 +837,7 @@ def solve_brightness(
         return m + idx[k] if k in idx else None
 
     for (i, j), s in used.items():
-        if i not in comp:
+        if i not in comp or (i in known and j in known):
             continue
         n, sx, sy, sxx, syy, sxy = s
         # residual r = g_i x + o_i - g_j y - o_j ; coefficient vector entries (variable, value)
@@ -758,16 +846,20 @@ def solve_brightness(
         # sums of products of the regressors: signs: +x, +1 for line i; -y, -1 for line j
         prod = {("x", "x"): sxx, ("x", "1"): sx, ("1", "1"): n, ("y", "y"): syy, ("y", "1"): sy,
                 ("x", "y"): sxy, ("1", "x"): sx, ("1", "y"): sy, ("y", "x"): sxy}
-        entries = [(v, a, 1.0) for v, a in terms_i] + [(v, a, -1.0) for v, a in terms_j]
-        for va, a, sa in entries:
-            for vb, b, sb in entries:
+        entries = [(v, a, 1.0, i) for v, a in terms_i] + [(v, a, -1.0, j) for v, a in terms_j]
+        for va, a, sa, _ in entries:
+            for vb, b, sb, kb in entries:
                 val = sa * sb * prod[(a, b)]
                 if va is not None and vb is not None:
                     N[:, va, vb] += val
                 elif va is not None and vb is None:
-                    # fixed variable (reference): g_ref = 1 contributes, o_ref = 0 does not
-                    if b in ("x", "y"):
-                        rhs[:, va] -= val
+                    # a fixed variable moves to the right-hand side with its value (the reference:
+                    # g = 1 contributes, o = 0 does not)
+                    if kb == reference and kb not in (fixed or {}):
+                        if b in ("x", "y"):
+                            rhs[:, va] -= val
+                    else:
+                        rhs[:, va] -= val * known[kb][0 if b in ("x", "y") else 1]
     ridge = 1e-12 * np.maximum(np.einsum("bii->b", N) / (2 * m), 1e-30)
     prior = np.concatenate([np.ones(m), np.zeros(m)])
     A = N + ridge[:, None, None] * np.eye(2 * m)[None]
@@ -833,6 +925,84 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: MosaicPara
         "gain": gain, "offset": offset, "pairs": pairs, "samples": samples, **stats,
         "reference": ref, "unmatched_lines": unmatched, "summary": summary,
         "statistics": "exact over the sampled overlap pixels, from the pair sums (no second pass)",
+        "fingerprints": list(params.fingerprints),
+    }
+
+
+def _pair_stats(keys, sums, gain, offset, nb):
+    P = len(keys)
+    stats = {name: np.zeros((P, nb)) for name in ("bias_before", "rmsd_before", "bias_after", "rmsd_after")}
+    summary = []
+    for p, (i, j) in enumerate(keys):
+        s = sums[(i, j)]
+        stats["bias_before"][p], stats["rmsd_before"][p] = overlap_statistics(s)
+        stats["bias_after"][p], stats["rmsd_after"][p] = overlap_statistics(s, gain[i - 1], offset[i - 1],
+                                                                            gain[j - 1], offset[j - 1])
+        before, after = float(stats["rmsd_before"][p].mean()), float(stats["rmsd_after"][p].mean())
+        bias_b, bias_a = float(np.abs(stats["bias_before"][p]).mean()), float(np.abs(stats["bias_after"][p]).mean())
+        summary.append({"pair": [i, j], "samples": int(s[0, 0]),
+                        "abs_bias_before": bias_b, "abs_bias_after": bias_a,
+                        "bias_reduction": (1.0 - bias_a / bias_b) if bias_b > 0 else 0.0,
+                        "rmsd_before": before, "rmsd_after": after,
+                        "rmsd_reduction": (1.0 - after / before) if before > 0 else 0.0})
+    return stats, summary
+
+
+def extend_brightness(acc: Mapping[str, np.ndarray] | None, model: Mapping[str, Any], params: "MosaicParams") -> dict:
+    """A kept brightness model carried over to ``params``' lines (see :meth:`MosaicParams.frozen_finalize`).
+
+    ``acc`` holds pair sums over the tiles meeting the new lines' overlaps; only pairs with a new line
+    are used. Statistics of pairs of known lines are carried over from ``model``; those of pairs with
+    a new line come from ``acc``.
+    """
+    n_lines, nb, ref = params.n_lines, params.n_bands, int(params.reference)
+    old_fp = [str(v) for v in model.get("fingerprints", [])]
+    old_at = {fp: m for m, fp in enumerate(old_fp)}
+    old_gain, old_offset = np.asarray(model["gain"], np.float64), np.asarray(model["offset"], np.float64)
+    fixed = {k + 1: (old_gain[old_at[fp]], old_offset[old_at[fp]])
+             for k, fp in enumerate(params.fingerprints) if fp in old_at}
+    new = {k + 1 for k, fp in enumerate(params.fingerprints) if fp not in old_at}
+    sums = {tuple(int(v) for v in k.split("-")): v for k, v in (acc or {}).items()}
+    sums = {k: v for k, v in sums.items() if set(k) & new}
+    gain, offset, unmatched = solve_brightness(sums, n_lines, ref, fixed=fixed)
+    if gain.shape[1] != nb:  # no usable pair at all: known lines keep theirs, new ones none
+        gain, offset = np.ones((n_lines, nb)), np.zeros((n_lines, nb))
+        for k, (g, o) in fixed.items():
+            gain[k - 1], offset[k - 1] = g, o
+    # carried-over statistics of pairs of known lines, renumbered
+    renum = {old_at[fp] + 1: k + 1 for k, fp in enumerate(params.fingerprints) if fp in old_at}
+    carried = {}
+    old_pairs = np.asarray(model.get("pairs", np.zeros((0, 2))), dtype=np.int64).reshape(-1, 2)
+    for p, (i, j) in enumerate(old_pairs.tolist()):
+        if i in renum and j in renum:
+            carried[tuple(sorted((renum[i], renum[j])))] = p
+    keys = sorted(set(sums) | set(carried))
+    stats_new, summary_new = _pair_stats(sorted(sums), sums, gain, offset, nb)
+    at_new = {k: n for n, k in enumerate(sorted(sums))}
+    P = len(keys)
+    stats = {name: np.zeros((P, nb)) for name in ("bias_before", "rmsd_before", "bias_after", "rmsd_after")}
+    samples = np.zeros(P, dtype=np.int64)
+    summary = []
+    old_summary = list(model.get("summary", []))
+    for p, key in enumerate(keys):
+        if key in at_new:
+            n = at_new[key]
+            for name in stats:
+                stats[name][p] = stats_new[name][n]
+            samples[p] = int(sums[key][0, 0])
+            summary.append(summary_new[n])
+        else:
+            q = carried[key]
+            for name in stats:
+                stats[name][p] = np.asarray(model[name])[q]
+            samples[p] = int(np.asarray(model["samples"])[q])
+            summary.append({**old_summary[q], "pair": list(key)} if q < len(old_summary) else {"pair": list(key)})
+    return {
+        "gain": gain, "offset": offset, "pairs": np.array(keys, dtype=np.int64).reshape(P, 2), "samples": samples,
+        **stats, "reference": ref, "unmatched_lines": unmatched, "summary": summary,
+        "statistics": "exact over the sampled overlap pixels, from the pair sums (no second pass); known "
+                      "lines kept their corrections, new lines were matched to them",
+        "fingerprints": list(params.fingerprints),
     }
 
 
