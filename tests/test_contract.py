@@ -188,6 +188,13 @@ def _svm_section():
     return SvmSettings(C=[1.0, 100.0], gamma=[1e-3, 1e-1], folds=3, probability=True)
 
 
+def _svm_compare_section():
+    """An SVM that records its feature-count curve against another input (curve_compare needs the curve)."""
+    from swathmill.workflows.methods.classify.svm import SvmSettings
+
+    return SvmSettings(C=[1.0, 100.0], gamma=[1e-3, 1e-1], folds=3, curve=True, curve_compare=["src/other"])
+
+
 def _svm(section):
     from swathmill.workflows.methods.classify.svm import svm_step
 
@@ -288,6 +295,14 @@ def _canopy_section():
     return CanopyConfig(**tr.CFG)
 
 
+def _canopy_lines_section():
+    """A canopy section with sun and view angles per flight line (the second line on the section's own)."""
+    import test_rtm as tr
+    from swathmill.workflows.methods.rtm import CanopyConfig
+
+    return CanopyConfig(**tr.CFG, line_geometry=[{"sun_zenith": 40.0}, None])
+
+
 def _canopy(section):
     from swathmill.workflows.methods.rtm import canopy_step
 
@@ -317,7 +332,7 @@ CASES = [
     Case("sam", _sam_section, _sam, _patches),
     Case("sam_image", _sam_section, _sam_image, _patches),
     Case("sff", _sff_section, _sff, _patches),
-    Case("svm", _svm_section, _svm, _patches),
+    Case("svm", _svm_section, _svm, _patches, also=(_svm_compare_section,)),
     *(Case(f"unmix_{m}", _unmix_section(m), _unmix, _mixtures)
       for m in ("unconstrained", "sum_to_one", "nonnegative", "fully_constrained")),
     *(Case(f"endmembers_{m}", _extraction_section(m), _endmembers, _simplex) for m in ("atgp", "nfindr", "vca")),
@@ -326,7 +341,7 @@ CASES = [
       for m in ("linear", "pls", "svr")),
     Case("bands_sffs", _bands_section("sffs"), _bands, _separable),
     Case("bands_linear_prediction", _bands_section("linear_prediction"), _bands, _separable),
-    Case("canopy", _canopy_section, _canopy, _canopy_cube),
+    Case("canopy", _canopy_section, _canopy, _canopy_cube, also=(_canopy_lines_section,)),
 ]
 BY_NAME = {c.name: c for c in CASES}
 # The kill test runs a subprocess per case (a few seconds of start-up each, more on a shared machine),

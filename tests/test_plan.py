@@ -27,23 +27,34 @@ def _plan(capsys, cfg: Path, *extra: str) -> dict:
     return json.loads(capsys.readouterr().out)
 
 
+
+def _grid_pixels(cfg: Path) -> int:
+    """Pixels of the run's mosaic grid (the lines' extent anchored to whole tiles), as the pipeline builds it."""
+    from swathmill.workflows.app.pipeline import build_mosaic, load_run_config
+
+    run_cfg, _ = load_run_config(cfg)
+    g = build_mosaic(run_cfg, cfg.parent).grid
+    return g.rows * g.cols
+
+
 def test_plan_counts_without_running(tmp_path, capsys):
     cfg = tc._config(tmp_path)
     plan = _plan(capsys, cfg)
     assert not (tmp_path / "run").exists()  # nothing written, not even the run directory
     steps = {s["step"]: s for s in plan["steps"]}
     assert list(steps) == ["mosaic", "pca"]
-    # the mosaic grid of the two lines (40 rows; columns 0..64) in tiles of 16 px: 3 x 4 tiles
+    # the mosaic grid of the two lines (40 rows, anchored to whole tiles; columns 0..64) in tiles of
+    # 16 px: 3 x 4 tiles
     assert steps["mosaic"]["tiles"] == 12 and steps["pca"]["tiles"] == 12
     # the PCA fits over every tile, then computes every tile: 24 tasks
     assert steps["pca"]["fit_tiles"] == 12 and steps["pca"]["tasks"] == 24
     # the mosaic's store, uncompressed: int16 reflectance, the uint8 source layer and the uint8 valid mask
-    assert steps["mosaic"]["bytes_written"] == 40 * 64 * (tc.BANDS * 2 + 1 + 1)
+    assert steps["mosaic"]["bytes_written"] == _grid_pixels(cfg) * (tc.BANDS * 2 + 1 + 1)
     # PCA reads the mosaic twice (its fit, then its tiles); its outputs come from the fitted model, so
     # without a probe they are counted as float32 with as many bands as the input, and marked so
     assert plan["passes"] == {"mosaic": 2}
     assert steps["pca"]["outputs_guessed"]
-    assert steps["pca"]["bytes_written"] == 40 * 64 * (tc.BANDS * 4 + 1)
+    assert steps["pca"]["bytes_written"] == _grid_pixels(cfg) * (tc.BANDS * 4 + 1)
     # no probe: no time, sizes on disk with the documented ratio (1.0: no compression counted on)
     assert plan["run"]["seconds"] is None and steps["pca"]["ratio"] == 1.0
     assert plan["workers"] == 1 and plan["threads_per_worker"] == 1  # the local executor of the config
@@ -74,7 +85,7 @@ def test_probe_times_each_step_and_measures_what_a_run_writes(tmp_path, capsys):
     assert steps["pca"]["memory"] >= 16 * 16 * tc.BANDS * 4
     assert plan["run"]["seconds"] > 0 and not plan["run"]["seconds_partial"]
     # the probe's fit gives the real outputs: 4 float32 components
-    assert not steps["pca"]["outputs_guessed"] and steps["pca"]["bytes_written"] == 40 * 64 * (4 * 4 + 1)
+    assert not steps["pca"]["outputs_guessed"] and steps["pca"]["bytes_written"] == _grid_pixels(cfg) * (4 * 4 + 1)
     # the estimate against a real run: the stores on disk within a factor of two of the estimate
     assert main(["run", str(cfg), "--plain"]) == 0
     capsys.readouterr()

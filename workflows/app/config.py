@@ -12,7 +12,7 @@ from typing import Any, Literal
 
 import yaml
 
-from pydantic import BaseModel, Field, ValidationError, model_validator
+from pydantic import BaseModel, Field, ValidationError, field_validator, model_validator
 
 from swathmill.errors import SwathmillError
 from swathmill.tiles.paths import resolve as resolve_path
@@ -77,6 +77,11 @@ class EngineConfig(Section):
     incremental: Literal["off", "frozen"] = Field(
         "off", description="frozen: a growing campaign recomputes only the tiles its new or re-flown lines "
                            "touch, with the fitted models of the first invocation kept")
+
+    @field_validator("incremental", mode="before")
+    @classmethod
+    def _yaml_off(cls, v: Any) -> Any:
+        return "off" if v is False else v  # YAML reads a bare `off` as false
 
 
 def _format_error(err: dict, data: Any, model: type[BaseModel]) -> str:
