@@ -439,11 +439,8 @@ def _assert_identical_stores(a: Path, b: Path) -> None:
     assert [k for k in sa if sa[k] != sb[k]] == []
 
 
-def test_local_executor_equals_dask(runs, dask_executor, request):
+def test_local_executor_equals_dask(runs, dask_executor):
     case, steps, _, _, tmp, tile = runs
-    if case.name == "canopy":  # a finding of this suite, left for the canopy step's owner to fix
-        request.applymarker(pytest.mark.xfail(strict=True, reason="the canopy step's stores differ between the "
-                                              "local and the Dask executor (found by this contract)"))
     _out, res = run_on_arrays(_steps(case), case.data(), tmp, tile=tile, run_name="dask", executor=dask_executor)
     assert res.ok
     _assert_identical_stores(tmp / "tiled", tmp / "dask")

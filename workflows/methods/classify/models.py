@@ -9,13 +9,12 @@ key; loading checks it.
 from __future__ import annotations
 
 import hashlib
-import io
-import json
-import zipfile
 from collections import OrderedDict
 from typing import Any, Mapping
 
 import numpy as np
+
+from swathmill.workflows.methods.estimators import deterministic_archive
 
 from .shared import ClassifyError
 
@@ -27,55 +26,11 @@ SKOPS_EXTRA_TRUSTED = (
 )
 
 
-def _deterministic_zip(data: bytes) -> bytes:
-    """Rewrite a skops archive so that the same model always gives the same bytes.
-
-    skops names nodes and array files after Python object ids (memory addresses), which change from
-    run to run. They are renumbered 1, 2, ... in order of first appearance in the schema (the same id
-    keeps the same number, so shared objects stay shared), members are sorted and timestamps fixed.
-    """
-    src = zipfile.ZipFile(io.BytesIO(data))
-    schema = json.loads(src.read("schema.json"))
-    ids: dict[int, int] = {}
-
-    def walk(node: Any) -> Any:
-        if isinstance(node, dict):
-            out = {}
-            for k, v in node.items():
-                if k == "__id__" and isinstance(v, int):
-                    out[k] = ids.setdefault(v, len(ids) + 1)
-                else:
-                    out[k] = walk(v)
-            if isinstance(out.get("file"), str) and out["file"].endswith(".npy"):
-                old = int(out["file"][:-4])
-                out["file"] = f"{ids.setdefault(old, len(ids) + 1)}.npy"
-            return out
-        if isinstance(node, list):
-            return [walk(v) for v in node]
-        return node
-
-    files: dict[str, bytes] = {"schema.json": json.dumps(walk(schema), indent=2).encode()}
-    for name in src.namelist():
-        if name == "schema.json":
-            continue
-        if not name.endswith(".npy") or not name[:-4].isdigit() or int(name[:-4]) not in ids:
-            raise ClassifyError(f"unexpected member {name!r} in the serialised SVM model")
-        files[f"{ids[int(name[:-4])]}.npy"] = src.read(name)
-    out = io.BytesIO()
-    with zipfile.ZipFile(out, "w", compression=zipfile.ZIP_DEFLATED) as dst:
-        for name in sorted(files):
-            info = zipfile.ZipInfo(name, date_time=(1980, 1, 1, 0, 0, 0))
-            info.compress_type = zipfile.ZIP_DEFLATED
-            info.external_attr = 0o644 << 16
-            dst.writestr(info, files[name])
-    return out.getvalue()
-
-
 def dump_estimators(classifier: Any, probability: Any | None) -> dict:
     """The model entries of fitted estimators: ``skops`` (uint8 bytes) and their ``sha256``."""
     import skops.io as sio
 
-    raw = _deterministic_zip(sio.dumps({"classifier": classifier, "probability": probability}))
+    raw = deterministic_archive(sio.dumps({"classifier": classifier, "probability": probability}))
     return {"skops": np.frombuffer(raw, dtype=np.uint8).copy(), "sha256": hashlib.sha256(raw).hexdigest()}
 
 

@@ -175,7 +175,10 @@ def hybrid_to_bytes(model: Mapping[str, Any]) -> np.ndarray:
     """The forest serialised with skops (no pickle), as uint8 for the engine's model file."""
     import skops.io as sio
 
-    return np.frombuffer(sio.dumps(model["forest"]), dtype=np.uint8).copy()
+    from swathmill.workflows.methods.estimators import deterministic_archive
+
+    # deterministic bytes: the same forest gives the same model hash (and step key) in any process
+    return np.frombuffer(deterministic_archive(sio.dumps(model["forest"]), "hybrid forest"), dtype=np.uint8).copy()
 
 
 TRUSTED = ("sklearn.ensemble._forest.RandomForestRegressor", "sklearn.tree._classes.DecisionTreeRegressor",
