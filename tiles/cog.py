@@ -160,7 +160,7 @@ def write_cog(
     categorical = spec.kind == "categorical"
     nodata = _check_nodata(name, spec, dtype)
     colormap = _colormap(name, spec, dtype) if categorical else None
-    units, scales, offsets = _band_attrs(name, spec)
+    _band_attrs(name, spec)  # refuses bad units, scales or offsets before anything is written
     factors = overview_factors(grid.rows, grid.cols, block)
     resampling = Resampling.mode if categorical else Resampling.average
     if cache_bytes is None:
@@ -183,33 +183,7 @@ def write_cog(
                 blockysize=block, compress="DEFLATE", zlevel=1, predictor=predictor, bigtiff="IF_SAFER",
                 interleave="pixel",
             )
-            stats = _Stats(nb, categorical, nodata, dtype)
-            with rasterio.open(tmp_tif, "w", **profile) as dst:
-                dst.descriptions = tuple(spec.bands)
-                if units is not None:
-                    dst.units = units
-                if scales is not None:
-                    dst.scales = scales
-                if offsets is not None:
-                    dst.offsets = offsets
-                dataset_tags = {**tags, "role": spec.role}
-                if categorical:
-                    classes = _class_table(spec)
-                    dataset_tags[_CLASS_TAG] = json.dumps(classes)
-                    dst.write_colormap(1, colormap)
-                dst.update_tags(**dataset_tags)
-                for b in range(nb):
-                    btags = {k: _tag_str(v[b]) for k, v in spec.coords.items()}
-                    btags.update({f"{k}_units": spec.attrs[f"{k}_units"] for k in spec.coords
-                                  if isinstance(spec.attrs.get(f"{k}_units"), str)})
-                    if categorical:
-                        btags[_CLASS_TAG] = json.dumps(_class_table(spec))
-                    if btags:
-                        dst.update_tags(b + 1, **btags)
-                for win in _windows(grid, block):
-                    arr = _read_checked(name, read_window, win, nb, dtype)
-                    stats.add(arr)
-                    dst.write(arr, window=rasterio.windows.Window(win.col, win.row, win.cols, win.rows))
+            stats = _write_tiled(name, tmp_tif, profile, read_window, grid, spec, tags, block, colormap)
             if factors:
                 with rasterio.open(tmp_tif, "r+") as dst:
                     dst.build_overviews(factors, resampling)
@@ -220,20 +194,67 @@ def write_cog(
             )
             tmp_tif.unlink()
             _check_product(name, tmp_cog, spec, grid, factors, stats, tags, colormap)
-        _fsync(tmp_cog)
-        aux = aux_path(path)
-        if categorical:
-            tmp_aux = path.parent / f".{name}.{token}.part.aux"
-            tmp_aux.write_text(category_aux_xml(spec, colormap), encoding="utf-8")
-            os.replace(tmp_aux, aux)
-        else:
-            aux.unlink(missing_ok=True)  # a class map's metadata must not outlive it under a new product
-        os.replace(tmp_cog, path)
-        _fsync(path.parent)
+        _put_in_place(tmp_cog, path, spec, colormap, token)
     finally:
         for p in (tmp_tif, tmp_cog, path.parent / f".{name}.{token}.part.aux"):
             p.unlink(missing_ok=True)
     return path
+
+
+def _write_tiled(name: str, tmp_tif: Path, profile: dict, read_window: Callable[[Window], np.ndarray],
+                 grid: Grid, spec: OutputSpec, tags: Mapping[str, str], block: int,
+                 colormap: dict | None) -> "_Stats":
+    """The intermediate tiled GeoTIFF of product ``name``: band descriptions, units, scales, tags, colour
+    table, then the pixels window by window (checked as they are read); returns their statistics for
+    the read-back checks."""
+    import rasterio
+
+    dtype = np.dtype(spec.dtype)
+    nb = len(spec.bands)
+    categorical = spec.kind == "categorical"
+    units, scales, offsets = _band_attrs(name, spec)
+    stats = _Stats(nb, categorical, profile["nodata"], dtype)
+    with rasterio.open(tmp_tif, "w", **profile) as dst:
+        dst.descriptions = tuple(spec.bands)
+        if units is not None:
+            dst.units = units
+        if scales is not None:
+            dst.scales = scales
+        if offsets is not None:
+            dst.offsets = offsets
+        dataset_tags = {**tags, "role": spec.role}
+        if categorical:
+            dataset_tags[_CLASS_TAG] = json.dumps(_class_table(spec))
+            dst.write_colormap(1, colormap)
+        dst.update_tags(**dataset_tags)
+        for b in range(nb):
+            btags = {k: _tag_str(v[b]) for k, v in spec.coords.items()}
+            btags.update({f"{k}_units": spec.attrs[f"{k}_units"] for k in spec.coords
+                          if isinstance(spec.attrs.get(f"{k}_units"), str)})
+            if categorical:
+                btags[_CLASS_TAG] = json.dumps(_class_table(spec))
+            if btags:
+                dst.update_tags(b + 1, **btags)
+        for win in _windows(grid, block):
+            arr = _read_checked(name, read_window, win, nb, dtype)
+            stats.add(arr)
+            dst.write(arr, window=rasterio.windows.Window(win.col, win.row, win.cols, win.rows))
+    return stats
+
+
+def _put_in_place(tmp_cog: Path, path: Path, spec: OutputSpec, colormap: dict | None, token: str) -> None:
+    """Rename the checked COG into place (synced), with a class map's GDAL auxiliary metadata beside it;
+    a product that is no class map removes a stale one of its name."""
+    _fsync(tmp_cog)
+    aux = aux_path(path)
+    if spec.kind == "categorical":
+        tmp_aux = path.parent / f".{path.name}.{token}.part.aux"
+        tmp_aux.write_text(category_aux_xml(spec, colormap), encoding="utf-8")
+        os.replace(tmp_aux, aux)
+    else:
+        aux.unlink(missing_ok=True)  # a class map's metadata must not outlive it under a new product
+    os.replace(tmp_cog, path)
+    _fsync(path.parent)
 
 
 def aux_path(path: Path) -> Path:
