@@ -165,10 +165,6 @@ def stac_item(
         With its self href set to the saved JSON (the JSON itself holds no self link).
     """
     import pystac
-    from pyproj import CRS
-    from pystac.extensions.classification import Classification, ClassificationExtension
-    from pystac.extensions.projection import ProjectionExtension
-    from pystac.extensions.raster import DataType, RasterBand, RasterExtension, Sampling
 
     cog_path = Path(cog_path)
     what = f"product {cog_path.name}"
@@ -179,9 +175,42 @@ def stac_item(
         raise ExportError(f"{what}: provenance lacks {missing}. Got keys {sorted(provenance)}")
     prov = {k: _maybe_json(v) for k, v in provenance.items()}
     created = _parse_time(prov["created"], f"{what}: provenance 'created'")
+    when, props, source = _item_time(spec, datetime, created, what)
+    geom, bbox = _footprint(grid)
+    item = pystac.Item(id=item_id, geometry=geom, bbox=bbox, datetime=when, properties=props)
+    item.common_metadata.created = created
+    item.properties[STAC_PREFIX + "datetime_from"] = source
+    item.properties["title"] = item_id
+
+    _add_projection(item, grid)
+
+    _add_processing(item, prov, created)
+
+    # the asset, its bands
+    asset = pystac.Asset(href=f"./{cog_path.name}", media_type=pystac.MediaType.COG, roles=["data"],
+                         title=item_id)
+    item.properties[STAC_PREFIX + "role"] = spec.role
+    item.add_asset("data", asset)
+    asset.common_metadata.created = created
+    if _add_bands(asset, spec, grid, what):
+        item.stac_extensions.append(EO_URI)
+
+    if spec.kind == "categorical":
+        _add_classes(asset, spec)
+
+    out = item_path(cog_path)
+    item.set_self_href(str(out))
+    validate_item_offline(item)
+    _write_json(out, item.to_dict(include_self_link=False, transform_hrefs=True))
+    return item
+
+
+def _item_time(spec: OutputSpec, datetime: Any, created: Any, what: str) -> tuple[Any, dict, str]:
+    """An item's time: given, the outputs' acquisition time (one instant or a start/end range), else the
+    processing time; and a word on where it came from."""
+    props: dict[str, Any] = {}
     start = spec.attrs.get("acquisition_start")
     end = spec.attrs.get("acquisition_end") or start
-    props: dict[str, Any] = {}
     if datetime is not None:
         when, source = _parse_time(datetime, f"{what}: datetime"), "given"
     elif start:
@@ -198,13 +227,14 @@ def stac_item(
     else:
         when, source = created, "processing time: no acquisition time known"
 
-    geom, bbox = _footprint(grid)
-    item = pystac.Item(id=item_id, geometry=geom, bbox=bbox, datetime=when, properties=props)
-    item.common_metadata.created = created
-    item.properties[STAC_PREFIX + "datetime_from"] = source
-    item.properties["title"] = item_id
+    return when, props, source
 
-    # projection extension
+
+def _add_projection(item: Any, grid: Grid) -> None:
+    """The projection extension: EPSG code (or WKT2), shape, transform and bounds of the grid."""
+    from pyproj import CRS
+    from pystac.extensions.projection import ProjectionExtension
+
     proj = ProjectionExtension.ext(item, add_if_missing=True)
     crs = CRS.from_user_input(grid.crs)
     auth = crs.to_authority()
@@ -217,7 +247,10 @@ def stac_item(
     proj.transform = [float(x) for x in list(grid.transform)[:6]]
     proj.bbox = [float(x) for x in grid.bounds]
 
-    # processing extension + provenance fields
+
+
+def _add_processing(item: Any, prov: Mapping[str, Any], created: Any) -> None:
+    """The processing extension (software, expression, lineage, time) and the provenance fields."""
     software = str(prov.get("software") or "swathmill")
     item.properties["processing:software"] = {software: str(prov["software_version"])}
     item.properties["processing:expression"] = {
@@ -233,12 +266,12 @@ def stac_item(
             continue  # already in processing:software, created, processing:expression
         item.properties[STAC_PREFIX + k] = v
 
-    # the asset, its bands
-    asset = pystac.Asset(href=f"./{cog_path.name}", media_type=pystac.MediaType.COG, roles=["data"],
-                         title=item_id)
-    item.properties[STAC_PREFIX + "role"] = spec.role
-    item.add_asset("data", asset)
-    asset.common_metadata.created = created
+
+def _add_bands(asset: Any, spec: OutputSpec, grid: Grid, what: str) -> bool:
+    """The asset's bands (name, type, nodata, unit, centre wavelength and FWHM where known) and their
+    raster extension; whether any band carries eo: fields."""
+    from pystac.extensions.raster import DataType, RasterBand, RasterExtension, Sampling
+
     dtype = np.dtype(spec.dtype)
     nodata = spec.nodata
     if isinstance(nodata, str):
@@ -261,26 +294,23 @@ def stac_item(
                                spatial_resolution=float(res_x) if math.isclose(res_x, res_y) else None)
         rbands.append(rb)
     asset.extra_fields["bands"] = bands
-    if any(k.startswith("eo:") for band in bands for k in band):
-        item.stac_extensions.append(EO_URI)
     RasterExtension.ext(asset, add_if_missing=True).bands = rbands
+    return any(k.startswith("eo:") for band in bands for k in band)
 
-    if spec.kind == "categorical":
-        classes = []
-        for value, cname, rgba in class_entries(spec):  # the same codes, names and colours as the COG
-            is_nodata = cname == "nodata" and rgba[3] == 0
-            desc = ("outside the mosaic (no data)" if is_nodata else
-                    "valid pixel that matched no class" if value == 0 else cname)
-            classes.append(Classification.create(
-                value=value, name=_slug(cname), title=cname, description=desc, nodata=True if is_nodata else None,
-                color_hint=None if is_nodata else "%02X%02X%02X" % tuple(rgba[:3])))
-        ClassificationExtension.ext(asset, add_if_missing=True).classes = classes
 
-    out = item_path(cog_path)
-    item.set_self_href(str(out))
-    validate_item_offline(item)
-    _write_json(out, item.to_dict(include_self_link=False, transform_hrefs=True))
-    return item
+def _add_classes(asset: Any, spec: OutputSpec) -> None:
+    """The classification extension of a class map: the COG's codes, names and colours."""
+    from pystac.extensions.classification import Classification, ClassificationExtension
+
+    classes = []
+    for value, cname, rgba in class_entries(spec):  # the same codes, names and colours as the COG
+        is_nodata = cname == "nodata" and rgba[3] == 0
+        desc = ("outside the mosaic (no data)" if is_nodata else
+                "valid pixel that matched no class" if value == 0 else cname)
+        classes.append(Classification.create(
+            value=value, name=_slug(cname), title=cname, description=desc, nodata=True if is_nodata else None,
+            color_hint=None if is_nodata else "%02X%02X%02X" % tuple(rgba[:3])))
+    ClassificationExtension.ext(asset, add_if_missing=True).classes = classes
 
 
 def stac_collection(
