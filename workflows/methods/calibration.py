@@ -437,61 +437,19 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
 
     curve: list[float] = []
     extra: dict[str, Any] = {}
+    score_map = score_offset = None
+    k: int | None = None
     if method == "svr":
-        eps = list(epsilon) if epsilon is not None else [f * float(np.std(y)) for f in (0.0, 0.05, 0.1, 0.2)]
-        grid = [(float(c), g if isinstance(g, str) else float(g), float(e)) for c in C for g in gamma for e in eps]
-        best_rmse, best, best_pred, best_folds = np.inf, None, None, None
-        scores: dict[str, float] = {}
-        for c, g, e in grid:
-            pred = np.empty(n)
-            folds_m = []
-            for tr, te in splits:
-                fm = _svr_fit(X[tr], y[tr], c, g, e)
-                pred[te] = _svr_apply(fm, X[te])
-                folds_m.append(fm)
-            rmse = float(np.sqrt(np.mean((pred - y) ** 2)))
-            scores[f"C={c:g},gamma={g},epsilon={e:g}"] = rmse
-            if rmse < best_rmse:
-                best_rmse, best, best_pred, best_folds = rmse, (c, g, e), pred, folds_m
-        k = None
-        cv_pred = best_pred
-        full = _svr_fit(X, y, *best)
-        fitted = _svr_apply(full, X)
+        cv_pred, fitted, low, high, extra = _fit_svr(X, y, splits, C, gamma, epsilon)
+        score_map, score_offset = extra.pop("score_map"), extra.pop("score_offset")
         coef, intercept = np.zeros(p), 0.0
-        nk = int(min(5, p, n - 1))
-        score_map, score_offset = _pca_score_map(X, nk)
-        scores_x = X @ score_map + score_offset
-        low, high = scores_x.min(0), scores_x.max(0)
-        extra = {**_svr_pack("svr", full),
-                 "svr_fold_sizes": np.array([f["sv"].shape[0] for f in best_folds], dtype=np.int64),
-                 "svr_fold_sv": np.concatenate([f["sv"] for f in best_folds], axis=0),
-                 "svr_fold_dual": np.concatenate([f["dual"] for f in best_folds]),
-                 **{f"svr_fold_{key}": np.array([f[key] for f in best_folds]) for key in ("mean", "scale", "b", "gamma")},
-                 "svr_best": {"C": best[0], "gamma": best[1], "epsilon": best[2],
-                              "gamma_value": float(full["gamma"])},
-                 "svr_grid": scores}
     elif method == "linear":
-        k = None
         cv_pred = cv_predict(None)
         coef, intercept = _ols(X, y)
-        score_map = score_offset = None
         low, high = X.min(0), X.max(0)
     elif method == "pls":
-        kmax = min(p, smallest_train - 1)
-        if n_components is not None:
-            if n_components > kmax:
-                raise CalibrationError(
-                    f"{where}: {n_components} PLS components exceed what {p} predictors and training folds "
-                    f"of {smallest_train} samples allow (at most {kmax})")
-            k = n_components
-            cv_pred = cv_predict(k)
-        else:
-            if kmax < 1:
-                raise CalibrationError(f"{where}: too few samples per training fold ({smallest_train}) for PLS")
-            preds = [cv_predict(j) for j in range(1, min(max_components, kmax) + 1)]
-            curve = [float(np.sqrt(np.mean((pr - y) ** 2))) for pr in preds]
-            k = int(np.argmin(curve)) + 1
-            cv_pred = preds[k - 1]
+        k, cv_pred, curve = _choose_pls_components(cv_predict, y, p, smallest_train, n_components,
+                                                   max_components, where)
         pls = _pls(X, y, k, scale)
         B, c = _affine_of(lambda A: pls.predict(A).reshape(len(A), -1), p)
         coef, intercept = B[:, 0], float(c[0])
@@ -522,6 +480,65 @@ def fit_calibration(X: np.ndarray, y: np.ndarray, *, method: Literal["linear", "
         model["score_offset"] = score_offset
     model.update(extra)
     return model
+
+
+def _fit_svr(X: np.ndarray, y: np.ndarray, splits: list, C: Sequence[float], gamma: Sequence[float | str],
+             epsilon: Sequence[float] | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, dict]:
+    """SVR: the (C, gamma, epsilon) of the smallest CV RMSE on ``splits``, refitted on every sample.
+
+    Returns the CV predictions of that choice, the refitted model's predictions, the range box of the
+    samples' first PCA scores (low, high), and the model entries (the refitted model, the CV-fold models
+    of the choice, the choice, the grid's CV RMSE, and the PCA score map of the range box).
+    """
+    n, p = X.shape
+    eps = list(epsilon) if epsilon is not None else [f * float(np.std(y)) for f in (0.0, 0.05, 0.1, 0.2)]
+    grid = [(float(c), g if isinstance(g, str) else float(g), float(e)) for c in C for g in gamma for e in eps]
+    best_rmse, best, best_pred, best_folds = np.inf, None, None, None
+    scores: dict[str, float] = {}
+    for c, g, e in grid:
+        pred = np.empty(n)
+        folds_m = []
+        for tr, te in splits:
+            fm = _svr_fit(X[tr], y[tr], c, g, e)
+            pred[te] = _svr_apply(fm, X[te])
+            folds_m.append(fm)
+        rmse = float(np.sqrt(np.mean((pred - y) ** 2)))
+        scores[f"C={c:g},gamma={g},epsilon={e:g}"] = rmse
+        if rmse < best_rmse:
+            best_rmse, best, best_pred, best_folds = rmse, (c, g, e), pred, folds_m
+    full = _svr_fit(X, y, *best)
+    fitted = _svr_apply(full, X)
+    nk = int(min(5, p, n - 1))
+    score_map, score_offset = _pca_score_map(X, nk)
+    scores_x = X @ score_map + score_offset
+    extra = {**_svr_pack("svr", full), "score_map": score_map, "score_offset": score_offset,
+             "svr_fold_sizes": np.array([f["sv"].shape[0] for f in best_folds], dtype=np.int64),
+             "svr_fold_sv": np.concatenate([f["sv"] for f in best_folds], axis=0),
+             "svr_fold_dual": np.concatenate([f["dual"] for f in best_folds]),
+             **{f"svr_fold_{key}": np.array([f[key] for f in best_folds]) for key in ("mean", "scale", "b", "gamma")},
+             "svr_best": {"C": best[0], "gamma": best[1], "epsilon": best[2],
+                          "gamma_value": float(full["gamma"])},
+             "svr_grid": scores}
+    return best_pred, fitted, scores_x.min(0), scores_x.max(0), extra
+
+
+def _choose_pls_components(cv_predict: Any, y: np.ndarray, p: int, smallest_train: int, n_components: int | None,
+                           max_components: int, where: str) -> tuple[int, np.ndarray, list[float]]:
+    """PLS components: as given (checked against what the training folds allow), else the count of the
+    smallest CV RMSE in 1..max_components. Returns the count, its CV predictions and the RMSE curve."""
+    kmax = min(p, smallest_train - 1)
+    if n_components is not None:
+        if n_components > kmax:
+            raise CalibrationError(
+                f"{where}: {n_components} PLS components exceed what {p} predictors and training folds "
+                f"of {smallest_train} samples allow (at most {kmax})")
+        return n_components, cv_predict(n_components), []
+    if kmax < 1:
+        raise CalibrationError(f"{where}: too few samples per training fold ({smallest_train}) for PLS")
+    preds = [cv_predict(j) for j in range(1, min(max_components, kmax) + 1)]
+    curve = [float(np.sqrt(np.mean((pr - y) ** 2))) for pr in preds]
+    k = int(np.argmin(curve)) + 1
+    return k, preds[k - 1], curve
 
 
 def predict_calibration(model: Mapping[str, Any], X: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
