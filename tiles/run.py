@@ -268,14 +268,9 @@ class Run:
     def _run_step(self, step: Step, executor: Executor, layout: StoreLayout, known, result: RunResult) -> StepReport:
         """One step: plan it, fit it, open its store, compute its pending tiles, export its products."""
         t_step = time.perf_counter()
-        sp = self._plan_step(step, layout, known, result)
-        fitted = self._fit(step, sp, executor, result)
-        outputs = step.resolve_outputs(sp.meta, fitted.model)
-        key = _sha("step", *sp.base, fitted.hash, {k: v.to_dict() for k, v in outputs.items()})
-        report = StepReport(step.name, key, total=len(sp.tiling), fit=fitted.state)
-        store, fresh = self._open_store(step, sp, key, outputs, fitted, report, result)
-        pending = self._pending_tiles(step, sp, key, store, fresh, outputs, report, result)
-        self._compute(step, sp, key, outputs, fitted, pending, executor, report)
+        m = self._prepare(step, executor, layout, known, result)
+        sp, fitted, outputs, key, report, store = m.sp, m.fitted, m.outputs, m.key, m.report, m.store
+        self._compute(step, sp, key, outputs, fitted, m.pending, executor, report)
         if report.complete:
             known[step.name] = (self.store_path(step.name), key, store)
         if report.complete and self.options.export:
@@ -284,6 +279,18 @@ class Run:
             self.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
         report.seconds = time.perf_counter() - t_step
         return report
+
+    def _prepare(self, step: Step, executor: Executor, layout: StoreLayout, known,
+                 result: RunResult) -> "_Member":
+        """Plan the step, fit it, key it on its model and outputs, open its store and find its pending tiles."""
+        sp = self._plan_step(step, layout, known, result)
+        fitted = self._fit(step, sp, executor, result)
+        outputs = step.resolve_outputs(sp.meta, fitted.model)
+        key = _sha("step", *sp.base, fitted.hash, {k: v.to_dict() for k, v in outputs.items()})
+        report = StepReport(step.name, key, total=len(sp.tiling), fit=fitted.state)
+        store, fresh = self._open_store(step, sp, key, outputs, fitted, report, result)
+        pending = self._pending_tiles(step, sp, key, store, fresh, outputs, report, result)
+        return _Member(step, sp, key, outputs, fitted, report, store, pending)
 
     def _plan_step(self, step: Step, layout: StoreLayout, known, result: RunResult) -> "_StepPlan":
         """The step's inputs, grid and tiling, checked against the store layout; the base of its keys."""
@@ -409,14 +416,7 @@ class Run:
         t_group = time.perf_counter()
         preps = []
         for step in group:
-            sp = self._plan_step(step, layout, known, result)
-            fitted = self._fit(step, sp, executor, result)
-            outputs = step.resolve_outputs(sp.meta, fitted.model)
-            key = _sha("step", *sp.base, fitted.hash, {k: v.to_dict() for k, v in outputs.items()})
-            report = StepReport(step.name, key, total=len(sp.tiling), fit=fitted.state)
-            store, fresh = self._open_store(step, sp, key, outputs, fitted, report, result)
-            pending = self._pending_tiles(step, sp, key, store, fresh, outputs, report, result)
-            preps.append(_Member(step, sp, key, outputs, fitted, report, store, pending))
+            preps.append(self._prepare(step, executor, layout, known, result))
         prep_s = time.perf_counter() - t_group
         for part in self._split_group(preps, layout):
             self._compute_fused(part, executor, result)
