@@ -905,22 +905,7 @@ def finalize_brightness(acc: Mapping[str, np.ndarray] | None, params: MosaicPara
     P = len(keys)
     pairs = np.array(keys, dtype=np.int64).reshape(P, 2)
     samples = np.array([int(sums[k][0, 0]) for k in keys], dtype=np.int64)
-    stats = {name: np.zeros((P, nb)) for name in ("bias_before", "rmsd_before", "bias_after", "rmsd_after")}
-    summary = []
-    for p, (i, j) in enumerate(keys):
-        s = sums[(i, j)]
-        stats["bias_before"][p], stats["rmsd_before"][p] = overlap_statistics(s)
-        stats["bias_after"][p], stats["rmsd_after"][p] = overlap_statistics(s, gain[i - 1], offset[i - 1],
-                                                                            gain[j - 1], offset[j - 1])
-        before = float(stats["rmsd_before"][p].mean())
-        after = float(stats["rmsd_after"][p].mean())
-        bias_b = float(np.abs(stats["bias_before"][p]).mean())
-        bias_a = float(np.abs(stats["bias_after"][p]).mean())
-        summary.append({"pair": [i, j], "samples": int(samples[p]),
-                        "abs_bias_before": bias_b, "abs_bias_after": bias_a,
-                        "bias_reduction": (1.0 - bias_a / bias_b) if bias_b > 0 else 0.0,
-                        "rmsd_before": before, "rmsd_after": after,
-                        "rmsd_reduction": (1.0 - after / before) if before > 0 else 0.0})
+    stats, summary = _pair_stats(keys, sums, gain, offset, nb)
     return {
         "gain": gain, "offset": offset, "pairs": pairs, "samples": samples, **stats,
         "reference": ref, "unmatched_lines": unmatched, "summary": summary,
