@@ -137,10 +137,6 @@ class Ledger:
             self.db.execute("UPDATE steps SET info=? WHERE name=?", (json.dumps(info, default=str), name))
         return True
 
-    def step_info(self, name: str) -> dict | None:
-        row = self.db.execute("SELECT info FROM steps WHERE name=?", (name,)).fetchone()
-        return json.loads(row[0] or "{}") if row else None
-
     # campaign history ------------------------------------------------------------------------------
     def start_invocation(self, mode: str, info: dict | None = None) -> None:
         self.db.execute("INSERT OR IGNORE INTO invocations VALUES (?,?,?,?,?,?)",
