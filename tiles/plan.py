@@ -1,7 +1,8 @@
 """The planner: what a list of steps will cost before anything heavy runs.
 
 :func:`estimate` counts, per step and for the run: tiles, tasks (fit and tile tasks), passes over each
-store (with the fused passes of :mod:`swathmill.tiles.fuse`), bytes read and written, disk needed,
+store (with the fused passes of :mod:`swathmill.tiles.fuse` and the fits of :mod:`swathmill.tiles.fitpass`
+that share a pass or ride on the pass making their input, as in a fresh run), bytes read and written, disk needed,
 peak memory per worker and, given a probe, a time estimate. It reads no pixel.
 
 :func:`probe` runs the steps for real on a few tiles in a scratch folder (inside the run directory, removed
@@ -217,7 +218,8 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
     groups = fusion_groups(steps) if fuse else [[s] for s in steps]
     group_of = {s.name: i for i, g in enumerate(groups) for s in g}
     passes: dict[str, int] = {}
-    counted_groups: set[tuple[int, str]] = set()
+    counted_groups: set[tuple] = set()
+    made: set[str] = set()  # steps (not sources) met so far
     out: list[StepEstimate] = []
     for step in steps:
         meta: dict[str, InputMeta] = {}
@@ -251,11 +253,20 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
             if step.fit.select is not None:
                 ft = list(step.fit.select(ft, step.params))
             fit_tiles = len(ft)
-            read += _read_area(_tiling(g, tile, step.fit.halo), layout.chunk, ft) * (in_bytes + 1)
-            for ref in set(step.inputs.values()):
-                src = ref.split("/")[0]
-                reads[src] = reads.get(src, 0) + 1
-                passes[src] = passes.get(src, 0) + 1
+            # as the engine does (tiles/fitpass.py): a fit with no halo over outputs of one earlier step rides
+            # on that step's pass; other fits of a fused group share one pass over their common input
+            srcs = {ref.split("/")[0] for ref in step.inputs.values()}
+            rides = (fuse and step.fit.halo == 0 and step.reader is None and len(srcs) == 1
+                     and srcs <= made)
+            fit_pass = (group_of[step.name], "fit", ",".join(sorted(step.inputs.values())))
+            first_fit = not fuse or fit_pass not in counted_groups
+            if not rides:
+                counted_groups.add(fit_pass)
+            if not rides and first_fit:
+                read += _read_area(_tiling(g, tile, step.fit.halo), layout.chunk, ft) * (in_bytes + 1)
+                for src in srcs:
+                    reads[src] = reads.get(src, 0) + 1
+                    passes[src] = passes.get(src, 0) + 1
         if step.reader is not None:
             read += int((reader_bytes or {}).get(step.name, 0))
         else:
@@ -299,6 +310,7 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
         out.append(StepEstimate(step.name, n, fit_tiles, n + fit_tiles, reads, int(read), int(written), disk, prod,
                                 int(mem), msrc, ratio, rsrc, guessed, secs, group_of[step.name], note))
         known[step.name] = (g, outputs)
+        made.add(step.name)
     return RunEstimate(out, workers, threads, memory_limit, tile, fuse, passes)
 
 

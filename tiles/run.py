@@ -26,8 +26,9 @@ from .ledger import Ledger, describe_changes
 from .lock import RunLock
 from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
+from .fitpass import FusedFit, PairTree, RidePlan, RidingFits, run_fused_fit
 from .fuse import FusedTask, fusion_groups, run_fused, shared_memory, split_by_memory, task_memory
-from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
+from .tasks import TileError, TileTask, load_model, run_accumulate, run_tile, save_model
 from ..errors import SwathmillError
 
 __all__ = ["Run", "RunOptions", "RunResult", "StepReport", "Progress", "PlanError", "ENGINE_VERSION", "plan_check"]
@@ -158,6 +159,8 @@ class Run:
         self.ledger: Ledger | None = None
         self.invocation = time.strftime("%Y%m%dT%H%M%S") + f"-{time.time_ns() % 10**6:06d}"
         self.known: dict[str, tuple[Path, str, TileStore]] = {}  # finished steps: (store path, key, store)
+        self._upcoming: list[Step] = []  # steps of later groups of the current execute() (fits may ride ahead)
+        self._prefit: dict[str, tuple[str, str]] = {}  # step -> (model base, how it was fitted ahead of its turn)
 
     # paths -----------------------------------------------------------------------------------------
     def store_path(self, name: str) -> Path:
@@ -223,7 +226,8 @@ class Run:
             start_invocation(self)
         groups = fusion_groups(steps) if self.options.fuse and not incremental else [[s] for s in steps]
         started: set[str] = set()
-        for group in groups:
+        for gi, group in enumerate(groups):
+            self._upcoming = [s for g in groups[gi + 1:] for s in g]
             if incremental:
                 reports = [run_step_incremental(self, group[0], executor, layout, known, result, incremental,
                                                 StepReport, _Fitted)]
@@ -270,7 +274,9 @@ class Run:
         t_step = time.perf_counter()
         m = self._prepare(step, executor, layout, known, result)
         sp, fitted, outputs, key, report, store = m.sp, m.fitted, m.outputs, m.key, m.report, m.store
-        self._compute(step, sp, key, outputs, fitted, m.pending, executor, report)
+        riding = self._plan_riders([m], layout, known)
+        self._compute(step, sp, key, outputs, fitted, m.pending, executor, report, riding)
+        self._land_riders(riding, executor, {step.name} if report.complete else set(), result)
         if report.complete:
             known[step.name] = (self.store_path(step.name), key, store)
         if report.complete and self.options.export:
@@ -309,23 +315,32 @@ class Run:
         base = (step.describe(), in_keys, version, self.options.tile, layout.__dict__)
         return _StepPlan(inputs, meta, grid, in_keys, tiling, version, base)
 
+    def _model_base(self, step: Step, sp: "_StepPlan") -> Path:
+        return self.dir / "models" / f"{step.name}-{_sha('fit', *sp.base)}"
+
+    def _fit_tiles(self, step: Step, sp: "_StepPlan") -> list:
+        tiles = list(Tiling(sp.grid, self.options.tile, step.fit.halo))
+        if step.fit.select is not None:
+            tiles = list(step.fit.select(tiles, step.params))
+        return tiles
+
     def _fit(self, step: Step, sp: "_StepPlan", executor: Executor, result: RunResult) -> "_Fitted":
         """Load the step's fitted model if one with the same fit key exists, else fit it over its tiles."""
         if step.fit is None:
             return _Fitted()
-        fit_key = _sha("fit", *sp.base)
-        mbase = self.dir / "models" / f"{step.name}-{fit_key}"
+        mbase = self._model_base(step, sp)
         if mbase.with_suffix(".json").is_file() and mbase.with_suffix(".npz").is_file():
-            state = "loaded"
+            ahead = self._prefit.pop(step.name, None)
+            how = ahead[1] if ahead and ahead[0] == str(mbase) else None
+            state = "fitted" if how else "loaded"
             model_hash = hashlib.sha256(mbase.with_suffix(".json").read_bytes()
                                         + mbase.with_suffix(".npz").read_bytes()).hexdigest()[:16]
-            self._say(result, f"step {step.name!r}: fitted model loaded from {mbase.name}")
+            self._say(result, f"step {step.name!r}: model fitted {how}, saved as {mbase.name}" if how
+                      else f"step {step.name!r}: fitted model loaded from {mbase.name}")
         else:
             t0 = time.perf_counter()
-            tiles = list(Tiling(sp.grid, self.options.tile, step.fit.halo))
-            if step.fit.select is not None:
-                tiles = list(step.fit.select(tiles, step.params))
-            tasks = [TileTask(step, t.index, sp.grid, self.options.tile, step.fit.halo, sp.inputs) for t in tiles]
+            tasks = [TileTask(step, t.index, sp.grid, self.options.tile, step.fit.halo, sp.inputs)
+                     for t in self._fit_tiles(step, sp)]
             self.progress.start(step.name, len(tasks), 0, phase="fit")
             acc = executor.reduce(run_accumulate, tasks, step.fit.merge)
             self.progress.end(step.name)
@@ -385,15 +400,17 @@ class Run:
         return pending
 
     def _compute(self, step: Step, sp: "_StepPlan", key: str, outputs: dict[str, OutputSpec], fitted: "_Fitted",
-                 pending: list, executor: Executor, report: StepReport) -> None:
+                 pending: list, executor: Executor, report: StepReport, riding: RidingFits | None = None) -> None:
         """Run the kernel on every pending tile; record each tile in the ledger once it is written."""
         spath = self.store_path(step.name)
         tasks = [TileTask(step, t.index, sp.grid, self.options.tile, step.halo, sp.inputs, str(spath), outputs,
-                          fitted.path) for t in pending]
+                          fitted.path, riding.riders(step.name, t.index) if riding else ()) for t in pending]
         self.progress.start(step.name, len(sp.tiling), report.done_before)
         t0 = time.perf_counter()
 
         def on_done(task: TileTask, res: dict) -> None:
+            if riding:
+                riding.take(task.index, res)
             self.ledger.mark(step.name, key, task.index, "done", res.get("seconds", 0.0))
             report.computed += 1
             self.progress.advance(step.name)
@@ -414,12 +431,15 @@ class Run:
         """Steps that read the same input: each is planned, fitted and opened on its own (own key,
         invalidation, ledger), then their pending tiles run in one pass that reads each tile once."""
         t_group = time.perf_counter()
+        self._shared_fits(group, executor, layout, known)
         preps = []
         for step in group:
             preps.append(self._prepare(step, executor, layout, known, result))
         prep_s = time.perf_counter() - t_group
+        riding = self._plan_riders(preps, layout, known)
         for part in self._split_group(preps, layout):
-            self._compute_fused(part, executor, result)
+            self._compute_fused(part, executor, result, riding)
+        self._land_riders(riding, executor, {m.step.name for m in preps if m.report.complete}, result)
         reports = []
         for m in preps:
             if m.report.complete:
@@ -450,11 +470,12 @@ class Run:
                      [[p.step.name for p in part] for part in out])
         return out
 
-    def _compute_fused(self, part: list["_Member"], executor: Executor, result: RunResult) -> None:
+    def _compute_fused(self, part: list["_Member"], executor: Executor, result: RunResult,
+                       riding: RidingFits | None = None) -> None:
         """One pass over the union of the members' pending tiles; each member's tile recorded on its own."""
         if len(part) == 1:
             m = part[0]
-            self._compute(m.step, m.sp, m.key, m.outputs, m.fitted, m.pending, executor, m.report)
+            self._compute(m.step, m.sp, m.key, m.outputs, m.fitted, m.pending, executor, m.report, riding)
             return
         by_tile: dict[tuple[int, int], list[TileTask]] = {}
         for m in part:
@@ -462,7 +483,7 @@ class Run:
             for t in m.pending:
                 by_tile.setdefault(t.index, []).append(TileTask(
                     m.step, t.index, m.sp.grid, self.options.tile, m.step.halo, m.sp.inputs, str(spath),
-                    m.outputs, m.fitted.path))
+                    m.outputs, m.fitted.path, riding.riders(m.step.name, t.index) if riding else ()))
         tasks = [FusedTask(tuple(v)) for _k, v in sorted(by_tile.items())]
         by_name = {m.step.name: m for m in part}
         for m in part:
@@ -478,6 +499,8 @@ class Run:
                     m.report.failed[task.index] = r["error"]
                     log.error("%s", r["error"])
                 else:
+                    if riding:
+                        riding.take(task.index, r)
                     secs = r.get("seconds", 0.0) + r.get("read_seconds", 0.0)
                     own[name] += secs
                     self.ledger.mark(name, m.key, task.index, "done", secs)
@@ -502,6 +525,96 @@ class Run:
             m.report.seconds += share
         self._say(result, f"fused pass over {len(tasks)} tiles for steps {', '.join(by_name)} "
                           f"({wall:.1f}s, each tile read once)")
+
+    # fits that read nothing again (tiles/fitpass.py) -------------------------------------------------
+    def _missing_fit(self, step: Step, layout: StoreLayout, known) -> tuple | None:
+        """``(plan, model base, fit tiles)`` of a step whose fitted model is not saved yet, else None."""
+        if step.fit is None or step.name in self._prefit:
+            return None
+        try:
+            sp = self._plan_step(step, layout, known, RunResult())
+        except PlanError:
+            return None  # said when its turn comes
+        mbase = self._model_base(step, sp)
+        if mbase.with_suffix(".json").is_file() and mbase.with_suffix(".npz").is_file():
+            return None
+        tiles = self._fit_tiles(step, sp)
+        return (sp, mbase, tiles) if tiles else None
+
+    def _shared_fits(self, group: Sequence[Step], executor: Executor, layout: StoreLayout, known) -> None:
+        """Fit, in one pass that reads each tile once, the steps of a fused group whose models are missing."""
+        todo = [(s, *f) for s in group if (f := self._missing_fit(s, layout, known)) is not None]
+        if len(todo) < 2:
+            return
+        trees, by_tile, secs = {}, {}, {s.name: 0.0 for s, *_ in todo}
+        for step, sp, _mbase, tiles in todo:
+            trees[step.name] = (PairTree(len(tiles), step.fit.merge), {t.index: k for k, t in enumerate(tiles)})
+            for t in tiles:
+                by_tile.setdefault(t.index, []).append(
+                    (step.name, TileTask(step, t.index, sp.grid, self.options.tile, step.fit.halo, sp.inputs)))
+        tasks = [FusedFit(tuple(v)) for _k, v in sorted(by_tile.items())]
+        errors: list[BaseException] = []
+
+        def on_done(task: FusedFit, res: dict) -> None:
+            for slot, (value, sec) in res.items():
+                tree, pos = trees[slot]
+                tree.push(pos[task.index], value)
+                secs[slot] += sec
+
+        label = "+".join(secs)
+        t0 = time.perf_counter()
+        self.progress.start(label, len(tasks), 0, phase="fit")
+        executor.map(run_fused_fit, tasks, on_done, lambda task, exc, tb: errors.append(exc))
+        self.progress.end(label)
+        if errors:
+            raise errors[0] if isinstance(errors[0], TileError) else TileError(str(errors[0]))
+        wall, total = time.perf_counter() - t0, sum(secs.values())
+        for step, sp, mbase, tiles in todo:
+            t1 = time.perf_counter()
+            save_model(step.fit.finalize(trees[step.name][0].result, step.params, sp.meta), mbase)
+            share = wall * (secs[step.name] / total if total else 1.0 / len(todo))
+            self.ledger.add_timing(step.name, "fit", share + time.perf_counter() - t1)
+            others = ", ".join(n for n in secs if n != step.name)
+            self._prefit[step.name] = (str(mbase), f"on {len(tiles)} tiles in a pass shared with {others} "
+                                                   "(each tile read once)")
+
+    def _plan_riders(self, members: Sequence["_Member"], layout: StoreLayout, known) -> RidingFits:
+        """Fits of later steps that read only outputs of a member computing tiles now, with a fit halo of 0:
+        they accumulate inside that member's tile tasks (fusion only, not in incremental runs)."""
+        if not self.options.fuse or self.options.incremental:
+            return RidingFits([], self.options.tile)
+        carriers = {m.step.name: m for m in members if m.pending}
+        plans = []
+        for s in self._upcoming:
+            srcs = {ref.split("/")[0] for ref in s.inputs.values()}
+            if (s.fit is None or s.fit.halo != 0 or s.reader is not None or len(srcs) != 1
+                    or not srcs <= set(carriers)):
+                continue
+            m = carriers[next(iter(srcs))]
+            ahead = dict(known)
+            ahead[m.step.name] = (self.store_path(m.step.name), m.key, m.store)
+            miss = self._missing_fit(s, layout, ahead)
+            if miss is not None:
+                sp, mbase, tiles = miss
+                plans.append(RidePlan(s, sp, mbase, tiles, m.step.name, PairTree(len(tiles), s.fit.merge),
+                                      {t.index: k for k, t in enumerate(tiles)}, set()))
+        return RidingFits(plans, self.options.tile)
+
+    def _land_riders(self, riding: RidingFits, executor: Executor, complete: set[str], result: RunResult) -> None:
+        """Finish the riding fits whose carriers completed and save their models for their turn."""
+        if not riding:
+            return
+        par = max(1, getattr(executor, "max_in_flight", 2) // 2)
+        for p, model, n_read in riding.finish(executor, complete):
+            t0 = time.perf_counter()
+            save_model(model, p.mbase)
+            self.ledger.add_timing(p.step.name, "fit", p.seconds / par + time.perf_counter() - t0)
+            self._prefit[p.step.name] = (str(p.mbase), f"during step {p.carrier!r}'s pass ({len(p.carried)} tiles "
+                                                       f"accumulated from memory, {n_read} read)")
+        for p in riding.plans:
+            if p.error is not None and p.carrier in complete:
+                log.info("step %r: its fit did not ride on %r's pass (%s); it fits on its own", p.step.name,
+                         p.carrier, p.error)
 
     def provenance(self, step: Step, key: str, in_keys: dict, model_hash: str | None) -> dict:
         return {

@@ -10,7 +10,7 @@ import time
 from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 import numpy as np
 
@@ -19,7 +19,7 @@ from .step import Block, InputMeta, OutputSpec, Step
 from .store import TileStore, decode, encode
 from ..errors import SwathmillError
 
-__all__ = ["TileTask", "run_tile", "compute_tile", "read_block", "run_accumulate", "load_model", "save_model", "TileError"]
+__all__ = ["TileTask", "Rider", "ride", "run_tile", "compute_tile", "read_block", "run_accumulate", "load_model", "save_model", "TileError"]
 
 
 class TileError(SwathmillError, RuntimeError):
@@ -37,6 +37,7 @@ class TileTask:
     out_path: str | None = None
     out_specs: dict[str, OutputSpec] = field(default_factory=dict)
     model_path: str | None = None
+    riders: tuple = ()  # fits of later steps that accumulate on the tile just written (tiles/fitpass.py)
 
     @property
     def tile(self) -> Tile:
@@ -173,7 +174,54 @@ def compute_tile(task: TileTask, block: Block, t0: float | None = None) -> dict:
         raise TileError(f"step {step.name!r}, {tile.name}: {exc}") from exc
     except Exception as exc:
         raise TileError(f"step {step.name!r}, {tile.name}: {type(exc).__name__}: {exc}") from exc
-    return {"seconds": time.perf_counter() - t0, "valid": int(valid.sum())}
+    res = {"seconds": time.perf_counter() - t0, "valid": int(valid.sum())}
+    if task.riders:
+        res["riders"] = ride(task.riders, store, arrays, valid)
+    return res
+
+
+@dataclass(frozen=True)
+class Rider:
+    """A later step's fit task carried by a tile task of the step that makes its input."""
+
+    slot: str
+    task: "TileTask"  # the fit task (halo 0; its inputs are outputs of the carrying step's store)
+
+
+def _block_from_written(task: TileTask, store: TileStore, arrays: Mapping[str, np.ndarray],
+                        valid: np.ndarray) -> Block:
+    """The block :func:`~swathmill.tiles.tasks.read_block` would read for ``task`` right after the
+    carrying tile wrote ``arrays`` (encoded, per output) and ``valid`` into ``store``."""
+    step, tile = task.step, task.tile
+    if tile.padded != tile.core:
+        raise ValueError(f"step {step.name!r}: a riding fit needs a halo of 0")
+    data, meta = {}, {}
+    for alias, (path, output) in task.inputs.items():
+        spec: OutputSpec = store.specs[output]
+        meta[alias] = InputMeta(f"{Path(path).stem}/{output}", store.grid, spec)
+        raw = np.array(arrays[output], copy=True, order="C")
+        data[alias] = decode(raw, spec) if step.decode else raw
+    v = np.array(valid, dtype=bool, copy=True)
+    if step.decode:
+        for arr in data.values():
+            arr[:, ~v] = np.nan
+    return Block(data=data, valid=v, tile=tile, grid=task.grid.window(tile.padded), params=step.params,
+                 static=step.static, meta=meta, decoded=step.decode)
+
+
+def ride(riders: tuple[Rider, ...], store: TileStore, arrays: Mapping[str, np.ndarray],
+         valid: np.ndarray) -> dict[str, dict]:
+    """Run each rider's accumulate on the tile just written: per slot ``{"value", "seconds"}`` or
+    ``{"error"}`` (a failing rider never fails the tile that carries it; its step fits on its own)."""
+    out: dict[str, dict] = {}
+    for r in riders:
+        t0 = time.perf_counter()
+        try:
+            value = r.task.step.fit.accumulate(_block_from_written(r.task, store, arrays, valid))
+            out[r.slot] = {"value": value, "seconds": time.perf_counter() - t0}
+        except Exception as exc:  # noqa: BLE001 - reported; the step then fits by reading
+            out[r.slot] = {"error": f"{type(exc).__name__}: {exc}"}
+    return out
 
 
 def _to_core(arr: np.ndarray, tile: Tile, name: str, step: Step) -> np.ndarray:
