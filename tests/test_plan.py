@@ -50,9 +50,10 @@ def test_plan_counts_without_running(tmp_path, capsys):
     assert steps["pca"]["fit_tiles"] == 12 and steps["pca"]["tasks"] == 24
     # the mosaic's store, uncompressed: int16 reflectance, the uint8 source layer and the uint8 valid mask
     assert steps["mosaic"]["bytes_written"] == _grid_pixels(cfg) * (tc.BANDS * 2 + 1 + 1)
-    # PCA reads the mosaic twice (its fit, then its tiles); its outputs come from the fitted model, so
-    # without a probe they are counted as float32 with as many bands as the input, and marked so
-    assert plan["passes"] == {"mosaic": 2}
+    # PCA reads the mosaic once: its fit rides on the mosaic's own pass (accumulating each tile as it is
+    # written), then its tiles; its outputs come from the fitted model, so without a probe they are
+    # counted as float32 with as many bands as the input, and marked so
+    assert plan["passes"] == {"mosaic": 1}
     assert steps["pca"]["outputs_guessed"]
     assert steps["pca"]["bytes_written"] == _grid_pixels(cfg) * (tc.BANDS * 4 + 1)
     # no probe: no time, sizes on disk with the documented ratio (1.0: no compression counted on)
@@ -66,8 +67,9 @@ def test_fusion_saves_passes_over_the_cube(tmp_path, capsys):
     fused = _plan(capsys, cfg)
     cfg = tc._config(tmp_path, features=FEATURES, engine={"tile": 16, "chunk": 16, "fuse": False})
     plain = _plan(capsys, cfg)
-    # unfused: PCA fit, PCA tiles, features tiles; fused: PCA and features share the tile pass
-    assert plain["passes"]["mosaic"] == 3 and fused["passes"]["mosaic"] == 2
+    # unfused: PCA fit, PCA tiles, features tiles; fused: the PCA fit rides on the mosaic's pass, PCA and
+    # features share the tile pass
+    assert plain["passes"]["mosaic"] == 3 and fused["passes"]["mosaic"] == 1
     assert fused["run"]["bytes_read"] < plain["run"]["bytes_read"]
 
 
@@ -98,11 +100,34 @@ def test_probe_times_each_step_and_measures_what_a_run_writes(tmp_path, capsys):
     assert [s["step"] for s in saved["steps"]] == ["mosaic", "pca", "feat"]
 
 
+def test_the_report_shows_the_saved_plan_beside_the_measured_run(tmp_path, capsys):
+    import html as h
+    import re
+
+    cfg = tc._config(tmp_path, features=FEATURES, report={"enabled": True})
+    assert main(["plan", str(cfg), "--probe", "--save"]) == 0
+    capsys.readouterr()
+    saved = json.loads((tmp_path / "run" / "estimate-plan.json").read_text())
+    assert saved["probe"] and saved["run"]["seconds"] > 0
+    assert main(["run", str(cfg), "--plain"]) == 0
+    capsys.readouterr()
+    page = h.unescape((tmp_path / "run" / "report.html").read_text())
+    assert "The plan against the run" in page and "estimate-plan.json (probed" in page
+    # one row per step: its estimated and measured seconds and store sizes, and their ratios
+    for name in ("mosaic", "pca", "feat"):
+        row = re.search(rf"<tr><td>{name}</td>(.*?)</tr>", page.split("The plan against the run")[1]).group(1)
+        cells = re.findall(r"<td[^>]*>(.*?)</td>", row)
+        assert len(cells) == 6 and all(c != "–" for c in cells), (name, cells)
+        store = tmp_path / "run" / "stores" / f"{name}.zarr"
+        measured = sum(p.stat().st_size for p in store.rglob("*") if p.is_file())
+        assert float(cells[4]) == pytest.approx(measured / 1e6, rel=1e-3)
+
+
 def test_plan_text_names_the_executor_and_the_passes(tmp_path, capsys):
     cfg = tc._config(tmp_path)
     assert main(["plan", str(cfg), "--executor", "dask", "--workers", "3"]) == 0
     out = capsys.readouterr().out
-    assert "3 worker(s) x 1 thread(s)" in out and "passes over each store: mosaic 2" in out
+    assert "3 worker(s) x 1 thread(s)" in out and "passes over each store: mosaic 1" in out
     assert "pca" in out and "mosaic" in out
 
 

@@ -104,12 +104,15 @@ def _parser() -> argparse.ArgumentParser:
     pl = sub.add_parser("plan", help="the cost of a run before running it: tiles, tasks, bytes, disk, memory, time",
                         description="Plan a run without running it: per step and for the run, tiles, tasks, passes "
                                     "over each store, bytes read and written, disk needed, peak memory per task and "
-                                    "a time estimate. Nothing is written unless --probe is given.")
+                                    "a time estimate. Nothing is written unless --probe or --save is given.")
     pl.add_argument("config", type=Path, help="the run's YAML configuration file")
     pl.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
     pl.add_argument("--probe", action="store_true",
                     help="run two tiles of each step in a scratch folder inside the run directory (removed "
                          "afterwards) to time them and measure compression and memory")
+    pl.add_argument("--save", action="store_true",
+                    help="keep the estimate in the run directory (estimate-plan.json): the report of the run "
+                         "shows it beside the measured times and sizes")
     pl.add_argument("--executor", choices=["local", "dask", "jobqueue"],
                     help="the executor whose workers the estimate assumes, instead of execution.executor")
     pl.add_argument("--workers", type=int, help="number of workers the estimate assumes, instead of execution.workers")
@@ -176,8 +179,8 @@ def _command(args: argparse.Namespace) -> int:
                               plain=args.plain)
         if args.command == "plan":
             from swathmill.workflows.app.pipeline import plan_config
-            return plan_config(args.config, as_json=args.json, probe=args.probe, executor=args.executor,
-                               workers=args.workers)
+            return plan_config(args.config, as_json=args.json, probe=args.probe, save=args.save,
+                               executor=args.executor, workers=args.workers)
         if args.command == "status":
             return _status(args.run_dir, args.json)
         if args.command == "demo":

@@ -452,9 +452,10 @@ def _save_estimate(path: Path, est, probed: bool = False) -> None:
 
 
 def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False, probe_tiles: int = 2,
-                executor: str | None = None, workers: int | None = None, out=None) -> int:
+                save: bool = False, executor: str | None = None, workers: int | None = None, out=None) -> int:
     """``swathmill plan``: the estimate of a run, without running it (``probe``: time a few tiles of each
-    step in a scratch folder inside the run directory, removed afterwards). Returns the exit code."""
+    step in a scratch folder inside the run directory, removed afterwards; ``save``: keep the estimate as
+    ``estimate-plan.json`` in the run directory for the report). Returns the exit code."""
     from swathmill.tiles.plan import probe as run_probe
 
     out = out or sys.stdout
@@ -481,6 +482,9 @@ def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False
                 if d.is_dir() and not any(d.iterdir()):
                     d.rmdir()
     est = estimate_run(cfg, base, plan, opts, probed)
+    if save:
+        run_dir.mkdir(parents=True, exist_ok=True)
+        _save_estimate(run_dir / "estimate-plan.json", est, probed=probe)
     if as_json:
         d = est.to_dict()
         d["probe"] = probe

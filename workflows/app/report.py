@@ -201,6 +201,17 @@ class AccuracyView:
 
 
 @dataclass
+class PlanCheck:
+    """The planner's estimate of one step next to what the run measured (None where either is unknown)."""
+
+    step: str
+    est_seconds: float | None = None  # wall seconds of its fit and tile tasks
+    seconds: float | None = None
+    est_disk: int | None = None  # bytes of its store on disk
+    disk: int | None = None
+
+
+@dataclass
 class StepTiming:
     """Wall time of one phase of one step (``phase`` e.g. "fit", "tiles", "export")."""
 
@@ -253,6 +264,8 @@ class ReportSummary:
     accuracy: list[AccuracyView] = field(default_factory=list)
     timings: list[StepTiming] = field(default_factory=list)
     timing_note: str = ""
+    estimates: list[PlanCheck] = field(default_factory=list)
+    estimate_note: str = ""
     parameters: list[StepParameters] = field(default_factory=list)
     crs_unit: str = ""
     """Unit of the map coordinates (e.g. "metre"): axis labels and the scale bar."""
@@ -664,6 +677,23 @@ def _e(s: object) -> str:
     return html.escape(str(s), quote=True)
 
 
+def _ratio(a: float | None, b: float | None) -> str:
+    return "–" if a is None or b is None or not b else f"{a / b:.2f}"
+
+
+def _plan_checks(s: ReportSummary) -> str:
+    """The planner's estimates beside the measured figures, so a reader learns how far to trust them."""
+    if not s.estimates:
+        return ""
+    mb = lambda v: None if v is None else v / 1e6  # noqa: E731
+    rows = [[_e(c.step), _num(c.est_seconds, 3), _num(c.seconds, 3), _ratio(c.est_seconds, c.seconds),
+             _num(mb(c.est_disk), 4), _num(mb(c.disk), 4), _ratio(c.est_disk, c.disk)] for c in s.estimates]
+    return ("<h3>The plan against the run</h3>"
+            + (f"<p>{_e(s.estimate_note)}</p>" if s.estimate_note else "")
+            + _table(["step", "estimated s (fit + tiles)", "measured s", "estimate / measured",
+                      "estimated store MB", "measured store MB", "estimate / measured"], rows))
+
+
 def _num(v: object, digits: int = 4) -> str:
     if v is None:
         return "–"
@@ -966,7 +996,7 @@ def render_html(summary: ReportSummary, *, max_pixels: int = 900) -> str:
                 + _table(["step", "phase", "seconds (all invocations)", "invocations", "seconds (latest)", "tiles"],
                          [[_e(t.step), _e(t.phase), _num(t.seconds, 3), str(t.invocations),
                            _num(t.last_seconds, 3), _num(t.tiles)] for t in s.timings])
-                + f"<p>Total {total:.1f} s.</p>" + _fig_timings(s.timings))
+                + f"<p>Total {total:.1f} s.</p>" + _fig_timings(s.timings) + _plan_checks(s))
     else:
         body = None
     add("timings", "Run time per step", body)

@@ -14,7 +14,7 @@ from swathmill.tiles.paths import resolve
 from swathmill.tiles.store import TileStore, decode
 
 from swathmill.workflows.app.report import (AccuracyView, ClassMapView, ContinuousMapView, EigenvalueCurve, FlightLine,
-                                            InputsSection, LineGains, Quicklook, ReportSummary, ScatterView,
+                                            InputsSection, LineGains, PlanCheck, Quicklook, ReportSummary, ScatterView,
                                             SpectraView, StepParameters, StepTiming, build_report, model_choice_html)
 from swathmill.workflows.app.runview import ACCURACY_FILE, RunView, is_class_map, with_role
 from swathmill.workflows.methods.accuracy import area_estimate, class_accuracy
@@ -35,7 +35,9 @@ def _thumb(store: TileStore, output: str, bands: list[int] | None = None, max_pi
     g = store.grid
     step = max(1, math.ceil(max(g.rows, g.cols) / max_pixels))
     arr = store.array(output)
-    sel_b = bands if bands is not None else list(range(arr.shape[0]))
+    # a band asked for twice (a coarse sensor's nearest band to two colours) is read once, then repeated
+    sel_b, again = np.unique(bands if bands is not None else np.arange(arr.shape[0]), return_inverse=True)
+    sel_b = [int(b) for b in sel_b]
     raw = arr.get_orthogonal_selection((sel_b, slice(None, None, step), slice(None, None, step)))
     valid = store.array("valid")[::step, ::step].astype(bool)
     spec = store.specs[output]
@@ -43,7 +45,7 @@ def _thumb(store: TileStore, output: str, bands: list[int] | None = None, max_pi
                                                               coords={})
     out = decode(np.asarray(raw), spec_sel)
     out[:, ~valid] = np.nan
-    return out
+    return out if bands is None else out[np.asarray(again).ravel()]
 
 
 def _quicklook(view: RunView, mosaic: TileStore) -> Quicklook | None:
@@ -355,10 +357,51 @@ def _timings(view: RunView, summary: ReportSummary) -> None:
         if r["invocation"] == last:
             t.last_seconds = (t.last_seconds or 0.0) + float(r["seconds"])
     summary.timings.extend(sums.values())
+    _plan_vs_run(view, summary, rows)
     summary.timing_note = (
         f"Seconds add up every invocation of this run that did work: {len(invocations)} invocation(s), "
         f"{', '.join(invocations)} (the latest last). A resumed invocation adds only the tiles it computed; "
         "a step recomputed after a change includes the time of its earlier computations.")
+
+
+def _store_bytes(path: Path) -> int | None:
+    if not path.is_dir():
+        return None
+    return sum(p.stat().st_size for p in path.rglob("*") if p.is_file())
+
+
+def _plan_vs_run(view: RunView, summary: ReportSummary, rows: list[dict]) -> None:
+    """The planner's estimate (``estimate-plan.json`` from ``swathmill plan --probe --save``, else the
+    ``estimate.json`` every run saves, which has sizes but no times) beside the measured figures: fit and
+    tile seconds over every invocation, and each store's bytes on disk."""
+    path = next((p for p in (view.dir / "estimate-plan.json", view.dir / "estimate.json") if p.is_file()), None)
+    if path is None:
+        return
+    try:
+        est = json.loads(path.read_text())
+        slots = max(1, int(est.get("workers") or 1) * int(est.get("threads_per_worker") or 1))
+        steps = list(est["steps"])
+    except (ValueError, KeyError, TypeError) as exc:
+        summary.notes.append(f"{path.name} could not be read ({exc}); the plan is not compared with the run")
+        return
+    spent: dict[str, float] = {}
+    for r in rows:
+        if r["phase"] in ("fit", "tiles"):
+            spent[r["name"]] = spent.get(r["name"], 0.0) + float(r["seconds"])
+    for s in steps:
+        name = s.get("step")
+        if name not in view.steps:
+            continue
+        secs = s.get("seconds")
+        summary.estimates.append(PlanCheck(
+            step=name, est_seconds=None if secs is None else float(secs) / slots, seconds=spent.get(name),
+            est_disk=s.get("disk"), disk=_store_bytes(view.dir / "stores" / f"{name}.zarr")))
+    probed = bool(est.get("probe"))
+    summary.estimate_note = (
+        f"From {path.name} ({'probed: times and compressed sizes measured on a few tiles' if probed else 'not probed: no times, sizes without compression'}"
+        f", written {est.get('written', '?')}, for {slots} worker slot(s)). Times are the fit and tile tasks of a "
+        "fresh run, not the export of products; measured seconds add up every invocation, and a step fused with "
+        "others carries its share of their pass.")
 
 
 # ----------------------------------------------------------------------------------------------
