@@ -451,7 +451,7 @@ def _canopy_plots(rng: np.random.Generator, feats: list[dict], abund: np.ndarray
     inv = ~transform
     for f in feats:
         pts = [f["xy"]] if f["kind"] == "Point" else f["xy"][:4]
-        cc, rr = zip(*[inv * p for p in pts])
+        cc, rr = zip(*[inv @ p for p in pts])
         if f["kind"] == "Point":
             rr_, cc_ = np.array([int(rr[0])]), np.array([int(cc[0])])
         else:
