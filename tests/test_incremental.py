@@ -93,8 +93,8 @@ def _steps(lines: list[Path]) -> list:
             *mnf_steps(MnfConfig(components=3), "mosaic/reflectance")]
 
 
-def run_once(run_dir: Path, lines: list[Path], executor=None, export: bool = False):
-    with Run(run_dir, RunOptions(tile=TILE, chunk=TILE, export=export, incremental="frozen")) as run:
+def run_once(run_dir: Path, lines: list[Path], executor=None, export: bool = False, mode: str = "frozen"):
+    with Run(run_dir, RunOptions(tile=TILE, chunk=TILE, export=export, incremental=mode)) as run:
         return run.execute(_steps(lines), executor or LocalExecutor())
 
 
