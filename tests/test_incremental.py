@@ -527,3 +527,15 @@ def test_accumulator_results_round_trip_without_pickle_and_others_are_refused(tm
     (tmp_path / "acc_-1_5.json").write_text(json.dumps(head))
     with pytest.raises(AccumulatorError, match="acc_-1_5.json.*without pickle"):
         files.load((-1, 5), "key1")
+
+
+def test_engine_section_offers_the_refit_mode():
+    from pydantic import ValidationError
+
+    from swathmill.workflows.app.config import EngineConfig
+    from swathmill.tiles.incremental import MODES
+
+    assert EngineConfig(incremental="refit").incremental == "refit" and "refit" in MODES
+    assert EngineConfig.model_validate({"incremental": False}).incremental == "off"  # YAML's bare off
+    with pytest.raises(ValidationError, match="refit"):
+        EngineConfig(incremental="refitted")

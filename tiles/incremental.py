@@ -1,6 +1,6 @@
 """Growing campaigns: per-tile keys, stores that grow without rewriting, fitted models kept across runs.
 
-A run with ``RunOptions.incremental`` set (``"frozen"``) computes each step tile by tile under
+A run with ``RunOptions.incremental`` set (``"frozen"`` or ``"refit"``) computes each step tile by tile under
 *per-tile keys* instead of one key for the whole step:
 
 - A step's **stable key** hashes what does not depend on the campaign's extent or its list of lines:
@@ -22,6 +22,15 @@ A run with ``RunOptions.incremental`` set (``"frozen"``) computes each step tile
   current one) and reused by later invocations. A step whose parameters offer ``frozen_stale``,
   ``frozen_select`` and ``frozen_finalize`` (the mosaic's brightness matching) extends the kept model
   to new inputs by accumulating only the tiles that ``frozen_select`` names.
+
+- **Refit** (``"refit"``): every fit is fitted again exactly. Each fit tile's accumulator result is
+  kept in ``models/refit/accumulators/<step>/`` without pickle (:mod:`~swathmill.tiles.accstore`)
+  under an *accumulator key* (what the tile's fit window reads, the fit's settings, the tile's place
+  in the grid); a tile is accumulated again only when its key changes. The results are merged in the
+  fixed pairwise tree of :func:`~swathmill.tiles.executors.merge_tree` over the fit tiles in their
+  absolute order, the order a fresh fit reduces in, so the model equals a fresh run's bit for bit.
+  The model is kept in ``models/refit/``; a model that hashes as before leaves the step's key, and
+  so its tiles, as they were.
 
 Every invocation records its mode, the campaign's line events (``campaign`` table) and per step
 which tiles it recomputed, for ``status`` and the report.
