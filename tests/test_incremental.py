@@ -5,9 +5,13 @@ files, fitted models kept in ``models/frozen`` and extended to new lines. The re
 comparison is a fresh run, in a new directory, over all lines with the same kept models (the
 ``models/frozen`` folder copied): the products must be equal byte for byte.
 
-Run as a script, the file runs one incremental invocation (the kill -9 test starts it in a subprocess)::
+Refit mode (``"refit"``): every fit is fitted again exactly, from per-tile accumulator results kept in
+``models/refit/accumulators``; its reference is a fresh run over all lines (no models copied), and its
+models must equal those of an ordinary (not incremental) run over all lines, byte for byte.
 
-    python tests/test_incremental.py RUN_DIR LINE.tif [LINE.tif ...] [--sleep S]
+Run as a script, the file runs one incremental invocation (the kill -9 tests start it in a subprocess)::
+
+    python tests/test_incremental.py RUN_DIR LINE.tif [LINE.tif ...] [--sleep S] [--mode frozen|refit]
 """
 from __future__ import annotations
 
@@ -27,7 +31,7 @@ from affine import Affine
 
 from swathmill.tiles.executors import LocalExecutor
 from swathmill.tiles.grid import Grid, anchor_grid, tile_origin
-from swathmill.tiles.incremental import campaign_history, frozen_model_dir
+from swathmill.tiles.incremental import campaign_history, campaign_notes, frozen_model_dir, refit_model_dir
 from swathmill.tiles.ops import mean_filter_step
 from swathmill.tiles.run import Run, RunOptions, run_status
 from swathmill.tiles.store import open_store
@@ -93,8 +97,8 @@ def _steps(lines: list[Path]) -> list:
             *mnf_steps(MnfConfig(components=3), "mosaic/reflectance")]
 
 
-def run_once(run_dir: Path, lines: list[Path], executor=None, export: bool = False):
-    with Run(run_dir, RunOptions(tile=TILE, chunk=TILE, export=export, incremental="frozen")) as run:
+def run_once(run_dir: Path, lines: list[Path], executor=None, export: bool = False, mode: str = "frozen"):
+    with Run(run_dir, RunOptions(tile=TILE, chunk=TILE, export=export, incremental=mode)) as run:
         return run.execute(_steps(lines), executor or LocalExecutor())
 
 
@@ -297,9 +301,10 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("run_dir")
     p.add_argument("lines", nargs="+")
     p.add_argument("--sleep", type=float, default=0.0)
+    p.add_argument("--mode", default="frozen")
     a = p.parse_args(argv)
     ex = SlowLocalExecutor(a.sleep) if a.sleep > 0 else LocalExecutor()
-    res = run_once(Path(a.run_dir), [Path(x) for x in a.lines], executor=ex)
+    res = run_once(Path(a.run_dir), [Path(x) for x in a.lines], executor=ex, mode=a.mode)
     return 0 if res.ok else 1
 
 
@@ -342,3 +347,195 @@ def test_store_growth_interrupted_midway_is_finished_by_the_next_call(tmp_path):
     assert np.array_equal(got[:, 16:48, 16:48], data)
     assert np.all(got[:, :16] == -1) and np.all(got[:, :, :16] == -1) and np.all(got[:, 48:] == -1)
     assert grown.read_valid(new.full).sum() == 32 * 32
+
+
+# ------------------------------------------------------------------------------------ refit mode
+
+
+class CountingExecutor(LocalExecutor):
+    """The in-process loop, counting the accumulator tasks it runs (per step)."""
+
+    def __init__(self):
+        super().__init__()
+        self.accumulated: dict[str, list] = {}
+
+    def _count(self, fn, items):
+        from swathmill.tiles.tasks import run_accumulate
+
+        items = list(items)
+        if fn is run_accumulate:
+            for t in items:
+                self.accumulated.setdefault(t.step.name, []).append(t.index)
+        return items
+
+    def map(self, fn, items, on_done, on_error) -> None:
+        super().map(fn, self._count(fn, items), on_done, on_error)
+
+    def reduce(self, fn, items, merge):
+        return super().reduce(fn, self._count(fn, items), merge)
+
+
+def _acc_files(run_dir: Path, step: str) -> dict[str, tuple[int, bytes]]:
+    d = refit_model_dir(run_dir) / "accumulators" / step
+    return {p.name: (p.stat().st_mtime_ns, p.read_bytes()) for p in sorted(d.iterdir())}
+
+
+def _models(run_dir: Path, folder: Path) -> dict[str, tuple[dict, dict]]:
+    """The fitted models of the mosaic and the MNF in ``folder``: (JSON values, arrays as bytes)."""
+    out = {}
+    for step in ("mosaic", "mnf"):
+        ptr = folder / f"{step}.current"
+        base = folder / ptr.read_text().split()[0] if ptr.is_file() else next(iter(sorted(folder.glob(f"{step}-*.json"))))
+        with np.load(base.with_suffix(".npz"), allow_pickle=False) as z:
+            arrays = {k: (z[k].dtype.str, z[k].shape, z[k].tobytes()) for k in z.files}
+        out[step] = (json.loads(base.with_suffix(".json").read_text()), arrays)
+    return out
+
+
+def test_refit_lines_added_in_three_invocations_equal_a_fresh_run(scene, tmp_path):
+    run_dir = tmp_path / "growing"
+    order = [scene["centre"], scene["southeast"], scene["northwest"]]
+    assert run_once(run_dir, order[:1], mode="refit").ok
+    # second invocation (east and south): the MNF fit reads again only the tiles whose input changed
+    before = _acc_files(run_dir, "mnf")
+    ex = CountingExecutor()
+    r2 = run_once(run_dir, order[:2], executor=ex, mode="refit")
+    assert r2.ok and {s.name: s.fit for s in r2.steps}["mnf"] == "refitted"
+    redone = ex.accumulated["mnf"]
+    total = campaign_history(run_dir)[-1]["fits"]["mnf"]["tiles"]
+    assert 0 < len(redone) < total
+    after = _acc_files(run_dir, "mnf")
+    kept = [n for n in before if n in after and after[n] == before[n]]
+    assert len([n for n in kept if n.endswith(".json")]) == total - len(redone)
+    r3 = run_once(run_dir, order, mode="refit")
+    assert r3.ok
+    mos = {s.name: s for s in r3.steps}["mosaic"]
+    assert 0 < mos.computed < mos.total  # tiles that only the far corner's lines do not touch are kept
+
+    fresh = tmp_path / "fresh"
+    rf = run_once(fresh, order, mode="refit")
+    assert rf.ok
+    _assert_same(_arrays(run_dir), _arrays(fresh))
+    # the refitted models equal those of an ordinary run over all lines, byte for byte (the same
+    # pairwise merge tree over the same tiles)
+    plain = tmp_path / "plain"
+    with Run(plain, RunOptions(tile=TILE, chunk=TILE, export=False)) as run:
+        assert run.execute(_steps(order), LocalExecutor()).ok
+    assert _models(run_dir, refit_model_dir(run_dir)) == _models(plain, plain / "models")
+    hist = campaign_history(run_dir)
+    assert all(h["mode"] == "refit" and h["fits"]["mnf"]["mode"] == "refit" for h in hist)
+    assert "refitted exactly" in campaign_notes(run_dir)[-1]
+
+    # nothing changed: nothing is accumulated, the models hash the same, no tile is recomputed
+    ex = CountingExecutor()
+    r4 = run_once(run_dir, order, executor=ex, mode="refit")
+    assert r4.ok and ex.accumulated == {} and all(s.computed == 0 for s in r4.steps)
+    assert {f["model"] for f in campaign_history(run_dir)[-1]["fits"].values()} == {"unchanged"}
+
+
+def test_refit_reflown_line_recomputes_the_lines_whose_correction_changed(scene, tmp_path):
+    run_dir = tmp_path / "reflown"
+    assert run_once(run_dir, [scene["centre"], scene["southeast"]], mode="refit").ok
+    reflown = _line(tmp_path, "southeast", slice(48, 80), slice(68, 108), 1.1, -0.006, 9, folder="reflown")
+    lines = [scene["centre"], reflown]
+    r2 = run_once(run_dir, lines, mode="refit")
+    assert r2.ok and any("'southeast' reflown" in m for m in r2.messages)
+    mos = {s.name: s for s in r2.steps}["mosaic"]
+    # the reference line keeps gain 1: tiles read by it alone keep their key and their bytes
+    assert 0 < mos.computed < mos.total
+    fresh = tmp_path / "fresh"
+    assert run_once(fresh, lines, mode="refit").ok
+    _assert_same(_arrays(run_dir), _arrays(fresh))
+    new = _arrays(run_dir)
+    grid = open_store(run_dir / "stores" / "mosaic.zarr").grid
+    x, y = T0 @ (110.5, 42.5)  # covered by the old southeast line only (see the frozen test)
+    c, r = (int(v) for v in ~grid.transform @ (x, y))
+    assert new["mosaic/source"][0, r, c] == 0 and new["mosaic/valid"][r, c] == 0
+
+
+def test_kill_during_a_refit_invocation_then_rerun_equals_fresh(scene, tmp_path):
+    run_dir = tmp_path / "killed"
+    assert run_once(run_dir, [scene["centre"]], mode="refit").ok
+    lines = [scene["centre"], scene["southeast"], scene["northwest"]]
+    accs = refit_model_dir(run_dir) / "accumulators" / "mnf"
+    start = time.time_ns()
+    proc = subprocess.Popen([sys.executable, __file__, str(run_dir), *map(str, lines), "--sleep", "0.08",
+                             "--mode", "refit"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    while True:  # kill while the MNF fit keeps its accumulator results (after the mosaic's tiles)
+        if sum(p.stat().st_mtime_ns > start for p in accs.glob("*.json")) >= 3:
+            break
+        assert proc.poll() is None, f"the invocation ended before the kill: {proc.communicate()}"
+        assert time.monotonic() < deadline, "the invocation did not reach the kill point in time"
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(30)
+    assert proc.returncode == -signal.SIGKILL
+    r = run_once(run_dir, lines, mode="refit")
+    assert r.ok
+    fresh = tmp_path / "fresh"
+    assert run_once(fresh, lines, mode="refit").ok
+    _assert_same(_arrays(run_dir), _arrays(fresh))
+
+
+def test_refit_refuses_a_corrupted_or_foreign_accumulator_file(scene, tmp_path):
+    from swathmill.tiles.accstore import AccumulatorError
+
+    run_dir = tmp_path / "bad"
+    lines = [scene["centre"], scene["southeast"]]
+    assert run_once(run_dir, lines, mode="refit").ok
+    accs = refit_model_dir(run_dir) / "accumulators" / "mnf"
+    victim = sorted(accs.glob("*.json"))[0]
+    # a corrupted arrays file: its bytes no longer match the hash its description records
+    npz = accs / json.loads(victim.read_text())["npz"]
+    npz.write_bytes(npz.read_bytes()[:-7] + b"garbage")
+    with pytest.raises(AccumulatorError, match=victim.name):
+        run_once(run_dir, lines, mode="refit")
+    # a foreign file in its place (another step's description)
+    other = sorted((refit_model_dir(run_dir) / "accumulators" / "mosaic").glob("*.json"))[0]
+    victim.write_text(other.read_text())
+    with pytest.raises(AccumulatorError, match=f"{victim.name}.*describes step 'mosaic'"):
+        run_once(run_dir, lines, mode="refit")
+    victim.write_text("{not json")
+    with pytest.raises(AccumulatorError, match=f"{victim.name}.*not readable JSON"):
+        run_once(run_dir, lines, mode="refit")
+
+
+def test_accumulator_results_round_trip_without_pickle_and_others_are_refused(tmp_path):
+    from swathmill.tiles.accstore import AccumulatorError, AccumulatorFiles
+    from swathmill.workflows.methods.mnf import Moments
+
+    files = AccumulatorFiles(tmp_path, "s")
+    acc = {("vertical", 3, -2): Moments(4, np.arange(3.0), np.eye(3)), "k": [1, 2.5, float("nan"), None, True],
+           7: (np.float32(0.1), "x", np.array(["a", "b"])), "empty": {}}
+    files.save((-1, 5), "key1", acc)
+    got = files.load((-1, 5), "key1")
+    assert list(got) == list(acc) and type(got[7][0]) is np.float32 and got[7][0] == np.float32(0.1)
+    m = got[("vertical", 3, -2)]
+    assert isinstance(m, Moments) and m.n == 4 and m.mean.tobytes() == np.arange(3.0).tobytes()
+    assert got["k"][:2] == [1, 2.5] and np.isnan(got["k"][2]) and got["k"][3:] == [None, True]
+    assert files.key((-1, 5)) == "key1"
+    with pytest.raises(AccumulatorError, match=r"tile \[0, 0\].*cannot be stored"):
+        files.save((0, 0), "k", {"a": {1, 2}})
+    with pytest.raises(AccumulatorError, match="dtype object"):
+        files.save((0, 0), "k", {"a": np.array([{}], dtype=object)})
+    # an arrays file holding a pickled object is refused when read (numpy's allow_pickle=False)
+    head = json.loads((tmp_path / "acc_-1_5.json").read_text())
+    np.savez(tmp_path / head["npz"], a0=np.array([{}], dtype=object))
+    import hashlib
+    head["npz_sha256"] = hashlib.sha256((tmp_path / head["npz"]).read_bytes()).hexdigest()
+    (tmp_path / "acc_-1_5.json").write_text(json.dumps(head))
+    with pytest.raises(AccumulatorError, match="acc_-1_5.json.*without pickle"):
+        files.load((-1, 5), "key1")
+
+
+def test_engine_section_offers_the_refit_mode():
+    from pydantic import ValidationError
+
+    from swathmill.workflows.app.config import EngineConfig
+    from swathmill.tiles.incremental import MODES
+
+    assert EngineConfig(incremental="refit").incremental == "refit" and "refit" in MODES
+    assert EngineConfig.model_validate({"incremental": False}).incremental == "off"  # YAML's bare off
+    with pytest.raises(ValidationError, match="refit"):
+        EngineConfig(incremental="refitted")

@@ -12,7 +12,7 @@ from pathlib import Path
 import traceback
 from typing import Any, Callable, Iterable, Protocol
 
-__all__ = ["Executor", "LocalExecutor", "DaskExecutor", "make_executor", "TaskFailed", "WORKER_MALLOC_ENV"]
+__all__ = ["Executor", "merge_tree", "LocalExecutor", "DaskExecutor", "make_executor", "TaskFailed", "WORKER_MALLOC_ENV"]
 
 # glibc allocator settings for the worker processes of a LocalCluster this module starts. Dask's own
 # default (MALLOC_TRIM_THRESHOLD_=65536) also switches off glibc's adaptive mmap threshold, so every
@@ -40,7 +40,12 @@ class Executor(Protocol):
     def close(self) -> None: ...
 
 
-def _tree(values: list, merge: Callable) -> Any:
+def merge_tree(values: list, merge: Callable) -> Any:
+    """Merge ``values`` pairwise in a fixed tree: (0,1), (2,3), ... then the pairs' results, and so on.
+
+    The tree depends only on the values' order, never on when they were computed: a fresh fit and a
+    refit (tiles.incremental) that merge the same values in the same order give the same bits.
+    """
     while len(values) > 1:
         nxt = [merge(values[k], values[k + 1]) for k in range(0, len(values) - 1, 2)]
         if len(values) % 2:
@@ -71,7 +76,7 @@ class LocalExecutor:
                 break
 
     def reduce(self, fn, items, merge):
-        return _tree([fn(it) for it in items], merge)
+        return merge_tree([fn(it) for it in items], merge)
 
     def close(self) -> None:
         pass
@@ -168,7 +173,7 @@ class DaskExecutor:
             submit_next()
 
     def reduce(self, fn, items, merge):
-        """Accumulate on the workers, then merge in the same fixed pairwise tree as :func:`_tree`.
+        """Accumulate on the workers, then merge in the same fixed pairwise tree as :func:`merge_tree`.
 
         Merges start as soon as both halves of a pair are ready, but the pairs are fixed by the
         items' order, never by completion order: floating-point merges give the same bits as the

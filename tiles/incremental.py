@@ -1,6 +1,6 @@
 """Growing campaigns: per-tile keys, stores that grow without rewriting, fitted models kept across runs.
 
-A run with ``RunOptions.incremental`` set (``"frozen"``) computes each step tile by tile under
+A run with ``RunOptions.incremental`` set (``"frozen"`` or ``"refit"``) computes each step tile by tile under
 *per-tile keys* instead of one key for the whole step:
 
 - A step's **stable key** hashes what does not depend on the campaign's extent or its list of lines:
@@ -23,6 +23,15 @@ A run with ``RunOptions.incremental`` set (``"frozen"``) computes each step tile
   ``frozen_select`` and ``frozen_finalize`` (the mosaic's brightness matching) extends the kept model
   to new inputs by accumulating only the tiles that ``frozen_select`` names.
 
+- **Refit** (``"refit"``): every fit is fitted again exactly. Each fit tile's accumulator result is
+  kept in ``models/refit/accumulators/<step>/`` without pickle (:mod:`~swathmill.tiles.accstore`)
+  under an *accumulator key* (what the tile's fit window reads, the fit's settings, the tile's place
+  in the grid); a tile is accumulated again only when its key changes. The results are merged in the
+  fixed pairwise tree of :func:`~swathmill.tiles.executors.merge_tree` over the fit tiles in their
+  absolute order, the order a fresh fit reduces in, so the model equals a fresh run's bit for bit.
+  The model is kept in ``models/refit/``; a model that hashes as before leaves the step's key, and
+  so its tiles, as they were.
+
 Every invocation records its mode, the campaign's line events (``campaign`` table) and per step
 which tiles it recomputed, for ``status`` and the report.
 """
@@ -43,12 +52,13 @@ from .store import TileStore, create_store
 from .tasks import TileTask, load_model, run_accumulate, run_tile, save_model
 
 if TYPE_CHECKING:  # pragma: no cover
+    from .accstore import AccumulatorFiles
     from .executors import Executor
 
 __all__ = ["MODES", "IncrementalError", "start_invocation", "run_step_incremental", "regrid_store", "campaign_history", "campaign_notes",
-           "frozen_model_dir"]
+           "frozen_model_dir", "refit_model_dir", "fit_notes"]
 
-MODES = ("frozen",)
+MODES = ("frozen", "refit")
 
 
 class IncrementalError(SwathmillError, ValueError):
@@ -78,9 +88,9 @@ def _fit_identity(step: Step) -> str:
                 [f"{f.__module__}.{f.__qualname__}" for f in (fit.accumulate, fit.merge, fit.finalize)] if fit else None)
 
 
-def _current_model(run_dir: Path, name: str, ident: str | None = None) -> Path | None:
+def _current_model(run_dir: Path, name: str, ident: str | None = None, folder: Path | None = None) -> Path | None:
     """The kept model of step ``name``; None if there is none or it was fitted with other settings."""
-    ptr = frozen_model_dir(run_dir) / f"{name}.current"
+    ptr = (folder or frozen_model_dir(run_dir)) / f"{name}.current"
     if not ptr.is_file():
         return None
     lines = ptr.read_text().split()
@@ -92,9 +102,9 @@ def _current_model(run_dir: Path, name: str, ident: str | None = None) -> Path |
     return None
 
 
-def _keep_model(run_dir: Path, name: str, model: dict, ident: str = "") -> Path:
+def _keep_model(run_dir: Path, name: str, model: dict, ident: str = "", folder: Path | None = None) -> Path:
     """Save ``model`` under its content hash and point ``<name>.current`` at it (atomically)."""
-    d = frozen_model_dir(run_dir)
+    d = folder or frozen_model_dir(run_dir)
     d.mkdir(parents=True, exist_ok=True)
     tmp = d / f"{name}-new"
     h = save_model(model, tmp)
@@ -119,6 +129,7 @@ def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunRe
         fitted = run._fit(step, sp, executor, result)
         base = _keep_model(run.dir, step.name, load_model(fitted.path), ident)
         run._say(result, f"step {step.name!r}: model fitted and kept for later invocations ({base.name})")
+        fit_notes(run)[step.name] = {"mode": "frozen", "model": "fitted"}
         return _Fitted(load_model(str(base)), str(base), _file_hash(base), "fitted")
     model = load_model(str(base))
     params = step.params
@@ -134,9 +145,127 @@ def _frozen_fit(run: "Run", step: Step, sp, executor: "Executor", result: "RunRe
         run.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
         run._say(result, f"step {step.name!r}: kept model extended to new inputs over {len(tasks)} tiles "
                          f"({base.name})")
+        fit_notes(run)[step.name] = {"mode": "frozen", "model": "extended", "accumulated": len(tasks)}
         return _Fitted(load_model(str(base)), str(base), _file_hash(base), "extended")
     run._say(result, f"step {step.name!r}: kept model reused ({base.name})")
+    fit_notes(run)[step.name] = {"mode": "frozen", "model": "kept"}
     return _Fitted(model, str(base), _file_hash(base), "kept")
+
+
+# ---------------------------------------------------------------------------------------------------
+# refit: models fitted again exactly from kept per-tile accumulator results
+
+
+def refit_model_dir(run_dir: Path) -> Path:
+    """Where refit mode keeps its models (``<run>/models/refit``) and, under ``accumulators/<step>``,
+    the per-tile accumulator results of each step's fit (:mod:`swathmill.tiles.accstore`)."""
+    return Path(run_dir) / "models" / "refit"
+
+
+def _acc_files(run: "Run", step: Step) -> "AccumulatorFiles":
+    from .accstore import AccumulatorFiles
+
+    fit = step.fit
+    trusted = {f.__module__ for f in (fit.accumulate, fit.merge, fit.finalize) if hasattr(f, "__module__")}
+    return AccumulatorFiles(refit_model_dir(run.dir) / "accumulators" / step.name, step.name, trusted)
+
+
+def _acc_keys(run: "Run", step: Step, sp, tiles: list, origin) -> dict[tuple[int, int], str]:
+    """Per local index of a fit tile: the key of its accumulator result.
+
+    It hashes what ``Fit.accumulate`` sees: the step (for a step reading lines, its campaign-free
+    settings and the lines its fit window reads, ``params.fit_tile_identity(tile)`` where offered,
+    else ``tile_identity``; otherwise its whole identity and the tile keys of the input tiles its
+    window meets), the accumulate function and halo, and the tile's absolute index, local index and
+    clamped padded window (an accumulator may use grid-local coordinates, so a grid that grows west or
+    north re-accumulates every tile; one that grows east or south only those whose window changed).
+    """
+    fit, params = step.fit, step.params
+    keyed = hasattr(params, "tile_identity") and step.reader is not None
+    fn = f"{fit.accumulate.__module__}.{fit.accumulate.__qualname__}"
+    if keyed:
+        base = _sha("acc", step.name, step.version, params.campaign_free(), fn, fit.halo, sp.version,
+                    run.options.tile, sp.grid.crs, list(sp.grid.res))
+    else:
+        base = _sha("acc", *sp.base, fn, fit.halo)
+    keys = {}
+    for t in tiles:
+        pw = t.padded
+        if keyed:
+            what: Any = (params.fit_tile_identity(t) if hasattr(params, "fit_tile_identity")
+                         else params.tile_identity(pw, None))
+        else:
+            what = _input_cells(run, step, pw, origin)
+        keys[t.index] = _sha("acc-tile", base, [origin[0] + t.index[0], origin[1] + t.index[1]], list(t.index),
+                             [pw.row, pw.col, pw.rows, pw.cols], what)
+    return keys
+
+
+def _accumulate_changed(run: "Run", step: Step, sp, executor: "Executor", files, tiles: list, keys: dict,
+                        origin) -> int:
+    """Accumulate the fit tiles whose kept result is missing or was computed under another key; keep each."""
+    from .tasks import TileError
+
+    absidx = {t.index: (origin[0] + t.index[0], origin[1] + t.index[1]) for t in tiles}
+    stale = [t for t in tiles if files.key(absidx[t.index]) != keys[t.index]]
+    tasks = [TileTask(step, t.index, sp.grid, run.options.tile, step.fit.halo, sp.inputs) for t in stale]
+    run.progress.start(step.name, len(tiles), len(tiles) - len(tasks), phase="fit")
+    errors: list[str] = []
+
+    def on_done(task: TileTask, acc: Any) -> None:
+        files.save(absidx[task.index], keys[task.index], acc)
+        run.progress.advance(step.name)
+
+    def on_error(task: TileTask, exc: BaseException, tb: str) -> None:
+        errors.append(str(exc) or type(exc).__name__)
+
+    executor.map(run_accumulate, tasks, on_done, on_error)
+    run.progress.end(step.name)
+    if errors:
+        raise TileError(f"step {step.name!r}: the refit's accumulation failed on {len(errors)} tile(s): "
+                        + "; ".join(errors[:3]))
+    return len(tasks)
+
+
+def _refit(run: "Run", step: Step, sp, executor: "Executor", result: "RunResult", _Fitted: type, origin):
+    """The step's model fitted again exactly: changed fit tiles accumulated, kept results of the others merged.
+
+    The results are merged in the fixed pairwise tree of :func:`~swathmill.tiles.executors.merge_tree`
+    over the fit's tiles in the order of their absolute index, which is the order of the tiling a
+    fresh fit reduces over (row-major), so the model equals a fresh run's bit for bit.
+    """
+    from .executors import merge_tree
+
+    if step.fit is None:
+        return _Fitted()
+    t0 = time.perf_counter()
+    tiles = list(Tiling(sp.grid, run.options.tile, step.fit.halo))
+    if step.fit.select is not None:
+        tiles = list(step.fit.select(tiles, step.params))
+    tiles.sort(key=lambda t: t.index)  # absolute order: the origin is the same for every tile
+    keys = _acc_keys(run, step, sp, tiles, origin)
+    files = _acc_files(run, step)
+    files.clean((origin[0] + t.index[0], origin[1] + t.index[1]) for t in tiles)
+    n = _accumulate_changed(run, step, sp, executor, files, tiles, keys, origin)
+    accs = [files.load((origin[0] + t.index[0], origin[1] + t.index[1]), keys[t.index]) for t in tiles]
+    acc = merge_tree(accs, step.fit.merge)
+    folder = refit_model_dir(run.dir)
+    prev = _current_model(run.dir, step.name, folder=folder)
+    base = _keep_model(run.dir, step.name, step.fit.finalize(acc, step.params, sp.meta), _fit_identity(step), folder)
+    run.ledger.add_timing(step.name, "fit", time.perf_counter() - t0)
+    same = prev is not None and prev.name == base.name
+    how = "unchanged" if same else ("changed" if prev is not None else "new")
+    fit_notes(run)[step.name] = {"mode": "refit", "tiles": len(tiles), "accumulated": n, "model": how}
+    run._say(result, f"step {step.name!r}: model refitted over {len(tiles)} tiles, {n} accumulated again and "
+                     f"{len(tiles) - n} merged from kept results; the model is {how} ({base.name})")
+    return _Fitted(load_model(str(base)), str(base), _file_hash(base), "refitted")
+
+
+def fit_notes(run: "Run") -> dict:
+    """What each step's fit did in this invocation (recorded with the invocation, shown by status)."""
+    if not hasattr(run, "_incremental_fits"):
+        run._incremental_fits = {}
+    return run._incremental_fits
 
 
 def _plain_outputs(outputs: dict[str, OutputSpec], keyed: bool) -> dict:
@@ -166,31 +295,35 @@ def _stable_key(run: "Run", step: Step, sp, fitted, outputs: dict[str, OutputSpe
     return key, keyed
 
 
+def _input_cells(run: "Run", step: Step, window, origin) -> dict:
+    """The tile keys of every input tile ``window`` (a padded window) meets, per input alias."""
+    I0, J0 = origin
+    size = run.options.tile
+    what: dict = {}
+    for alias, ref in step.inputs.items():
+        tk = _incr_keys(run).get(ref.split("/")[0])
+        if tk is None:  # an input without tile keys (a source store): its whole key is in the stable key
+            continue
+        cells = []
+        for i in range(window.row // size, -(-(window.row + window.rows) // size)):
+            for j in range(window.col // size, -(-(window.col + window.cols) // size)):
+                a = (I0 + i, J0 + j)
+                cells.append([a[0], a[1], tk.get(a)])
+        what[alias] = cells
+    return what
+
+
 def _tile_keys(run: "Run", step: Step, sp, stable: str, keyed: bool, fitted, origin) -> dict[tuple[int, int], str]:
     """Per local tile index: its key (absolute index, stable key, what it reads)."""
     I0, J0 = origin
     keys: dict[tuple[int, int], str] = {}
-    size = run.options.tile
-    inputs = {}
-    for alias, ref in step.inputs.items():
-        src = ref.split("/")[0]
-        inputs[alias] = _incr_keys(run).get(src)
     for t in sp.tiling:
         absidx = (I0 + t.index[0], J0 + t.index[1])
         if keyed:
             what: Any = step.params.tile_identity(t.padded, fitted.model)
         else:
-            what = {}
             pw = t.padded
-            for alias, tk in inputs.items():
-                if tk is None:  # an input without tile keys (a source store): its whole key is in the stable key
-                    continue
-                cells = []
-                for i in range(pw.row // size, -(-(pw.row + pw.rows) // size)):
-                    for j in range(pw.col // size, -(-(pw.col + pw.cols) // size)):
-                        a = (I0 + i, J0 + j)
-                        cells.append([a[0], a[1], tk.get(a)])
-                what[alias] = cells
+            what = _input_cells(run, step, pw, origin)
             # the clamped padded window changes when the grid grows past a tile's halo
             what["padded"] = [pw.row - t.core.row, pw.col - t.core.col, pw.rows, pw.cols]
         keys[t.index] = _sha("tile", stable, list(absidx), what)
@@ -360,7 +493,10 @@ def run_step_incremental(run: "Run", step: Step, executor: "Executor", layout, k
     if step.reader is not None and hasattr(step.params, "line_changes"):
         for e in run.ledger.record_lines(step.params.line_changes()):
             run._say(result, f"campaign: line {e['line']!r} {e['event']}")
-    fitted = _frozen_fit(run, step, sp, executor, result, _Fitted)
+    if mode == "refit":
+        fitted = _refit(run, step, sp, executor, result, _Fitted, origin)
+    else:
+        fitted = _frozen_fit(run, step, sp, executor, result, _Fitted)
     outputs = step.resolve_outputs(sp.meta, fitted.model)
     stable, keyed = _stable_key(run, step, sp, fitted, outputs)
     tkeys = _tile_keys(run, step, sp, stable, keyed, fitted, origin)
@@ -417,7 +553,9 @@ def _compute(run: "Run", step: Step, sp, tkeys: dict, outputs: dict[str, OutputS
 
 
 def campaign_history(run_dir: Path) -> list[dict]:
-    """Per invocation: its mode, time taken, the line events it saw and the tiles each step recomputed."""
+    """Per invocation: its mode, time taken, the line events it saw, the tiles each step recomputed and what
+    each step's fit did (``fits``: step -> mode, model kept/extended/fitted or, refit, unchanged/changed/new
+    with the fit tiles accumulated again)."""
     from .ledger import Ledger
 
     ledger = Ledger(Path(run_dir) / "ledger.sqlite")
@@ -433,7 +571,7 @@ def campaign_history(run_dir: Path) -> list[dict]:
         for inv in ledger.invocations():
             out.append({"invocation": inv["invocation"], "mode": inv["mode"], "seconds": inv["seconds"],
                         "finished": inv["finished"] is not None, "lines": events.get(inv["invocation"], []),
-                        "tiles": tiles.get(inv["invocation"], {})})
+                        "tiles": tiles.get(inv["invocation"], {}), "fits": inv["info"].get("fits", {})})
         return out
     finally:
         ledger.close()
@@ -448,6 +586,15 @@ def campaign_notes(run_dir: Path) -> list[str]:
         events = ", ".join(f"{e['line']} {e['event']}" for e in h["lines"]) or "no line changed"
         tiles = ", ".join(f"{step} {len(t)}" for step, t in h["tiles"].items()) or "none"
         took = f"{h['seconds']:.1f} s" if h["seconds"] is not None else "did not finish"
+        fits = "; ".join(_fit_sentence(step, f) for step, f in h["fits"].items())
         out.append(f"Invocation {n} ({h['invocation']}, {h['mode']} models): {events}; tiles recomputed: "
-                   f"{tiles}; {took}.")
+                   f"{tiles}; {took}." + (f" Fits: {fits}." if fits else ""))
     return out
+
+
+def _fit_sentence(step: str, f: dict) -> str:
+    if f.get("mode") == "refit":
+        return (f"{step} refitted exactly ({f.get('accumulated')} of {f.get('tiles')} fit tiles accumulated again, "
+                f"model {f.get('model')})")
+    extra = f", {f['accumulated']} fit tiles read" if "accumulated" in f else ""
+    return f"{step} model {f.get('model')}{extra}"

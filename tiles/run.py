@@ -75,7 +75,7 @@ class RunOptions:
     warn_tasks: int = 50_000
     fuse: bool = True  # steps reading the same input share one read per tile (tiles/fuse.py)
     task_memory: int | None = None  # bytes one running task may hold (worker memory / threads); splits fused groups
-    incremental: str | None = None  # "frozen": per-tile keys, growing stores, kept models (tiles.incremental)
+    incremental: str | None = None  # "frozen" or "refit": per-tile keys, growing stores (tiles.incremental)
 
     def layout(self) -> StoreLayout:
         shard = self.shard or self.tile
@@ -92,7 +92,7 @@ class StepReport:
     computed: int = 0
     failed: dict = field(default_factory=dict)
     invalidated: str | None = None
-    fit: str | None = None  # "fitted", "loaded" or None
+    fit: str | None = None  # "fitted", "loaded" or None; incremental: "kept", "extended", "refitted"
     seconds: float = 0.0
     products: list[str] = field(default_factory=list)
 
@@ -245,7 +245,8 @@ class Run:
                     self._say(result, f"step {bad.name!r} did not finish; not started: {', '.join(later)}")
                 break
         if self.options.incremental:
-            self.ledger.finish_invocation({"complete": result.ok})
+            from .incremental import fit_notes
+            self.ledger.finish_invocation({"complete": result.ok, "fits": fit_notes(self)})
         return result
 
     def _inputs(self, step: Step, known) -> tuple[dict[str, tuple[str, str]], dict[str, InputMeta], Grid, dict]:

@@ -6,12 +6,17 @@ measures, with the steps mosaic (brightness matching), a 3 x 3 mean filter and M
 
 - full:         a fresh run over all nine lines (models fitted);
 - fresh-kept:   a fresh run over all nine lines with the kept models of the incremental run (no fit);
-- incremental:  the ninth line added to a run that has processed the eight (frozen mode).
+- incremental:  the ninth line added to a run that has processed the eight (frozen mode);
+- refit full:   a fresh run over all nine lines in refit mode (models fitted, accumulator results kept);
+- refit:        the ninth line added in refit mode to a run that has processed the eight (every model
+                fitted again exactly from kept per-tile accumulator results).
 
-Prints the measured seconds and the ratios incremental / full and incremental / fresh-kept, and
-checks that the incremental products equal the fresh-kept ones byte for byte::
+Prints the measured seconds and the ratios incremental / full, incremental / fresh-kept and refit /
+refit full, and checks that the incremental products equal the fresh-kept ones byte for byte and the
+refit products the refit full ones (``--no-refit`` leaves the refit runs out)::
 
     python tests/benchmarks/bench_incremental.py [--rows 512] [--cols 1024] [--bands 24] [--tile 64] [--export]
+    python tests/benchmarks/bench_incremental.py --rows 128 --cols 256 --bands 8 --tile 32   # a quick check
 """
 from __future__ import annotations
 
@@ -28,7 +33,7 @@ import rasterio
 from affine import Affine
 
 from swathmill.tiles.executors import LocalExecutor
-from swathmill.tiles.incremental import frozen_model_dir
+from swathmill.tiles.incremental import campaign_history, frozen_model_dir
 from swathmill.tiles.ops import mean_filter_step
 from swathmill.tiles.run import Run, RunOptions
 from swathmill.tiles.store import open_store
@@ -73,9 +78,9 @@ def steps(lines: list[Path], tile: int) -> list:
             *mnf_steps(MnfConfig(components=8), "mosaic/reflectance")]
 
 
-def run(run_dir: Path, lines: list[Path], tile: int, export: bool) -> tuple[float, dict]:
+def run(run_dir: Path, lines: list[Path], tile: int, export: bool, mode: str = "frozen") -> tuple[float, dict]:
     t0 = time.perf_counter()
-    with Run(run_dir, RunOptions(tile=tile, export=export, incremental="frozen")) as r:
+    with Run(run_dir, RunOptions(tile=tile, export=export, incremental=mode)) as r:
         res = r.execute(steps(lines, tile), LocalExecutor())
     dt = time.perf_counter() - t0
     if not res.ok:
@@ -101,6 +106,7 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--bands", type=int, default=24)
     p.add_argument("--tile", type=int, default=64)
     p.add_argument("--export", action="store_true", help="also write COG products (whole files, every invocation)")
+    p.add_argument("--no-refit", action="store_true", help="leave out the refit-mode runs")
     a = p.parse_args(argv)
     tmp = Path(tempfile.mkdtemp(prefix="bench-incremental-"))
     try:
@@ -111,6 +117,19 @@ def main(argv: list[str] | None = None) -> int:
         shutil.copytree(frozen_model_dir(tmp / "growing"), frozen_model_dir(tmp / "kept"))
         t_kept, _ = run(tmp / "kept", lines, a.tile, a.export)
         equal = same_stores(tmp / "growing", tmp / "kept")
+        refit = {}
+        if not a.no_refit:
+            t_rfull, _ = run(tmp / "refit-full", lines, a.tile, a.export, "refit")
+            t_reight, _ = run(tmp / "refit-growing", lines[:8], a.tile, a.export, "refit")
+            t_rinc, rinc = run(tmp / "refit-growing", lines, a.tile, a.export, "refit")
+            requal = same_stores(tmp / "refit-growing", tmp / "refit-full")
+            equal = equal and requal
+            refit = {"refit_seconds": {"full": round(t_rfull, 3), "eight_lines": round(t_reight, 3),
+                                       "add_ninth_line": round(t_rinc, 3)},
+                     "ratio_refit_to_refit_full": round(t_rinc / t_rfull, 4),
+                     "ratio_refit_to_full": round(t_rinc / t_full, 4),
+                     "refit_tiles": rinc, "refit_fits": campaign_history(tmp / "refit-growing")[-1]["fits"],
+                     "refit_equals_refit_full": requal}
         print(json.dumps({
             "mosaic_px": [a.rows, a.cols], "bands": a.bands, "tile": a.tile, "export": a.export,
             "seconds": {"full": round(t_full, 3), "fresh_kept_models": round(t_kept, 3),
@@ -118,7 +137,7 @@ def main(argv: list[str] | None = None) -> int:
             "ratio_incremental_to_full": round(t_inc / t_full, 4),
             "ratio_incremental_to_fresh_kept_models": round(t_inc / t_kept, 4),
             "incremental_tiles": inc, "full_tiles": full,
-            "incremental_equals_fresh_with_kept_models": equal,
+            "incremental_equals_fresh_with_kept_models": same_stores(tmp / "growing", tmp / "kept"), **refit,
         }, indent=1))
         return 0 if equal else 1
     finally:

@@ -74,9 +74,10 @@ class EngineConfig(Section):
     zstd_level: int = Field(1, ge=0, le=22)
     export: bool = Field(True, description="write COG products and STAC items")
     fuse: bool = Field(True, description="steps reading the same input share one read per tile (fused passes)")
-    incremental: Literal["off", "frozen"] = Field(
+    incremental: Literal["off", "frozen", "refit"] = Field(
         "off", description="frozen: a growing campaign recomputes only the tiles its new or re-flown lines "
-                           "touch, with the fitted models of the first invocation kept")
+                           "touch, with the fitted models of the first invocation kept; refit: the same, with "
+                           "every fitted model fitted again exactly from kept per-tile accumulator results")
 
     @field_validator("incremental", mode="before")
     @classmethod

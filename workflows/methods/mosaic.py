@@ -492,6 +492,19 @@ class MosaicParams:
             out.append(entry)
         return out
 
+    def fit_tile_identity(self, tile: Tile) -> dict:
+        """What the brightness fit's accumulator reads on ``tile`` (refit mode keys its kept result on it).
+
+        The lines its padded window reads (as :meth:`tile_identity`, without a model) and the pairs
+        among them with their sampling rates (the seeds follow from the pairs' line numbers and the
+        section). The grid's size enters through the tile's clamped padded window, which the engine
+        hashes with it.
+        """
+        lines = self.tile_identity(tile.padded, None)
+        here = {int(e[0]) for e in lines}
+        pairs = [[i, j, float(self.sample_rates[f"{i}-{j}"])] for i, j in self.pairs if i in here and j in here]
+        return {"lines": lines, "pairs": pairs}
+
     def frozen_stale(self, model: Mapping[str, Any]) -> bool:
         """Whether a kept brightness model lacks (or orders differently) any line of this plan."""
         return [str(v) for v in model.get("fingerprints", [])] != list(self.fingerprints)
