@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 import engine_script as es
-from swathmill.tiles.executors import LocalExecutor, _tree
+from swathmill.tiles.executors import LocalExecutor, merge_tree
 from swathmill.tiles.fitpass import PairTree
 from swathmill.tiles.ops import band_transform_step
 from swathmill.tiles.run import Run, RunOptions
@@ -24,7 +24,7 @@ __all__: list[str] = []
 
 @pytest.mark.parametrize("n", [1, 2, 3, 5, 8, 13, 20])
 def test_the_pair_tree_merges_like_the_in_order_reduction_whatever_the_arrival_order(n):
-    # the in-process reduction (_tree) is the reference; a non-commutative merge shows the tree's shape
+    # the in-process reduction (merge_tree) is the reference; a non-commutative merge shows the tree's shape
     leaves = [str(k) for k in range(n)]
     merge = lambda a, b: f"({a} {b})"  # noqa: E731
     order = list(range(n))
@@ -33,7 +33,7 @@ def test_the_pair_tree_merges_like_the_in_order_reduction_whatever_the_arrival_o
     for k in order:
         assert not tree.complete
         tree.push(k, leaves[k])
-    assert tree.complete and tree.result == _tree(list(leaves), merge)
+    assert tree.complete and tree.result == merge_tree(list(leaves), merge)
     with pytest.raises(ValueError, match="pushed twice"):
         tree.push(order[0], "x")
 

@@ -1,7 +1,7 @@
 """Fits that do not read the cube again: shared fit passes and fits that ride on the pass making their input.
 
 A step's fit accumulates over tiles of its input and merges the results in a fixed pairwise tree
-(:func:`swathmill.tiles.executors._tree`). Two ways to save reads, both byte-identical to fitting
+(:func:`swathmill.tiles.executors.merge_tree`). Two ways to save reads, both byte-identical to fitting
 each step on its own (each fit sees the same blocks and merges them in the same tree):
 
 - **Shared fit pass.** Steps of a fused group (same input) whose models are missing accumulate in one
@@ -29,7 +29,7 @@ __all__ = ["PairTree", "FusedFit", "RidePlan", "RidingFits", "run_fused_fit"]
 
 
 class PairTree:
-    """Merge leaves ``0..n-1`` with ``merge`` in the pairwise tree of ``_tree``, whatever order they come in.
+    """Merge leaves ``0..n-1`` with ``merge`` in the pairwise tree of ``merge_tree``, whatever order they come in.
 
     Pairs are fixed by the leaves' positions (``(0, 1), (2, 3), ...``; a lone last node moves up
     unchanged), so floating-point merges give the same bits as the in-order reduction.
