@@ -131,3 +131,39 @@ def test_a_failing_rider_leaves_the_carrier_whole_and_the_step_fits_on_its_own(t
         _run(tmp_path / "run", steps, True)
     # the carrier finished every tile before the failing fit's own turn
     assert np.isfinite(read_output(tmp_path / "run", "copy/output")).any()
+
+
+def _pair_accumulate(block) -> tuple:
+    x, y = block.data["x"].astype(np.float64), block.data["y"].astype(np.float64)
+    return np.nansum(x, axis=(1, 2)), np.nansum(y, axis=(1, 2)), int(block.valid.sum())
+
+
+def _pair_merge(a: tuple, b: tuple) -> tuple:
+    return a[0] + b[0], a[1] + b[1], a[2] + b[2]
+
+
+def _pair_finalize(acc: tuple, params, meta) -> dict:
+    return {"x": acc[0], "y": acc[1], "valid": acc[2]}
+
+
+def _pair_step(name: str, x: str, y: str) -> Step:
+    return Step(name=name, kernel=es._failing_kernel, outputs=es._first_band, inputs={"x": x, "y": y},
+                fit=Fit(_pair_accumulate, _pair_merge, _pair_finalize))
+
+
+def test_fits_reading_the_shared_input_and_several_members_ride_on_the_fused_pass(tmp_path, monkeypatch):
+    # 'copy' and 'scaled' share one fused pass over src/refl; 'both' fits on the two members' outputs and
+    # 'mixed' on a member's output and the shared input: both ride on the fused task, nothing is read back
+    steps = [es.failing_step("copy", "src/refl"), band_transform_step("scaled", "src/refl", scale=2.0),
+             _pair_step("both", "copy/output", "scaled/output"), _pair_step("mixed", "copy/output", "src/refl")]
+    fused_reads, plain_reads = Counter(), Counter()
+    fused = _run(tmp_path / "fused", steps, True, fused_reads, monkeypatch)
+    plain = _run(tmp_path / "plain", steps, False, plain_reads, monkeypatch)
+    assert fused.ok and plain.ok
+    _same(tmp_path / "fused", tmp_path / "plain", ["copy", "scaled", "both", "mixed"])
+    said = [m for m in fused.messages if "during the pass of" in m]
+    assert len(said) == 2 and all("20 tiles accumulated from memory, 0 read" in m for m in said), fused.messages
+    # src: the fused pass only (20) against copy, scaled and mixed's fit (60); the later steps' tiles read
+    # copy (and scaled, src) once each in their own passes
+    assert fused_reads["fused-src.zarr"] == 20 + 20 and plain_reads["plain-src.zarr"] == 20 * 4
+    assert fused_reads["copy.zarr"] == 40 and plain_reads["copy.zarr"] == 80

@@ -8,10 +8,12 @@ each step on its own (each fit sees the same blocks and merges them in the same 
   pass: a :class:`FusedFit` task reads the tile once with the widest fit halo and runs every member's
   ``accumulate`` on its own copy of its window (made as :func:`~swathmill.tiles.fuse.run_fused` makes
   kernel blocks).
-- **Riders.** A later step whose fit reads only outputs of a step that is computing tiles now (with a
-  fit halo of 0) accumulates inside that step's tile tasks, from the encoded values just written,
-  exactly what reading the tile back would return. Tiles the pass does not compute (already finished
-  on a resumed run, or outside it) are read as usual.
+- **Riders.** A later step whose fit (with a halo of 0) reads only outputs of a step computing tiles
+  now accumulates inside that step's tile tasks, from the encoded values just written: exactly what
+  reading the tile back would return. In a fused pass, a fit may also read the pass's shared input and
+  the outputs of several members (e.g. SVM samples of the components and the reflectance): it runs
+  once every member has written the tile. Tiles no task carries (already finished on a resumed run)
+  are read as usual.
 
 Leaves arrive in any order; :class:`PairTree` merges them in the fixed tree as they come, holding
 only nodes whose sibling is not ready yet.
@@ -107,18 +109,24 @@ def run_fused_fit(task: FusedFit) -> dict[str, tuple[Any, float]]:
 
 @dataclass
 class RidePlan:
-    """A later step's fit riding on ``carrier``'s pass: its fit tiles, their merge tree, what arrived."""
+    """A later step's fit riding on the pass of the steps in ``needs`` (and on the pass's shared read when
+    ``shared``): its fit tiles, their merge tree, what arrived."""
 
     step: Any  # Step
     sp: Any  # the step's plan (inputs, meta, grid) as the run made it
     mbase: Path  # where its model goes (the same base its own turn looks for)
     tiles: list
-    carrier: str
+    needs: frozenset  # names of the carrying steps whose outputs it reads
+    shared: bool  # it also reads the fused pass's shared input
     tree: PairTree
     pos: dict
     carried: set
     seconds: float = 0.0
     error: str | None = None
+
+    @property
+    def carrier(self) -> str:
+        return ", ".join(sorted(self.needs))
 
 
 class RidingFits:
@@ -131,17 +139,24 @@ class RidingFits:
     def __bool__(self) -> bool:
         return bool(self.plans)
 
-    def riders(self, carrier: str, index: tuple[int, int]) -> tuple[Rider, ...]:
-        out = []
-        for p in self.plans:
-            if p.carrier == carrier and index in p.pos:
-                p.carried.add(index)
-                out.append(Rider(p.step.name, TileTask(p.step, index, p.sp.grid, self.tile_size, 0, p.sp.inputs)))
-        return tuple(out)
+    def _rider(self, p: RidePlan, index: tuple[int, int]) -> Rider:
+        p.carried.add(index)
+        return Rider(p.step.name, TileTask(p.step, index, p.sp.grid, self.tile_size, 0, p.sp.inputs))
 
-    def take(self, index: tuple[int, int], res: dict) -> None:
-        """Push the riders' values of a finished tile (``res["riders"]``, removed from ``res``)."""
-        for slot, r in res.pop("riders", {}).items():
+    def riders(self, carrier: str, index: tuple[int, int]) -> tuple[Rider, ...]:
+        """Riders of one step's tile task: fits reading only that step's outputs."""
+        return tuple(self._rider(p, index) for p in self.plans
+                     if not p.shared and p.needs == {carrier} and index in p.pos)
+
+    def group_riders(self, pending: set[str], index: tuple[int, int]) -> tuple[Rider, ...]:
+        """Riders of a fused task whose members ``pending`` compute this tile: fits reading the shared
+        input or the outputs of several members."""
+        return tuple(self._rider(p, index) for p in self.plans
+                     if (p.shared or len(p.needs) > 1) and p.needs <= pending and index in p.pos)
+
+    def take(self, index: tuple[int, int], riders: dict | None) -> None:
+        """Push the riders' values of a finished tile task (``{slot: {"value", "seconds"} or {"error"}}``)."""
+        for slot, r in (riders or {}).items():
             p = self._by_slot[slot]
             if "error" in r:
                 p.error = p.error or f"{index}: {r['error']}"
@@ -149,14 +164,14 @@ class RidingFits:
                 p.tree.push(p.pos[index], r["value"])
                 p.seconds += r["seconds"]
 
-    def finish(self, executor, carriers_complete: set[str]) -> list[tuple[RidePlan, dict, int]]:
-        """Read the fit tiles no carrier computed, then finalize: ``(plan, model, tiles read)`` per fit
-        that completed. A fit that failed, or whose carrier did not finish, is left to its own turn."""
+    def finish(self, executor, complete: set[str]) -> list[tuple[RidePlan, dict, int]]:
+        """Read the fit tiles no task carried, then finalize: ``(plan, model, tiles read)`` per fit that
+        completed. A fit that failed, or whose carriers did not all finish, is left to its own turn."""
         from .tasks import run_accumulate
 
         done = []
         for p in self.plans:
-            if p.error is not None or p.carrier not in carriers_complete:
+            if p.error is not None or not p.needs <= complete:
                 continue
             rest = [TileTask(p.step, t.index, p.sp.grid, self.tile_size, 0, p.sp.inputs)
                     for t in p.tiles if t.index not in p.carried]

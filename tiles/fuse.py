@@ -23,9 +23,9 @@ import numpy as np
 from .grid import Window
 from .step import Block, InputMeta, OutputSpec, Step
 from .store import decode
-from .tasks import TileError, TileTask, _store, compute_tile
+from .tasks import TileError, TileTask, Written, _store, compute_tile, ride
 
-__all__ = ["FusedTask", "run_fused", "fusable", "fusion_groups", "task_memory", "shared_memory", "split_by_memory",
+__all__ = ["FusedTask", "RIDERS", "run_fused", "fusable", "fusion_groups", "task_memory", "shared_memory", "split_by_memory",
            "KERNEL_WORK_FACTOR"]
 
 # Temporaries of a kernel, in multiples of its decoded float32 input block (a documented guess the
@@ -39,6 +39,7 @@ class FusedTask:
     """One tile of a fused pass: the member tasks (one per step whose tile is pending), read once."""
 
     members: tuple[TileTask, ...]
+    riders: tuple = ()  # fits of later steps reading the shared input and members' outputs (tiles/fitpass.py)
 
     @property
     def index(self) -> tuple[int, int]:
@@ -114,10 +115,11 @@ def run_fused(task: FusedTask) -> dict[str, dict]:
                         f"{type(exc).__name__}: {exc}") from exc
     read_s = time.perf_counter() - t0
     out: dict[str, dict] = {}
+    written = _shared_written(reader, shared) if task.riders else None
     for m in task.members:
         t1 = time.perf_counter()
         try:
-            res = compute_tile(m, _member_block(shared, m), t1)
+            res = compute_tile(m, _member_block(shared, m), t1, keep=written)
             res["read_seconds"] = read_s / len(task.members)
             out[m.step.name] = res
         except Exception as exc:  # noqa: BLE001 - reported per member, the others go on
@@ -125,6 +127,23 @@ def run_fused(task: FusedTask) -> dict[str, dict]:
             if not msg.startswith("step "):
                 msg = f"step {m.step.name!r}, {m.tile.name}: {type(exc).__name__}: {msg}"
             out[m.step.name] = {"error": msg}
+    if task.riders:
+        out[RIDERS] = ride(task.riders, written)
+    return out
+
+
+#: the key of :func:`run_fused`'s result that holds the fused task's riders (not a step name: has a space)
+RIDERS = "riders of the pass"
+
+
+def _shared_written(reader: TileTask, shared: _Shared) -> Written:
+    """The shared read, cut to the tile's core, in the form riders take (store, arrays, valid)."""
+    cut = reader.tile.core.relative_to(shared.outer)
+    out: Written = {}
+    for _alias, (path, output) in reader.inputs.items():
+        ref = f"{Path(path).stem}/{output}"
+        store, arrays, valid = out.get(path, (_store(path), {}, shared.valid[ref][cut]))
+        out[path] = (store, {**arrays, output: shared.raw[ref][:, cut[0], cut[1]]}, valid)
     return out
 
 

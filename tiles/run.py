@@ -27,7 +27,7 @@ from .lock import RunLock
 from .step import InputMeta, OutputSpec, Step, canonical_json, params_dump
 from .store import StoreLayout, TileStore, create_store
 from .fitpass import FusedFit, PairTree, RidePlan, RidingFits, run_fused_fit
-from .fuse import FusedTask, fusion_groups, run_fused, shared_memory, split_by_memory, task_memory
+from .fuse import RIDERS, FusedTask, fusion_groups, run_fused, shared_memory, split_by_memory, task_memory
 from .tasks import TileError, TileTask, load_model, run_accumulate, run_tile, save_model
 from ..errors import SwathmillError
 
@@ -411,7 +411,7 @@ class Run:
 
         def on_done(task: TileTask, res: dict) -> None:
             if riding:
-                riding.take(task.index, res)
+                riding.take(task.index, res.pop("riders", None))
             self.ledger.mark(step.name, key, task.index, "done", res.get("seconds", 0.0))
             report.computed += 1
             self.progress.advance(step.name)
@@ -485,7 +485,8 @@ class Run:
                 by_tile.setdefault(t.index, []).append(TileTask(
                     m.step, t.index, m.sp.grid, self.options.tile, m.step.halo, m.sp.inputs, str(spath),
                     m.outputs, m.fitted.path, riding.riders(m.step.name, t.index) if riding else ()))
-        tasks = [FusedTask(tuple(v)) for _k, v in sorted(by_tile.items())]
+        tasks = [FusedTask(tuple(v), riding.group_riders({t.step.name for t in v}, k) if riding else ())
+                 for k, v in sorted(by_tile.items())]
         by_name = {m.step.name: m for m in part}
         for m in part:
             self.progress.start(m.step.name, len(m.sp.tiling), m.report.done_before)
@@ -493,6 +494,8 @@ class Run:
         t0 = time.perf_counter()
 
         def on_done(task: FusedTask, res: dict) -> None:
+            if riding:
+                riding.take(task.index, res.pop(RIDERS, None))
             for name, r in res.items():
                 m = by_name[name]
                 if "error" in r:
@@ -501,7 +504,7 @@ class Run:
                     log.error("%s", r["error"])
                 else:
                     if riding:
-                        riding.take(task.index, r)
+                        riding.take(task.index, r.pop("riders", None))
                     secs = r.get("seconds", 0.0) + r.get("read_seconds", 0.0)
                     own[name] += secs
                     self.ledger.mark(name, m.key, task.index, "done", secs)
@@ -580,24 +583,29 @@ class Run:
                                                    "(each tile read once)")
 
     def _plan_riders(self, members: Sequence["_Member"], layout: StoreLayout, known) -> RidingFits:
-        """Fits of later steps that read only outputs of a member computing tiles now, with a fit halo of 0:
-        they accumulate inside that member's tile tasks (fusion only, not in incremental runs)."""
+        """Fits of later steps (fit halo 0) that read only what the members' tile tasks have in memory:
+        a member's outputs (riding on its tile task), or, in a fused pass, the pass's shared input and the
+        outputs of several members (riding on the fused task). Fusion only, not in incremental runs."""
         if not self.options.fuse or self.options.incremental:
             return RidingFits([], self.options.tile)
         carriers = {m.step.name: m for m in members if m.pending}
+        group_refs = set(members[0].step.inputs.values()) if len(members) > 1 else set()
         plans = []
         for s in self._upcoming:
-            srcs = {ref.split("/")[0] for ref in s.inputs.values()}
-            if (s.fit is None or s.fit.halo != 0 or s.reader is not None or len(srcs) != 1
-                    or not srcs <= set(carriers)):
+            if s.fit is None or s.fit.halo != 0 or s.reader is not None:
                 continue
-            m = carriers[next(iter(srcs))]
+            refs = set(s.inputs.values())
+            needs = frozenset(r.split("/")[0] for r in refs if r.split("/")[0] in carriers)
+            shared = bool(refs & group_refs)
+            if not needs or any(r not in group_refs and r.split("/")[0] not in carriers for r in refs):
+                continue
             ahead = dict(known)
-            ahead[m.step.name] = (self.store_path(m.step.name), m.key, m.store)
+            for n in needs:
+                ahead[n] = (self.store_path(n), carriers[n].key, carriers[n].store)
             miss = self._missing_fit(s, layout, ahead)
             if miss is not None:
                 sp, mbase, tiles = miss
-                plans.append(RidePlan(s, sp, mbase, tiles, m.step.name, PairTree(len(tiles), s.fit.merge),
+                plans.append(RidePlan(s, sp, mbase, tiles, needs, shared, PairTree(len(tiles), s.fit.merge),
                                       {t.index: k for k, t in enumerate(tiles)}, set()))
         return RidingFits(plans, self.options.tile)
 
@@ -610,10 +618,11 @@ class Run:
             t0 = time.perf_counter()
             save_model(model, p.mbase)
             self.ledger.add_timing(p.step.name, "fit", p.seconds / par + time.perf_counter() - t0)
-            self._prefit[p.step.name] = (str(p.mbase), f"during step {p.carrier!r}'s pass ({len(p.carried)} tiles "
-                                                       f"accumulated from memory, {n_read} read)")
+            whose = f"step {p.carrier!r}'s pass" if len(p.needs) == 1 and not p.shared else f"the pass of {p.carrier}"
+            self._prefit[p.step.name] = (str(p.mbase), f"during {whose} ({len(p.carried)} tiles accumulated from "
+                                                       f"memory, {n_read} read)")
         for p in riding.plans:
-            if p.error is not None and p.carrier in complete:
+            if p.error is not None and p.needs <= complete:
                 log.info("step %r: its fit did not ride on %r's pass (%s); it fits on its own", p.step.name,
                          p.carrier, p.error)
 

@@ -19,7 +19,7 @@ from .step import Block, InputMeta, OutputSpec, Step
 from .store import TileStore, decode, encode
 from ..errors import SwathmillError
 
-__all__ = ["TileTask", "Rider", "ride", "run_tile", "compute_tile", "read_block", "run_accumulate", "load_model", "save_model", "TileError"]
+__all__ = ["TileTask", "Rider", "Written", "ride", "run_tile", "compute_tile", "read_block", "run_accumulate", "load_model", "save_model", "TileError"]
 
 
 class TileError(SwathmillError, RuntimeError):
@@ -140,10 +140,11 @@ def run_tile(task: TileTask) -> dict:
     return compute_tile(task, block, t0)
 
 
-def compute_tile(task: TileTask, block: Block, t0: float | None = None) -> dict:
+def compute_tile(task: TileTask, block: Block, t0: float | None = None, keep: dict | None = None) -> dict:
     """Run the step's kernel on ``block`` (read for ``task``) and write the tile's core region.
 
-    Returns ``{"seconds": ..., "valid": ...}``; ``seconds`` counts from ``t0`` (default: now).
+    Returns ``{"seconds": ..., "valid": ...}``; ``seconds`` counts from ``t0`` (default: now). ``keep``
+    (a dict) receives what was written, ``{out_path: (store, arrays, valid)}``, for riders of a fused task.
     """
     t0 = time.perf_counter() if t0 is None else t0
     step, tile = task.step, task.tile
@@ -176,7 +177,9 @@ def compute_tile(task: TileTask, block: Block, t0: float | None = None) -> dict:
         raise TileError(f"step {step.name!r}, {tile.name}: {type(exc).__name__}: {exc}") from exc
     res = {"seconds": time.perf_counter() - t0, "valid": int(valid.sum())}
     if task.riders:
-        res["riders"] = ride(task.riders, store, arrays, valid)
+        res["riders"] = ride(task.riders, {task.out_path: (store, arrays, valid)})
+    if keep is not None:
+        keep[task.out_path] = (store, arrays, valid)
     return res
 
 
@@ -185,23 +188,28 @@ class Rider:
     """A later step's fit task carried by a tile task of the step that makes its input."""
 
     slot: str
-    task: "TileTask"  # the fit task (halo 0; its inputs are outputs of the carrying step's store)
+    task: "TileTask"  # the fit task (halo 0; it reads only what the carrying task has in memory)
 
 
-def _block_from_written(task: TileTask, store: TileStore, arrays: Mapping[str, np.ndarray],
-                        valid: np.ndarray) -> Block:
-    """The block :func:`~swathmill.tiles.tasks.read_block` would read for ``task`` right after the
-    carrying tile wrote ``arrays`` (encoded, per output) and ``valid`` into ``store``."""
+#: what a tile task has in memory, per store path: (the store, encoded arrays per output, valid mask)
+Written = dict[str, tuple[TileStore, Mapping[str, np.ndarray], np.ndarray]]
+
+
+def _block_from_written(task: TileTask, written: Written) -> Block:
+    """The block :func:`read_block` would read for ``task`` right after the values in ``written``
+    (per store path: encoded arrays of the tile's core, and the valid mask) were stored."""
     step, tile = task.step, task.tile
     if tile.padded != tile.core:
         raise ValueError(f"step {step.name!r}: a riding fit needs a halo of 0")
     data, meta = {}, {}
+    v = np.ones(tile.core.shape, dtype=bool)
     for alias, (path, output) in task.inputs.items():
+        store, arrays, valid = written[path]
         spec: OutputSpec = store.specs[output]
         meta[alias] = InputMeta(f"{Path(path).stem}/{output}", store.grid, spec)
         raw = np.array(arrays[output], copy=True, order="C")
+        v &= valid
         data[alias] = decode(raw, spec) if step.decode else raw
-    v = np.array(valid, dtype=bool, copy=True)
     if step.decode:
         for arr in data.values():
             arr[:, ~v] = np.nan
@@ -209,15 +217,14 @@ def _block_from_written(task: TileTask, store: TileStore, arrays: Mapping[str, n
                  static=step.static, meta=meta, decoded=step.decode)
 
 
-def ride(riders: tuple[Rider, ...], store: TileStore, arrays: Mapping[str, np.ndarray],
-         valid: np.ndarray) -> dict[str, dict]:
-    """Run each rider's accumulate on the tile just written: per slot ``{"value", "seconds"}`` or
-    ``{"error"}`` (a failing rider never fails the tile that carries it; its step fits on its own)."""
+def ride(riders: tuple[Rider, ...], written: Written) -> dict[str, dict]:
+    """Run each rider's accumulate on what the tile task has in memory: per slot ``{"value", "seconds"}``
+    or ``{"error"}`` (a failing rider never fails the task that carries it; its step fits on its own)."""
     out: dict[str, dict] = {}
     for r in riders:
         t0 = time.perf_counter()
         try:
-            value = r.task.step.fit.accumulate(_block_from_written(r.task, store, arrays, valid))
+            value = r.task.step.fit.accumulate(_block_from_written(r.task, written))
             out[r.slot] = {"value": value, "seconds": time.perf_counter() - t0}
         except Exception as exc:  # noqa: BLE001 - reported; the step then fits by reading
             out[r.slot] = {"error": f"{type(exc).__name__}: {exc}"}
