@@ -109,20 +109,23 @@ def blocked_folds(y: np.ndarray, groups: np.ndarray, folds: int) -> list[tuple[n
     return splits
 
 
-def check_training(y: np.ndarray, groups: np.ndarray, class_names: Sequence[str], folds: int) -> None:
-    """Refuse training sets that cannot be cross-validated with ``folds`` blocked folds."""
+def check_training(y: np.ndarray, groups: np.ndarray, class_names: Sequence[str], folds: int,
+                   step: str | None = None) -> None:
+    """Refuse training sets that cannot be cross-validated with ``folds`` blocked folds (the message
+    names ``step`` when given)."""
+    at = f"step {step!r}: " if step else ""
     if folds < 2:
-        raise ClassifyError(f"folds must be at least 2. Got {folds}")
+        raise ClassifyError(f"{at}folds must be at least 2. Got {folds}")
     counts = np.bincount(np.asarray(y), minlength=len(class_names) + 1)[1:len(class_names) + 1]
     few = {class_names[i]: int(c) for i, c in enumerate(counts) if c < folds}
     if few:
         raise ClassifyError(
-            f"training class(es) with fewer samples than the {folds} cross-validation folds: {few}; add "
+            f"{at}training class(es) with fewer samples than the {folds} cross-validation folds: {few}; add "
             "reference for them, drop them from the class list, or lower folds")
     ng = np.unique(groups).size
     if ng < folds:
         raise ClassifyError(
-            f"{ng} spatial group(s) (polygons or blocks) for {folds} folds: blocked cross-validation needs "
+            f"{at}{ng} spatial group(s) (polygons or blocks) for {folds} folds: blocked cross-validation needs "
             "at least as many groups as folds")
     per_class_groups = {class_names[c - 1]: np.unique(groups[y == c]).size for c in np.unique(y)}
     thin = {k: v for k, v in per_class_groups.items() if v < 2}

@@ -316,7 +316,7 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     if cfg.max_per_class is not None:
         samples = cap_samples(samples, cfg.max_per_class, cfg.seed)
     train = training_mask(samples)
-    check_training(samples.label[train], samples.group[train], samples.class_names, cfg.folds)
+    check_training(samples.label[train], samples.group[train], samples.class_names, cfg.folds, step=name)
     if colors is not None and len(colors) != len(samples.class_names):
         raise ClassifyError(f"step {name!r}: {len(colors)} colours for {len(samples.class_names)} classes")
     names = tuple(samples.class_names)
