@@ -235,7 +235,8 @@ def _finalize_sam(acc: dict | None, params: ClassifierParams, meta: Mapping[str,
     order, label, mode = feature_order(spec)
     if mode == "pca":  # the angle takes the bands themselves: they count in input order
         label = "bands in input order"
-    order = [i for i in order if i in set(kept.tolist())]
+    usable = set(kept.tolist())  # bands outside the exclude ranges, in the ranked order
+    order = [i for i in order if i in usable]
     curves = feature_curves(s, meta, cfg, params.class_names, order, label, NearestAngle) if s is not None else []
     use, record = chosen_features(cfg, curves, order, label, kept, params.step, meta["x"].ref)
     band_index = np.sort(np.asarray(use, dtype=np.int64))
