@@ -158,6 +158,20 @@ def _sam_section():
     return SamSettings(threshold=0.1)
 
 
+def _sam_auto_section():
+    """A spectral angle on training-sample references taking its number of features from the curve."""
+    from swathmill.workflows.methods.classify.sam import SamSettings
+
+    return SamSettings(threshold=0.1, components="auto", folds=3, curve_max=6)
+
+
+def _sam_compare_section():
+    """A spectral angle recording its curve beside another input's (curve_compare needs the curve)."""
+    from swathmill.workflows.methods.classify.sam import SamSettings
+
+    return SamSettings(threshold=0.1, curve=True, folds=3, curve_compare=["src/other"])
+
+
 def _sam(section):
     from swathmill.workflows.methods.classify.sam import sam_step
 
@@ -331,6 +345,7 @@ CASES = [
     Case("mnf_denoise", _mnf_section(components=6, denoise_components=3), _mnf, _cube),
     Case("sam", _sam_section, _sam, _patches),
     Case("sam_image", _sam_section, _sam_image, _patches),
+    Case("sam_image_auto", _sam_auto_section, _sam_image, _patches, also=(_sam_compare_section,)),
     Case("sff", _sff_section, _sff, _patches),
     Case("svm", _svm_section, _svm, _patches, also=(_svm_compare_section,)),
     *(Case(f"unmix_{m}", _unmix_section(m), _unmix, _mixtures)

@@ -40,8 +40,12 @@ def demo_config(files, root: Path, size: str, executor: str | None = None) -> di
         "endmembers": {"name": "endmembers", "method": "nfindr", "input": "mnf/components",
                        "spectra": "mosaic/reflectance", "n_endmembers": 7, "seed": 0},
         "classify": {
-            "sam": {"name": "sam", "input": "mosaic/reflectance", "references": {"library": lib},
-                    "threshold": 0.12},
+            "sam": [{"name": "sam", "input": "mosaic/reflectance", "references": {"library": lib},
+                     "threshold": 0.12},
+                    # the angle on MNF components against the training samples' class means, taking the
+                    # number of components from its dimensionality curve (one standard error rule)
+                    {"name": "sam_mnf", "input": "mnf/components", "references": {"samples": ref},
+                     "threshold": None, "components": "auto", "folds": 3, "curve_max": 12}],
             # feature fitting only for the materials with a diagnostic feature in its range
             "sff": {"name": "sff", "input": "mosaic/reflectance",
                     "references": {"library": lib, "materials": ["pallid_clay", "chalk_pan", "straw_scrub"]},

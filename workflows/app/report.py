@@ -777,7 +777,7 @@ def _accuracy_html(v: AccuracyView) -> str:
 
 def _step_curves(model: Mapping[str, object]) -> tuple[list[Mapping], int | None]:
     """The dimensionality curves a fitted model records, and the count it took (None: not chosen by a curve)."""
-    if isinstance(model.get("curves"), list):  # SVM: its input's curve first, then the compared inputs
+    if isinstance(model.get("curves"), list):  # SVM, spectral angle: the input's curve first, then the compared
         comp = model.get("components") or {}
         return list(model["curves"]), int(comp["used"]) if comp.get("asked") == "auto" else None
     for key in ("curve", "feature_curve"):  # band selection, calibration
@@ -839,8 +839,8 @@ def model_choice_html(models: Mapping[str, Mapping | None], accuracy: Mapping | 
     ----------
     models
         Step name -> fitted model (None for steps without one). Dimensionality curves are read from
-        SVM models (``curves``, ``components``), band-selection models (``curve``) and calibration
-        models (``feature_curve``).
+        SVM and spectral angle models (``curves``, ``components``), band-selection models (``curve``)
+        and calibration models (``feature_curve``).
     accuracy
         The run's accuracy file (its ``quantity_maps`` give the validation metrics), or None.
     calibrations

@@ -90,13 +90,14 @@ class ReferenceSet:
         legend = step_legend(legend, step, self.class_names, self.colors, source)
         return ClassifierParams.make(step, settings, self.names, self.class_names, self.ref_class, legend)
 
-    def fit(self, finalize: Callable[..., dict]) -> Fit:
-        """The fit of a step using these references; ``finalize(acc, params, meta, library=, table=)``."""
+    def fit(self, finalize: Callable[..., dict], accumulate: Callable[..., dict] = accumulate_samples) -> Fit:
+        """The fit of a step using these references; ``finalize(acc, params, meta, library=, table=)``;
+        ``accumulate`` gathers the samples (ground reference only; the default gathers input ``x``)."""
         if self.library is not None:
             return Fit(accumulate=accumulate_samples, merge=merge_gathered, select=select_no_tiles,
                        finalize=functools.partial(finalize, library=self.library, table=None))
         assert self.table is not None
-        return Fit(accumulate=accumulate_samples, merge=merge_gathered,
+        return Fit(accumulate=accumulate, merge=merge_gathered,
                    select=functools.partial(select_tiles_holding, rows=self.table.row, cols=self.table.col),
                    finalize=functools.partial(finalize, library=None, table=self.table))
 
@@ -123,10 +124,14 @@ def reference_set(library: SpectralLibrary | None, samples: SampleTable | None, 
 
 
 def reference_spectra(acc: dict | None, params: ClassifierParams, meta: Mapping[str, InputMeta], *,
-                      library: SpectralLibrary | None, table: SampleTable | None
+                      library: SpectralLibrary | None, table: SampleTable | None,
+                      gathered: tuple[np.ndarray, np.ndarray, dict] | None = None
                       ) -> tuple[np.ndarray, np.ndarray, dict]:
     """Reference spectra on all the input's bands (m, b), the mask of bands kept after the step's
-    ``exclude`` ranges (empty when none), and the model entries describing where they came from."""
+    ``exclude`` ranges (empty when none), and the model entries describing where they came from.
+
+    ``gathered``: the samples already taken from ``acc`` (:func:`.shared.gathered_samples`: indices,
+    spectra on the input's bands, report), when the caller needs them too."""
     ref = meta["x"].ref
     nb = len(meta["x"].spec.bands)
     wl = input_coord(meta["x"].spec, "wavelength", ref)
@@ -140,7 +145,7 @@ def reference_spectra(acc: dict | None, params: ClassifierParams, meta: Mapping[
         model["method"] = "linear" if fwhm is None else "gaussian"
     else:
         assert table is not None
-        idx, X, report = gathered_samples(acc, table, nb, params.step)
+        idx, X, report = gathered if gathered is not None else gathered_samples(acc, table, nb, params.step)
         train = training_mask(table, idx)
         refs = class_means(X[train], table.label[idx][train], table.class_names)
         model["source"] = "samples"

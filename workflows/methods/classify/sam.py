@@ -12,6 +12,26 @@ Spectral angle (Kruse et al., 1993, Remote Sens. Environ. 44:145-163)
     threshold of the reference's class (one for all, or one per class); otherwise 0 (unclassified).
     The class map is written in the codes of the run's legend (255 outside the mosaic).
 
+Spectral angle on components, the dimensionality curve and ``components: auto``
+    The angle works on any input: reflectance, selected bands, or MNF/PCA components (with
+    references from training samples: the class means of the training pixels' components; component
+    values are centred on the scene mean, so the angle there compares directions from that mean).
+    ``components: k`` keeps the first ``k`` features in their ranked order (components in component
+    order, a band-selection cube in selection order, other bands in input order; bands in ``exclude``
+    never count). With ``curve: true`` (or ``components: auto``) the fit computes the blocked
+    cross-validated overall accuracy against the number of features on the training samples
+    (:mod:`.curves`, the same ``GroupKFold`` on the samples' spatial groups as the SVM): for each count
+    k and fold, the references are the class means of the training fold's first k features
+    (:class:`NearestAngle`), each held-out sample takes the class of the smallest angle (no threshold:
+    the curve scores the nearest-reference rule), and the score is the share of held-out samples
+    classified right. ``components: auto`` takes the smallest count within one standard error of the
+    peak; ``curve_compare`` records the curves of further inputs beside it (a reflectance cube by PCA
+    components fitted in each training fold). The model records ``curves``, ``feature_index``,
+    ``features_used`` and ``components`` (the choice). Library references have no labelled samples
+    to score a curve on, so ``curve`` and ``components: auto`` need ``references: samples``; a library
+    is not moved into component space by this step (it needs band wavelengths), so with a library
+    ``components: k`` applies to a band-selection cube or reflectance only.
+
 Step outputs: ``classes`` (1 band), ``angle`` (one band per reference, radians).
 """
 from __future__ import annotations
@@ -19,24 +39,26 @@ from __future__ import annotations
 from typing import Any, Mapping, Sequence
 
 import numpy as np
-from pydantic import Field, field_validator
+from pydantic import Field, field_validator, model_validator
 
 from swathmill.tiles.step import Block, InputMeta, OutputSpec, Step
 from swathmill.tiles.store import copy_bands, index_runs, scale_offset
 from swathmill.workflows.inputs.library import SpectralLibrary
 from swathmill.workflows.inputs.reference import SampleTable
-from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 
-from .references import ReferenceSpectraConfig, reference_set, reference_spectra
+from .curves import (CurveSettings, accumulate_compare, check_training, chosen_features, compare_inputs,
+                     curve_samples, feature_curves, feature_order)
+from .references import ReferenceSpectraConfig, class_means, reference_set, reference_spectra
 from .legend import Legend
-from .shared import (ClassifierParams, ClassifyError, band_names, check_ranges, class_spec, make_settings,
-                     to_legend_codes)
+from .shared import (ClassifierParams, ClassifyError, accumulate_samples, band_names, check_ranges, class_spec,
+                     make_settings, to_legend_codes, training_mask)
 
 __all__ = [
     "spectral_angle",
     "class_thresholds",
     "assign_min_angle",
+    "NearestAngle",
     "SamSettings",
     "SamConfig",
     "sam_step",
@@ -114,9 +136,35 @@ def assign_min_angle(angles: np.ndarray, ref_class: np.ndarray, thresholds: np.n
     return out
 
 
+class NearestAngle:
+    """The spectral angle rule as a scikit-learn style estimator, for the dimensionality curve.
+
+    ``fit(X, y)`` takes the mean of each class present in ``y`` as its reference
+    (:func:`.references.class_means`); ``predict(X)`` gives each row the class of the reference with the
+    smallest angle (:func:`spectral_angle`, ties to the first class, no threshold), 0 where the row's
+    angles are undefined (zero or non-finite spectrum). References of zero norm (possible only on one or
+    two features) can match nothing and are left out.
+    """
+
+    def fit(self, X: np.ndarray, y: np.ndarray) -> "NearestAngle":
+        classes, codes = np.unique(np.asarray(y), return_inverse=True)
+        refs = class_means(X, codes + 1, [str(c) for c in classes])
+        usable = np.linalg.norm(refs, axis=1) > 0
+        self.classes_, self.references_ = classes[usable], refs[usable]
+        return self
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        if self.references_.shape[0] == 0:
+            return np.zeros(X.shape[0], dtype=self.classes_.dtype)
+        return assign_min_angle(spectral_angle(X, self.references_), self.classes_, np.inf)
+
+
 # settings ------------------------------------------------------------------------------------------
-class SamSettings(Section):
-    """The parameters of a spectral angle step (its defaults and bounds are declared here only)."""
+class SamSettings(CurveSettings):
+    """The parameters of a spectral angle step (its defaults and bounds are declared here only; ``folds``
+    and the curve's keys ``components``, ``curve``, ``curve_max``, ``curve_compare`` on
+    :class:`.curves.CurveSettings`)."""
 
     threshold: float | None = Field(0.1, gt=0, description="radians, for every class; null: always the "
                                                            "nearest reference")
@@ -140,11 +188,33 @@ class SamConfig(SamSettings):
           threshold: 0.1            # radians; null = always the nearest reference
           class_thresholds: {water: 0.2}
           exclude: [[1340, 1450], [1790, 1960]]
+
+    On components, with references from training samples and the number of components from the curve::
+
+        sam:
+          input: mnf/components
+          references: {samples: {path: field/plots.gpkg, label: material}}
+          threshold: null
+          components: auto          # or a count, or null (all features)
+          curve: true
+          folds: 5
+          curve_max: 20
+          curve_compare: [mosaic/reflectance, bands/selected]
     """
 
     name: str = "sam"
     input: str = "mosaic/reflectance"
     references: ReferenceSpectraConfig
+
+    @model_validator(mode="after")
+    def _curve_samples(self) -> "SamConfig":
+        if self.wants_curve and self.references.library is not None:
+            raise ValueError(_NO_LIBRARY_CURVE)
+        return self
+
+
+_NO_LIBRARY_CURVE = ("curve and components: auto score the angle on labelled training samples: give "
+                     "references: {samples: ...} (a library has none)")
 
 
 # the step ------------------------------------------------------------------------------------------
@@ -154,11 +224,30 @@ _SAM_REFINE = 0.1  # radians: pairs closer than this are recomputed in float64 (
 
 def _finalize_sam(acc: dict | None, params: ClassifierParams, meta: Mapping[str, InputMeta], *,
                   library: SpectralLibrary | None, table: SampleTable | None) -> dict:
-    """References on the input's bands less the excluded ranges."""
-    refs, keep, model = reference_spectra(acc, params, meta, library=library, table=table)
-    band_index = np.flatnonzero(keep) if keep.size else np.arange(len(meta["x"].spec.bands))
-    model["band_index"] = band_index.astype(np.int64)
+    """References on the input's bands less the excluded ranges, or on the features ``components``
+    takes (a count, or the one-standard-error count of the curve)."""
+    cfg: SamSettings = params.settings
+    spec = meta["x"].spec
+    s = curve_samples(acc, table, meta, cfg, params.step) if table is not None else None
+    refs, keep, model = reference_spectra(acc, params, meta, library=library, table=table,
+                                          gathered=None if s is None else (s.idx, s.X, s.report))
+    kept = np.flatnonzero(keep) if keep.size else np.arange(len(spec.bands))
+    order, label, mode = feature_order(spec)
+    if mode == "pca":  # the angle takes the bands themselves: they count in input order
+        label = "bands in input order"
+    usable = set(kept.tolist())  # bands outside the exclude ranges, in the ranked order
+    order = [i for i in order if i in usable]
+    curves = feature_curves(s, meta, cfg, params.class_names, order, label, NearestAngle) if s is not None else []
+    use, record = chosen_features(cfg, curves, order, label, kept, params.step, meta["x"].ref)
+    band_index = np.sort(np.asarray(use, dtype=np.int64))
+    model["band_index"] = band_index
     model["references"] = refs[:, band_index]
+    if cfg.components is not None or curves:
+        model["feature_index"] = use
+        model["features_used"] = [spec.bands[i] for i in use]
+        model["components"] = record
+    if curves:
+        model["curves"] = curves
     return model
 
 
@@ -269,7 +358,9 @@ def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = Non
     settings : a :class:`SamSettings` (or a section derived from it); or its fields as keywords:
         ``threshold`` (radians, for every class; None: always the nearest reference),
         ``class_thresholds`` (radians per class name, overriding ``threshold``), ``exclude``
-        (wavelength ranges in nm left out of the angle, e.g. water vapour bands).
+        (wavelength ranges in nm left out of the angle, e.g. water vapour bands), and the curve's
+        ``folds``, ``components``, ``curve``, ``curve_max``, ``curve_compare`` (see the module's notes;
+        ``curve`` and ``components: auto`` need ``samples``).
     legend : the run's legend (the class map's codes); default: a legend of these references alone.
     """
     cfg: SamSettings = make_settings(SamSettings, name, settings, fields)
@@ -278,6 +369,13 @@ def sam_step(name: str, input_ref: str, *, library: SpectralLibrary | None = Non
     if unknown:
         raise ClassifyError(f"step {name!r}: thresholds for unknown class(es) {unknown}; "
                             f"classes are {list(refs.class_names)}")
-    return Step(name=name, kernel=_sam_kernel, outputs=_sam_outputs, inputs={"x": input_ref},
-                params=refs.params(name, cfg, legend), fit=refs.fit(_finalize_sam), static=refs.static, decode=False,
-                version="3")
+    if cfg.wants_curve:
+        if refs.table is None:
+            raise ClassifyError(f"step {name!r}: {_NO_LIBRARY_CURVE}")
+        train = training_mask(refs.table)
+        check_training(refs.table.label[train], refs.table.group[train], refs.class_names, cfg.folds,
+                       step=name)
+    compare = compare_inputs(name, input_ref, cfg)
+    fit = refs.fit(_finalize_sam, accumulate=accumulate_compare if compare else accumulate_samples)
+    return Step(name=name, kernel=_sam_kernel, outputs=_sam_outputs, inputs={"x": input_ref, **compare},
+                params=refs.params(name, cfg, legend), fit=fit, static=refs.static, decode=False, version="3")

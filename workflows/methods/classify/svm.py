@@ -24,29 +24,30 @@ The dimensionality curve and ``components: auto``
     those inputs for every tile of the step too, and that the class map is left empty where one of
     them is nodata. ``components: k`` keeps the first ``k`` features; ``components: auto`` keeps the
     one-standard-error count of the input's curve. The model records the curves (``curves``), the
-    features used (``feature_index``, ``features_used``) and the choice (``components``).
+    features used (``feature_index``, ``features_used``) and the choice (``components``). The
+    machinery (settings, folds, curves, the choice) is :mod:`.curves`, shared with the spectral angle.
 
 Step outputs: ``classes``, and ``probability`` (one band per class) when asked.
 """
 from __future__ import annotations
 
 import functools
-import warnings
-from typing import Any, Literal, Mapping, Sequence
+from typing import Any, Callable, Literal, Mapping, Sequence
 
 import numpy as np
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, field_validator
 
-from swathmill.tiles.samples import gather, merge_gathered, select_tiles_holding
+from swathmill.tiles.samples import merge_gathered, select_tiles_holding
 from swathmill.tiles.step import Block, Fit, InputMeta, OutputSpec, Step
 from swathmill.workflows.inputs.reference import GroundReferenceConfig, SampleTable
-from swathmill.workflows.params import Section
 from swathmill.workflows.roles import Role
 
+from .curves import (CurveSettings, accumulate_compare, blocked_folds, check_training, chosen_features,
+                     compare_inputs, count_curve, curve_samples, feature_curves, feature_order)
 from .legend import Legend, step_legend
 from .models import dump_estimators, load_svm
 from .shared import (ClassifierParams, ClassifyError, accumulate_samples, band_names, blank, class_spec,
-                     field_default, gathered_samples, make_settings, pixel_chunks, to_legend_codes, training_mask)
+                     field_default, make_settings, pixel_chunks, to_legend_codes, training_mask)
 
 __all__ = [
     "SvmSettings",
@@ -61,52 +62,19 @@ __all__ = [
     "svm_step",
 ]
 
-_CMP = "compare_"  # aliases of the curve_compare inputs: compare_0, compare_1, ...
-
-
 # settings ------------------------------------------------------------------------------------------
-class SvmSettings(Section):
-    """The parameters of an SVM step (defaults and bounds declared here only)."""
+class SvmSettings(CurveSettings):
+    """The parameters of an SVM step (defaults and bounds declared here only; ``folds`` and the curve's
+    keys ``components``, ``curve``, ``curve_max``, ``curve_compare`` on :class:`.curves.CurveSettings`)."""
 
     C: list[float] = Field(default_factory=lambda: [1.0, 10.0, 100.0, 1000.0], min_length=1)
     gamma: list[float | Literal["scale"]] = Field(default_factory=lambda: [1e-3, 1e-2, 1e-1, 1.0], min_length=1)
-    folds: int = Field(5, ge=2)
     scoring: Literal["accuracy", "balanced_accuracy", "f1_macro"] = "accuracy"
     probability: bool = False
     seed: int = 0
     max_per_class: int | None = Field(None, ge=1)
     chunk: int = Field(65536, ge=1, description="pixels per prediction call")
-    components: int | Literal["auto"] | None = Field(
-        None, description="keep the first k features of the input (ranked order); 'auto': the one-standard-"
-                          "error count of the dimensionality curve; None: all")
-    curve: bool = Field(False, description="record blocked-CV accuracy against the number of features")
-    curve_max: int = Field(20, ge=1, description="largest feature count of the curve")
     curve_C: float = Field(100.0, gt=0, description="SVC C of the curve (gamma 'scale', standardised features)")
-    curve_compare: list[str] = Field(default_factory=list,
-                                     description="further inputs ('step/output') whose curves are recorded beside")
-
-    @field_validator("components")
-    @classmethod
-    def _components(cls, v: int | str | None) -> int | str | None:
-        if isinstance(v, int) and v < 1:
-            raise ValueError(f"components is a count of at least 1, 'auto' or null. Got {v}")
-        return v
-
-    @field_validator("curve_compare")
-    @classmethod
-    def _refs(cls, v: list[str]) -> list[str]:
-        for r in v:
-            if r.count("/") != 1:
-                raise ValueError(f"curve_compare entries are 'step/output' references. Got {r!r}")
-        if len(set(v)) != len(v):
-            raise ValueError(f"curve_compare names an input twice: {v}")
-        return v
-
-    @model_validator(mode="after")
-    def _curve_needed(self) -> "SvmSettings":
-        if self.curve_compare and not (self.curve or self.components == "auto"):
-            raise ValueError(f"curve_compare {self.curve_compare} is only read with curve: true or components: auto")
-        return self
 
     @field_validator("C")
     @classmethod
@@ -137,41 +105,6 @@ class SvmConfig(SvmSettings):
 
 
 # the maths -----------------------------------------------------------------------------------------
-def blocked_folds(y: np.ndarray, groups: np.ndarray, folds: int) -> list[tuple[np.ndarray, np.ndarray]]:
-    """GroupKFold splits of the samples; checks that no group lies on both sides of any split."""
-    from sklearn.model_selection import GroupKFold
-
-    splits = list(GroupKFold(n_splits=folds).split(np.zeros((len(y), 1)), y, groups))
-    for k, (tr, te) in enumerate(splits):
-        shared = np.intersect1d(groups[tr], groups[te])
-        if shared.size:  # cannot happen with GroupKFold; a guard against a library change
-            raise ClassifyError(f"fold {k}: group(s) {shared[:5].tolist()} on both sides of the split")
-    return splits
-
-
-def check_training(y: np.ndarray, groups: np.ndarray, class_names: Sequence[str], folds: int) -> None:
-    """Refuse training sets that cannot be cross-validated with ``folds`` blocked folds."""
-    if folds < 2:
-        raise ClassifyError(f"folds must be at least 2. Got {folds}")
-    counts = np.bincount(np.asarray(y), minlength=len(class_names) + 1)[1:len(class_names) + 1]
-    few = {class_names[i]: int(c) for i, c in enumerate(counts) if c < folds}
-    if few:
-        raise ClassifyError(
-            f"training class(es) with fewer samples than the {folds} cross-validation folds: {few}; add "
-            "reference for them, drop them from the class list, or lower folds")
-    ng = np.unique(groups).size
-    if ng < folds:
-        raise ClassifyError(
-            f"{ng} spatial group(s) (polygons or blocks) for {folds} folds: blocked cross-validation needs "
-            "at least as many groups as folds")
-    per_class_groups = {class_names[c - 1]: np.unique(groups[y == c]).size for c in np.unique(y)}
-    thin = {k: v for k, v in per_class_groups.items() if v < 2}
-    if thin:
-        warnings.warn(f"class(es) {thin} come from a single polygon or block: the blocked folds that hold "
-                      "it out cannot learn it, so cross-validation scores will be pessimistic", UserWarning,
-                      stacklevel=3)
-
-
 def fit_svm(X: np.ndarray, y: np.ndarray, groups: np.ndarray, *, class_names: Sequence[str],
             settings: SvmSettings | None = None, **fields: Any) -> dict:
     """Grid search C and gamma of a standardised RBF SVC with blocked CV; refit on all samples.
@@ -272,123 +205,45 @@ def cap_samples(table: SampleTable, max_per_class: int, seed: int = field_defaul
 
 
 # the dimensionality curve -------------------------------------------------------------------------
-def feature_order(spec: OutputSpec) -> tuple[list[int], str, Literal["prefix", "pca"]]:
-    """The ranked order of an input's bands, what they are, and how a curve counts them.
-
-    A band-selection cube (``selection_order`` attribute): its bands in selection order, "selected
-    bands". Components (role ``components``): in component order, named after their ``long_name``
-    (e.g. "MNF components"). A reflectance cube: "PCA components" fitted inside each training fold
-    (mode ``pca``). Anything else: its bands in input order.
-    """
-    bands = list(spec.bands)
-    sel = spec.attrs.get("selection_order")
-    if sel:
-        missing = [b for b in sel if b not in bands]
-        if missing:
-            raise ClassifyError(f"selection_order names band(s) {missing} that the input does not hold ({bands})")
-        return [bands.index(b) for b in sel], "selected bands", "prefix"
-    if spec.role == Role.COMPONENTS:
-        return list(range(len(bands))), str(spec.attrs.get("long_name", "components")), "prefix"
-    if spec.role == Role.REFLECTANCE:
-        return list(range(len(bands))), "PCA components", "pca"
-    return list(range(len(bands))), "bands in input order", "prefix"
-
-
-def svm_feature_curve(X: np.ndarray, y: np.ndarray, groups: np.ndarray, *, mode: Literal["prefix", "pca"],
-                      settings: SvmSettings) -> dict:
-    """Blocked-CV overall accuracy of a standardised RBF SVC against the number of features.
-
-    ``X`` holds the features in ranked order (``mode="prefix"``) or raw bands (``mode="pca"``: PCA
-    fitted in each training fold). Counts run 1..``curve_max`` (at most the features, and for PCA at
-    most the smallest training fold less one). See
-    :func:`swathmill.workflows.methods.bandselect.feature_count_curve`.
-    """
+def _svc_factory(settings: SvmSettings) -> Callable[[], Any]:
+    """A fresh standardised RBF SVC with ``curve_C`` and ``gamma="scale"`` per call."""
     from sklearn.pipeline import Pipeline
     from sklearn.preprocessing import StandardScaler
     from sklearn.svm import SVC
 
-    from swathmill.workflows.methods.bandselect import feature_count_curve
-
-    top = min(settings.curve_max, X.shape[1])
-    if mode == "pca":
-        smallest = min(tr.size for tr, _ in blocked_folds(y, groups, settings.folds))
-        top = min(top, smallest - 1)
-    if top < 1:
-        raise ClassifyError(f"the dimensionality curve needs at least one feature. Got {X.shape[1]} feature(s)")
-
     def estimator() -> Pipeline:
         return Pipeline([("scale", StandardScaler()),
                          ("svc", SVC(kernel="rbf", C=settings.curve_C, gamma="scale", random_state=settings.seed))])
+    return estimator
 
-    return feature_count_curve(X, y, groups, list(range(1, top + 1)), mode=mode, folds=settings.folds,
-                               estimator=estimator)
+
+def svm_feature_curve(X: np.ndarray, y: np.ndarray, groups: np.ndarray, *, mode: Literal["prefix", "pca"],
+                      settings: SvmSettings) -> dict:
+    """Blocked-CV overall accuracy of a standardised RBF SVC against the number of features
+    (:func:`.curves.count_curve` with the SVC of the curve)."""
+    return count_curve(X, y, groups, mode=mode, settings=settings, estimator=_svc_factory(settings))
 
 
 # the step ------------------------------------------------------------------------------------------
-def _positions(idx: np.ndarray, wanted: np.ndarray) -> np.ndarray:
-    o = np.argsort(idx, kind="stable")
-    return o[np.searchsorted(idx[o], wanted)]
-
-
-def _accumulate_compare(block: Block) -> dict:
-    """The samples of input ``x`` and of every ``curve_compare`` input, side by side (bands concatenated);
-    a sample counts only where every input is valid and finite."""
-    rows, cols = block.static["samples.row"], block.static["samples.col"]
-    aliases = ["x", *(f"{_CMP}{i}" for i in range(len(block.params.settings.curve_compare)))]
-    parts = [gather(block, a, rows, cols, np.float32) for a in aliases]
-    common = parts[0]["idx"]
-    for part in parts[1:]:
-        common = np.intersect1d(common, part["idx"])
-    X = np.concatenate([part["X"][_positions(part["idx"], common)] for part in parts], axis=1)
-    seen = np.unique(np.concatenate([np.concatenate([part["idx"], part["bad"]]) for part in parts]))
-    return {"idx": common.astype(np.int64), "X": np.ascontiguousarray(X),
-            "bad": np.setdiff1d(seen, common).astype(np.int64)}
-
-
 def _finalize_svm(acc: dict | None, params: ClassifierParams, meta: Mapping[str, InputMeta], *,
                   table: SampleTable) -> dict:
     cfg: SvmSettings = params.settings
     spec = meta["x"].spec
     nb = len(spec.bands)
-    aliases = [f"{_CMP}{i}" for i in range(len(cfg.curve_compare))]
-    widths = [nb] + [len(meta[a].spec.bands) for a in aliases]
-    idx, X_all, report = gathered_samples(acc, table, sum(widths), params.step)
-    X = X_all[:, :nb]
-    y = table.label[idx].astype(np.int64)
-    train = training_mask(table, idx)
-    yt, gt = y[train], table.group[idx][train]
+    s = curve_samples(acc, table, meta, cfg, params.step)
+    X, y, train = s.X, s.y, s.train
+    yt, gt = y[train], s.groups
     order, label, mode = feature_order(spec)
     if mode == "pca":  # the SVM takes the bands themselves: its own curve counts them in input order
         label = "bands in input order"
-    curves: list[dict] = []
-    if cfg.curve or cfg.components == "auto":
-        check_training(yt, gt, table.class_names, cfg.folds)
-        # the input's own features in ranked order (components: auto counts them)
-        curves.append({**svm_feature_curve(X[train][:, order], yt, gt, mode="prefix", settings=cfg),
-                       "ref": meta["x"].ref, "features": label})
-        start = nb
-        for a, w in zip(aliases, widths[1:]):
-            o, lab, mode = feature_order(meta[a].spec)
-            Xc = X_all[train, start:start + w][:, o]
-            start += w
-            curves.append({**svm_feature_curve(Xc, yt, gt, mode=mode, settings=cfg), "ref": meta[a].ref,
-                           "features": lab})
-    if cfg.components is None:
-        use = list(range(nb))
-    else:
-        k = int(curves[0]["one_se"]) if cfg.components == "auto" else int(cfg.components)
-        if k > nb:
-            raise ClassifyError(f"step {params.step!r}: components {k} asked, but input {meta['x'].ref!r} has "
-                                f"{nb} band(s)")
-        use = order[:k]
+    curves = feature_curves(s, meta, cfg, table.class_names, order, label, _svc_factory(cfg))
+    use, record = chosen_features(cfg, curves, order, label, range(nb), params.step, meta["x"].ref)
     model = fit_svm(X[train][:, use], yt, gt, class_names=table.class_names, settings=cfg)
-    model["samples"] = report
+    model["samples"] = s.report
     model["n_input_bands"] = nb
-    model["feature_index"] = [int(i) for i in use]
+    model["feature_index"] = use
     model["features_used"] = [spec.bands[i] for i in use]
-    model["components"] = {"asked": cfg.components, "used": len(use), "features": label,
-                           "rule": ("smallest count within one standard error of the peak of the curve"
-                                    if cfg.components == "auto" else "as configured")}
+    model["components"] = record
     if curves:
         model["curves"] = curves
     if (~train).any():
@@ -461,16 +316,14 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     if cfg.max_per_class is not None:
         samples = cap_samples(samples, cfg.max_per_class, cfg.seed)
     train = training_mask(samples)
-    check_training(samples.label[train], samples.group[train], samples.class_names, cfg.folds)
+    check_training(samples.label[train], samples.group[train], samples.class_names, cfg.folds, step=name)
     if colors is not None and len(colors) != len(samples.class_names):
         raise ClassifyError(f"step {name!r}: {len(colors)} colours for {len(samples.class_names)} classes")
     names = tuple(samples.class_names)
     legend = step_legend(legend, name, names, colors, "ground reference")
     params = ClassifierParams.make(name, cfg, names, names, range(1, len(names) + 1), legend)
-    compare = {f"{_CMP}{i}": ref for i, ref in enumerate(cfg.curve_compare)}
-    if input_ref in cfg.curve_compare:
-        raise ClassifyError(f"step {name!r}: curve_compare names the step's own input {input_ref!r}")
-    fit = Fit(accumulate=_accumulate_compare if compare else accumulate_samples, merge=merge_gathered,
+    compare = compare_inputs(name, input_ref, cfg)
+    fit = Fit(accumulate=accumulate_compare if compare else accumulate_samples, merge=merge_gathered,
               select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
               finalize=functools.partial(_finalize_svm, table=samples))
     return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref, **compare},
