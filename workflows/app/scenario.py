@@ -55,7 +55,7 @@ SIZES: dict[str, tuple[int, int, int, int, float, int, int]] = {
 #: name -> (colour, what it stands for)
 MATERIALS: dict[str, tuple[str, str]] = {
     "pallid_clay": ("#d9c89e", "pale clay crust (Al-OH doublet near 2165/2205 nm)"),
-    "chalk_pan": ("#f2f2ea", "carbonate pan (carbonate near 2340 nm)"),
+    "chalk_pan": ("#8fc7c9", "carbonate pan (carbonate near 2340 nm)"),
     "rust_crust": ("#b5532f", "iron-stained gravel (ferric iron near 900 nm)"),
     "reed_meadow": ("#3f8f3a", "green vegetation (chlorophyll near 680 nm, red edge, leaf water)"),
     "straw_scrub": ("#c9a94b", "dry vegetation (cellulose and lignin near 2100 and 2300 nm)"),
