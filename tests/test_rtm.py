@@ -133,7 +133,7 @@ def test_lut_search_separates_entries_float32_cannot():
     for fraction in (41 / 8192, 1 / 8192):
         k = max(1, int(round(fraction * L.shape[0])))
         est, sd, best = lut_search(x, L, P, fraction, chunk=16)
-        e2, s2, b2 = brute_force(x, L, P, k)  # float64, the reference
+        e2, s2, b2 = brute_force(x, L, P, k)  # the reference: a float64 numpy loop with a stable sort
         np.testing.assert_allclose(est, e2, rtol=1e-12, atol=1e-14)
         np.testing.assert_allclose(sd, s2, rtol=1e-9, atol=1e-12)
         np.testing.assert_allclose(best, b2, rtol=1e-7, atol=1e-9)

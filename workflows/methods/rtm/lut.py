@@ -135,12 +135,12 @@ def lut_search(x: np.ndarray, spectra: np.ndarray, params: np.ndarray, fraction:
     The same entries as exact float64 costs select, found fast. Pixels and entries are centred on the
     table's mean spectrum ``m`` and ranked in float32 by ``d_e = ||L_e - m||^2 - 2 (x - m).(L_e - m)``
     (the squared distance less ``||x - m||^2``, which does not change a pixel's ranking): one product
-    of ``[x - m, 1]`` with ``[-2 (L - m) ; ||L - m||^2]``, then ``np.argpartition``. A float32 ``d``
-    is within ``err`` of the exact value, a bound on the rounding of the inputs and of a sum of
-    ``b + 1`` products (``|error| <= gamma_n sum |terms|``, ``gamma_n ~ n u``; Higham, Accuracy and
-    Stability of Numerical Algorithms, 2002, section 3.1), doubled for safety. With ``v`` the k-th
-    smallest ``d``, an entry with ``d < v - 2 err`` is certainly among the k best and one with
-    ``d > v + 2 err`` certainly not; the few entries in between get their exact float64 cost
+    of ``[x - m, 1]`` with ``[-2 (L - m) ; ||L - m||^2]``, then a partial sort (:func:`_k_smallest`).
+    A float32 ``d`` is within ``err`` of the exact value, a bound on the rounding of the inputs and of a
+    sum of ``b + 1`` products (``|error| <= gamma_n sum |terms|``, ``gamma_n ~ n u``; Higham, Accuracy
+    and Stability of Numerical Algorithms, 2002, section 3.1; from memory), doubled for safety. With
+    ``v`` the k-th smallest ``d``, an entry with ``d < v - 2 err`` is certainly among the k best and
+    one with ``d > v + 2 err`` certainly not; the few entries in between get their exact float64 cost
     (``sum (x - L_e)^2``) and the best of them fill the remaining places. The best RMSE is the exact
     cost's minimum over the entries within ``2 err`` of the smallest ``d``.
     """
