@@ -121,6 +121,24 @@ def test_lut_search_matches_a_brute_force_loop(fraction, chunk):
     np.testing.assert_allclose(best, b2, rtol=1e-7, atol=1e-9)
 
 
+def test_lut_search_separates_entries_float32_cannot():
+    """The search ranks in float32 and settles near ties with exact float64 costs: on a table whose
+    entries come in twins 1e-9 apart (below float32 resolution) with different parameters, and an odd
+    k (so the k-th place splits a twin pair), the estimates equal a brute-force float64 loop's."""
+    rng = np.random.default_rng(4)
+    base = rng.uniform(0.0, 0.6, (4096, 6))
+    L = np.vstack([base, base + 1e-9 * rng.standard_normal(base.shape)])  # 8192 entries: the prescreen runs
+    P = rng.uniform(0.0, 1.0, (L.shape[0], 3))
+    x = base[rng.integers(0, 4096, 40)] + rng.normal(0, 0.03, (40, 6))
+    for fraction in (41 / 8192, 1 / 8192):
+        k = max(1, int(round(fraction * L.shape[0])))
+        est, sd, best = lut_search(x, L, P, fraction, chunk=16)
+        e2, s2, b2 = brute_force(x, L, P, k)  # the reference: a float64 numpy loop with a stable sort
+        np.testing.assert_allclose(est, e2, rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(sd, s2, rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(best, b2, rtol=1e-7, atol=1e-9)
+
+
 def test_lut_search_refuses_mismatched_bands():
     with pytest.raises(RtmError, match="band count"):
         lut_search(np.zeros((2, 3)), np.zeros((5, 4)), np.zeros((5, 1)), 0.1)

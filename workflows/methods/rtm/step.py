@@ -36,7 +36,12 @@ __all__ = ["CAUTION_CANOPY", "GeometryConfig", "ParameterRanges", "HybridConfig"
            "geometries"]
 
 CAUTION_CANOPY = ("The leaf and canopy property maps are estimates for research and planning; field checks and "
-                  "agronomic advice come before decisions on fertiliser or irrigation.")
+                  "agronomic advice come before decisions on fertiliser or irrigation. The inversion is ill-posed: "
+                  "different combinations of leaf area and chlorophyll (and of the parameters the table varies "
+                  "but does not map) give nearly the same spectrum, so chlorophyll in particular is poorly "
+                  "constrained; pixels that mix canopy with bare ground, and canopies unlike the model (rows, "
+                  "clumps, a soil unlike its soils), are biased. The accuracy shown holds only over the range "
+                  "of the plots that measured it: a few plots of similar canopies say little about the rest.")
 """The caution the report adds when a run maps canopy properties."""
 
 MASK_CLASSES = ("inverted", "not_vegetation")  # vegetation mask classes 1 and 2 (0: no data)
