@@ -3,7 +3,8 @@
 A product is written in three stages, each with memory bounded by the block size, never by the size
 of the product:
 
-1. a tiled, compressed GeoTIFF written block by block from ``read_window`` (BIGTIFF when needed);
+1. a tiled, compressed, band-interleaved GeoTIFF written block by block from ``read_window`` (BIGTIFF
+   when needed);
 2. internal overviews built on it with GDAL (average for continuous outputs, mode for class maps);
 3. a copy to GDAL's COG driver that reuses those overviews (``OVERVIEWS=FORCE_USE_EXISTING``).
 
@@ -181,7 +182,10 @@ def write_cog(
                 driver="GTiff", width=grid.cols, height=grid.rows, count=nb, dtype=dtype.name,
                 crs=grid.crs, transform=grid.transform, nodata=nodata, tiled=True, blockxsize=block,
                 blockysize=block, compress="DEFLATE", zlevel=1, predictor=predictor, bigtiff="IF_SAFER",
-                interleave="pixel",
+                # one band per block: overviews are built band by band, and with every band in one block
+                # (pixel interleaving) each band's pass decompressed every band's data again, hundreds of
+                # times over for a cube of hundreds of bands once a row of blocks outgrew GDAL's cache
+                interleave="band",
             )
             stats = _write_tiled(name, tmp_tif, profile, read_window, grid, spec, tags, block, colormap)
             if factors:
