@@ -390,8 +390,11 @@ def test_memory_does_not_scale_with_product_size(tmp_path):
     print(f"memory: {res}")
     # numpy/Python allocations: a few blocks, the same for both sizes
     assert big["py_peak_mb"] < 20 and big["py_peak_mb"] < 1.5 * small["py_peak_mb"] + 2
-    # resident memory (GDAL cache and buffers included): flat, far below the product size
-    assert big["rss_growth_mb"] < small["rss_growth_mb"] + 0.05 * big_product_mb
+    # resident memory (GDAL cache and buffers included): flat, far below the product size. GDAL's block
+    # cache (write_cog sets GDAL_CACHEMAX to 16 MB here) fills up on the large product only: the 15 MB
+    # product cannot fill it, so the two may differ by the cache's size, but not by the products' 229 MB
+    cache_mb = 16
+    assert big["rss_growth_mb"] < small["rss_growth_mb"] + cache_mb + 0.05 * big_product_mb
     assert big["rss_growth_mb"] < 0.25 * big_product_mb
 
 
