@@ -259,31 +259,35 @@ def test_reflown_line_replaces_the_old_one_everywhere(scene, tmp_path):
 
 
 # ---------------------------------------------------------------------------------------- kill -9
+def _kill_when(args: list[str], ready, poll: float, timeout: float = 120) -> None:
+    """Start this file as an invocation with ``args`` and SIGKILL it once ``ready()`` holds."""
+    proc = subprocess.Popen([sys.executable, __file__, *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + timeout
+    while not ready():
+        assert proc.poll() is None, f"the invocation ended before the kill: {proc.communicate()}"
+        assert time.monotonic() < deadline, "the invocation did not reach the kill point in time"
+        time.sleep(poll)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(30)
+    assert proc.returncode == -signal.SIGKILL
+
 
 
 def test_kill_during_an_incremental_invocation_then_rerun_equals_fresh(scene, tmp_path):
     run_dir = tmp_path / "killed"
     assert run_once(run_dir, [scene["centre"]]).ok
     lines = [scene["centre"], scene["southeast"], scene["northwest"]]
-    proc = subprocess.Popen([sys.executable, __file__, str(run_dir), *map(str, lines), "--sleep", "0.08"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
     db = run_dir / "ledger.sqlite"
-    while True:  # kill once a few tiles of the second invocation are recorded
+
+    def recorded() -> bool:  # kill once a few tiles of the second invocation are recorded
         con = sqlite3.connect(str(db), timeout=30)
         try:
-            n = con.execute("SELECT COUNT(*) FROM history WHERE invocation=(SELECT MAX(invocation) FROM "
-                            "invocations)").fetchone()[0]
+            return con.execute("SELECT COUNT(*) FROM history WHERE invocation=(SELECT MAX(invocation) FROM "
+                               "invocations)").fetchone()[0] >= 5
         finally:
             con.close()
-        if n >= 5:
-            break
-        assert proc.poll() is None, f"the invocation ended before the kill: {proc.communicate()}"
-        assert time.monotonic() < deadline, "the invocation did not reach the kill point in time"
-        time.sleep(0.05)
-    proc.send_signal(signal.SIGKILL)
-    proc.wait(30)
-    assert proc.returncode == -signal.SIGKILL
+
+    _kill_when([str(run_dir), *map(str, lines), "--sleep", "0.08"], recorded, 0.05)
     r = run_once(run_dir, lines)
     assert r.ok
     fresh = tmp_path / "fresh"
@@ -459,18 +463,9 @@ def test_kill_during_a_refit_invocation_then_rerun_equals_fresh(scene, tmp_path)
     lines = [scene["centre"], scene["southeast"], scene["northwest"]]
     accs = refit_model_dir(run_dir) / "accumulators" / "mnf"
     start = time.time_ns()
-    proc = subprocess.Popen([sys.executable, __file__, str(run_dir), *map(str, lines), "--sleep", "0.08",
-                             "--mode", "refit"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
-    while True:  # kill while the MNF fit keeps its accumulator results (after the mosaic's tiles)
-        if sum(p.stat().st_mtime_ns > start for p in accs.glob("*.json")) >= 3:
-            break
-        assert proc.poll() is None, f"the invocation ended before the kill: {proc.communicate()}"
-        assert time.monotonic() < deadline, "the invocation did not reach the kill point in time"
-        time.sleep(0.02)
-    proc.send_signal(signal.SIGKILL)
-    proc.wait(30)
-    assert proc.returncode == -signal.SIGKILL
+    # kill while the MNF fit keeps its accumulator results (after the mosaic's tiles)
+    _kill_when([str(run_dir), *map(str, lines), "--sleep", "0.08", "--mode", "refit"],
+               lambda: sum(p.stat().st_mtime_ns > start for p in accs.glob("*.json")) >= 3, 0.02)
     r = run_once(run_dir, lines, mode="refit")
     assert r.ok
     fresh = tmp_path / "fresh"
