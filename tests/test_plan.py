@@ -139,6 +139,10 @@ def test_run_refuses_when_the_disk_cannot_hold_it(tmp_path, capsys, monkeypatch)
     err = capsys.readouterr().err
     assert "needs about" in err and "1000 B free" in err, err
     assert not (tmp_path / "run" / "stores").exists()  # refused before writing anything
+    # the user may overrule the estimate (it errs on the safe side)
+    assert main(["run", str(cfg), "--plain", "--no-disk-check"]) == 0
+    capsys.readouterr()
+    assert (tmp_path / "run" / "stores" / "pca.zarr").is_dir()
 
 
 def test_probe_tiles_are_spread_and_distinct():

@@ -97,6 +97,9 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("--workers", type=int, help="number of Dask worker processes, instead of execution.workers")
     r.add_argument("--address", help="address of a running Dask scheduler to use (e.g. tcp://127.0.0.1:8786), "
                                      "instead of execution.address; implies --executor dask")
+    r.add_argument("--no-disk-check", action="store_true",
+                   help="run even when the plan's estimate of the disk space needed exceeds the free space (the "
+                        "estimate errs on the safe side; see `swathmill plan --probe` for measured sizes)")
     r.add_argument("--plain", action="store_true",
                    help="print progress as plain lines (for logs and batch jobs) instead of progress bars")
 
@@ -176,7 +179,7 @@ def _command(args: argparse.Namespace) -> int:
     try:
         if args.command == "run":
             return run_config(args.config, executor=args.executor, workers=args.workers, address=args.address,
-                              plain=args.plain)
+                              plain=args.plain, disk_check=not args.no_disk_check)
         if args.command == "plan":
             from swathmill.workflows.app.pipeline import plan_config
             return plan_config(args.config, as_json=args.json, probe=args.probe, save=args.save,
