@@ -322,14 +322,7 @@ def run_config(config_path: Path, *, executor: str | None = None, workers: int |
     side: no compression counted without a probe) exceeds the free space."""
     out = out or sys.stdout
     config_path = Path(config_path).resolve()
-    cfg, data = load_run_config(config_path)
-    cfg = _with_overrides(cfg, executor=executor, workers=workers, address=address)
-    base = config_path.parent
-    run_dir = run_dir_of(cfg, config_path)
-    try:
-        plan = build_plan(cfg, base)
-    except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-        raise InputError(str(exc)) from None
+    cfg, base, run_dir, plan = _planned(config_path, executor=executor, workers=workers, address=address)
     chash = config_hash(cfg.model_dump(mode="json", exclude={"execution"}))
     opts = _run_options(cfg, config_path, chash)
     est = estimate_run(cfg, base, plan, opts)
@@ -464,14 +457,7 @@ def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False
 
     out = out or sys.stdout
     config_path = Path(config_path).resolve()
-    cfg, _data = load_run_config(config_path)
-    cfg = _with_overrides(cfg, executor=executor, workers=workers)
-    base = config_path.parent
-    run_dir = run_dir_of(cfg, config_path)
-    try:
-        plan = build_plan(cfg, base)
-    except (StepError, FileNotFoundError, OSError, ValueError) as exc:
-        raise InputError(str(exc)) from None
+    cfg, base, run_dir, plan = _planned(config_path, executor=executor, workers=workers)
     opts = _run_options(cfg, config_path)
     probed = None
     if probe:
@@ -503,6 +489,18 @@ def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False
             print("sizes on disk assume no compression and no time is estimated; --probe runs a few tiles of each "
                   "step to measure both", file=out)
     return 0
+
+
+def _planned(config_path: Path, **overrides: Any) -> tuple[RunConfig, Path, Path, Plan]:
+    """The configuration (with the command line's execution overrides), its folder, its run directory
+    and its plan; a plan that cannot be built is an input error."""
+    cfg, _data = load_run_config(config_path)
+    cfg = _with_overrides(cfg, **overrides)
+    try:
+        plan = build_plan(cfg, config_path.parent)
+    except (StepError, FileNotFoundError, OSError, ValueError) as exc:
+        raise InputError(str(exc)) from None
+    return cfg, config_path.parent, run_dir_of(cfg, config_path), plan
 
 
 def _with_overrides(cfg: RunConfig, **overrides: Any) -> RunConfig:
