@@ -273,12 +273,9 @@ class Files:
     seed: int
 
     def mosaic_section(self, relative_to: Path | None = None) -> dict:
-        from swathmill.workflows.app.scenario import SUGGESTED_BAD_BANDS
+        from swathmill.workflows.app.scenario import mosaic_section
 
-        base = Path(relative_to or self.root).resolve()
-        return {"lines": [str(Path(p).resolve().relative_to(base)) for p in self.lines],
-                "bad_bands": [list(w) for w in SUGGESTED_BAD_BANDS], "overlap": "nearest_centre",
-                "brightness_matching": True, "seed": self.seed}
+        return mosaic_section(self.lines, self.seed, relative_to or self.root)
 
 
 def run_configuration(files: Files, run_dir: Path, name: str, workers: int, tile: int, export: bool) -> dict:

@@ -32,11 +32,11 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, Sequence
 
 import numpy as np
 
-__all__ = ["ScenarioFiles", "MATERIALS", "SIZES", "SITE_NAME", "material_spectra", "generate_scenario",
+__all__ = ["ScenarioFiles", "mosaic_section", "MATERIALS", "SIZES", "SITE_NAME", "material_spectra", "generate_scenario",
            "PADDOCK_PX", "CANOPY_RANGES", "line_geometries"]
 
 SITE_NAME = "Corrowan Playa"
@@ -81,10 +81,14 @@ class ScenarioFiles:
 
     def mosaic_section(self, relative_to: Path | None = None) -> dict[str, Any]:
         """A ``mosaic`` config section for these lines (paths relative to ``relative_to``, default root)."""
-        base = Path(relative_to) if relative_to is not None else self.root
-        rel = [_rel(p, base) for p in self.lines]
-        return {"lines": rel, "bad_bands": [list(w) for w in SUGGESTED_BAD_BANDS], "overlap": "nearest_centre",
-                "brightness_matching": True, "seed": int(self.facts["seed"])}
+        return mosaic_section(self.lines, int(self.facts["seed"]), relative_to if relative_to is not None else self.root)
+
+
+def mosaic_section(lines: Sequence[Path], seed: int, base: Path) -> dict[str, Any]:
+    """The ``mosaic`` config section of invented flight lines (paths relative to ``base`` where they lie
+    inside it): the suggested bad-band windows, nearest-centre overlap, brightness matching."""
+    return {"lines": [_rel(p, Path(base)) for p in lines], "bad_bands": [list(w) for w in SUGGESTED_BAD_BANDS],
+            "overlap": "nearest_centre", "brightness_matching": True, "seed": int(seed)}
 
 
 def _rel(p: Path, base: Path) -> str:
