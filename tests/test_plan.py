@@ -145,12 +145,84 @@ def test_run_refuses_when_the_disk_cannot_hold_it(tmp_path, capsys, monkeypatch)
     assert (tmp_path / "run" / "stores" / "pca.zarr").is_dir()
 
 
-def test_probe_tiles_are_spread_and_distinct():
+def test_probe_tiles_are_a_systematic_sample_of_the_grid():
     from swathmill.tiles.testing import default_grid
 
     g = default_grid(100, 130)
-    picks = probe_tiles(g, 16, 4)
-    assert len(set(picks)) == 4 and picks[0] == (3, 4)
     ni, nj = Tiling(g, 16).shape
-    assert all(0 <= i < ni and 0 <= j < nj for i, j in picks)
-    assert probe_tiles(default_grid(10, 10), 16, 3) == [(0, 0)]
+    assert (ni, nj) == (7, 9)
+    # the middle tile of each of 4 equal runs of the 63 tiles in row-major order, worked by hand:
+    # floor((k + 0.5) * 63 / 4) = 7, 23, 39, 55 -> (0, 7), (2, 5), (4, 3), (6, 1); the first and the last
+    # row of tiles (edges, often part nodata) are both probed
+    assert probe_tiles(g, 16, 4) == [(0, 7), (2, 5), (4, 3), (6, 1)]
+    assert probe_tiles(default_grid(10, 10), 16, 3) == [(0, 0)]  # one tile: probed once
+
+
+def _point_fit_steps(points: bool):
+    """A source of 4 x 4 tiles and a step whose fit must gather every one of its sample points (as a
+    calibration does), with the points spread over the whole grid."""
+    from swathmill.tiles.samples import gather, merge_gathered
+    from swathmill.tiles.step import Fit, OutputSpec, Step
+
+    rows = np.array([3, 20, 40, 60, 5, 50])
+    cols = np.array([60, 5, 33, 12, 2, 61])
+
+    def finalize(acc, params, meta):
+        got = 0 if acc is None else acc["idx"].size
+        if got != rows.size:
+            raise ValueError(f"gathered {got} of {rows.size} samples")
+        return {"mean": acc["X"].mean(axis=0)}
+
+    def kernel(block, model):
+        return {"d": (block.data["x"] - model["mean"][:, None, None]).astype("float32")}
+
+    fit = Fit(accumulate=lambda b: gather(b, "x", b.static["pts.r"], b.static["pts.c"]), merge=merge_gathered,
+              finalize=finalize, points=("pts.r", "pts.c") if points else None)
+    spec = OutputSpec(bands=("b0", "b1"), dtype="float32", nodata=float("nan"))
+    return Step(name="centred", kernel=kernel, outputs={"d": spec}, inputs={"x": "src/refl"}, fit=fit,
+                static={"pts.r": rows, "pts.c": cols}), spec
+
+
+@pytest.mark.parametrize("points", [True, False])
+def test_probe_fits_a_point_sample_fit_on_a_few_tiles(tmp_path, points):
+    from swathmill.tiles.plan import probe
+    from swathmill.tiles.store import StoreLayout
+    from swathmill.tiles.testing import default_grid, write_source_store
+
+    g = default_grid(64, 64)
+    step, spec = _point_fit_steps(points)
+    x = np.random.default_rng(0).normal(size=(2, 64, 64))
+    src = write_source_store(tmp_path / "src.zarr", {"refl": (x, spec)}, g, shard=16)
+    res = probe([step], tmp_path / "scratch", tile=16, layout=StoreLayout(16, 16), sources={"src": src},
+                n_tiles=2)["centred"]
+    assert not (tmp_path / "scratch").exists()
+    if points:
+        # the points are moved into the 2 probed tiles: the fit finishes and the kernel is timed
+        assert res.error is None and res.tile_seconds is not None and res.fit_seconds is not None
+        assert "moved into the probed tiles" in res.note
+        assert 0 <= res.read_seconds <= res.tile_seconds
+    else:
+        # without the declaration the fit cannot finish on 2 of 16 tiles: reported, not timed
+        assert res.tile_seconds is None and "gathered" in res.error
+
+
+def test_probe_on_the_runs_workers_times_the_same_steps(tmp_path):
+    """Given the run's executor, the probe runs each step's tiles on its workers; same outputs and sizes."""
+    from swathmill.tiles.executors import DaskExecutor
+    from swathmill.tiles.plan import probe
+    from swathmill.tiles.store import StoreLayout
+    from swathmill.tiles.testing import default_grid, write_source_store
+
+    g = default_grid(64, 64)
+    step, spec = _point_fit_steps(True)
+    x = np.random.default_rng(0).normal(size=(2, 64, 64))
+    src = write_source_store(tmp_path / "src.zarr", {"refl": (x, spec)}, g, shard=16)
+    kw = dict(tile=16, layout=StoreLayout(16, 16), sources={"src": src}, n_tiles=3)
+    alone = probe([step], tmp_path / "a", **kw)["centred"]
+    ex = DaskExecutor(n_workers=2, processes=False, retries=0)
+    try:
+        on = probe([step], tmp_path / "b", executor=ex, **kw)["centred"]
+    finally:
+        ex.close()
+    assert on.error is None and on.tile_seconds > 0 and on.fit_seconds > 0
+    assert on.ratio == alone.ratio and on.outputs == alone.outputs and on.tiles == alone.tiles == 3

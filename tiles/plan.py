@@ -6,8 +6,13 @@ that share a pass or ride on the pass making their input, as in a fresh run), by
 peak memory per worker and, given a probe, a time estimate. It reads no pixel.
 
 :func:`probe` runs the steps for real on a few tiles in a scratch folder (inside the run directory, removed
-afterwards): it times each kernel and fit on those tiles, measures the compressed size of what they
-wrote and the kernel's peak of allocated memory (``tracemalloc``, which numpy reports its arrays to).
+afterwards): it times each kernel and fit on those tiles (on the run's workers when given its executor,
+so the times include their contention), and the read of each tile's inputs alone (a fused pass reads
+once for all its members, a fit riding on a pass reads nothing), measures the compressed size of what
+they wrote and the kernel's peak of allocated memory (``tracemalloc``, which numpy reports its arrays
+to). The tiles are a systematic sample of the grid (:func:`probe_tiles`), edges included in about
+their share, so that the compression measured on them (nodata compresses to almost nothing) stands
+for the whole grid.
 
 Without a probe, sizes on disk assume :data:`DEFAULT_RATIO` (compressed / raw bytes; 1.0 means no
 compression is counted on, which errs on the side of refusing a run that would have fitted), products
@@ -16,6 +21,8 @@ number of components) are counted with as many bands as the step's input, marked
 """
 from __future__ import annotations
 
+import dataclasses
+import functools
 import shutil
 import statistics
 import time
@@ -30,7 +37,7 @@ from .fuse import fusion_groups, task_memory
 from .grid import Grid, Tiling
 from .step import InputMeta, OutputSpec, Step
 from .store import StoreLayout, TileStore, create_store
-from .tasks import TileTask, run_accumulate, run_tile, save_model, load_model
+from .tasks import TileTask, load_model, read_block, run_accumulate, run_tile, save_model
 
 __all__ = ["StepEstimate", "RunEstimate", "ProbeResult", "estimate", "probe", "probe_tiles", "DEFAULT_RATIO",
            "OVERVIEW_FACTOR", "format_bytes"]
@@ -45,11 +52,15 @@ class ProbeResult:
 
     tiles: int = 0
     tile_seconds: float | None = None  # median seconds of one tile task (read, kernel, write)
-    fit_seconds: float | None = None  # median seconds of one fit accumulation
+    read_seconds: float | None = None  # median seconds of reading one tile's inputs (shared in a fused pass)
+    fit_seconds: float | None = None  # median seconds of one fit accumulation (read and accumulate)
+    fit_read_seconds: float | None = None  # median seconds of reading one fit tile's inputs
+    finalize_seconds: float | None = None  # seconds of making the model from the merged accumulators
     ratio: float | None = None  # compressed bytes on disk / raw bytes written
     peak_bytes: int | None = None  # peak of memory allocated while one tile ran (tracemalloc)
     outputs: dict[str, OutputSpec] | None = None
     error: str | None = None
+    note: str | None = None
 
 
 @dataclass
@@ -303,10 +314,19 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
             mem, msrc = task_memory(pad, ins, outputs.values(), core=(min(tile, g.rows), min(tile, g.cols)),
                                     decode=step.decode), "declared"
         secs = None
-        if pr is not None and pr.error:
-            note = f"{note}; {pr.error}" if note else pr.error
+        for extra in (pr.error, pr.note) if pr is not None else ():
+            if extra:
+                note = f"{note}; {extra}" if note else extra
         if pr is not None and pr.tile_seconds is not None:
-            secs = n * pr.tile_seconds + fit_tiles * (pr.fit_seconds or 0.0)
+            # the probe reads each step's input itself; in a fused pass only the first member reads it, and
+            # a fit that rides on the pass making its input (or shares a fit pass) reads nothing of its own
+            tile_s, fit_s = pr.tile_seconds, pr.fit_seconds or 0.0
+            if fuse and step.reader is None and not first_of_group:
+                tile_s = max(0.0, tile_s - (pr.read_seconds or 0.0))
+            if step.fit is not None and fuse and (rides or not first_fit):
+                fit_s = max(0.0, fit_s - (pr.fit_read_seconds or 0.0))
+            # the model is made on the client while the workers wait: slots x its seconds of worker time
+            secs = n * tile_s + fit_tiles * fit_s + (pr.finalize_seconds or 0.0) * max(1, workers * threads)
         out.append(StepEstimate(step.name, n, fit_tiles, n + fit_tiles, reads, int(read), int(written), disk, prod,
                                 int(mem), msrc, ratio, rsrc, guessed, secs, group_of[step.name], note))
         known[step.name] = (g, outputs)
@@ -315,20 +335,17 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
 
 
 def probe_tiles(grid: Grid, tile: int, n: int) -> list[tuple[int, int]]:
-    """``n`` tile indices spread over the grid, the central one first."""
+    """``n`` tile indices spread over the grid: a systematic sample of the tiles in row-major order (the
+    middle tile of each of ``n`` equal runs), so that edge tiles (often part nodata) are probed in about
+    the share the grid holds them and the compression measured on them stands for the whole grid."""
     tiling = Tiling(grid, tile)
     ni, nj = tiling.shape
-    picks = [(ni // 2, nj // 2)]
-    k = 1
-    while len(picks) < min(n, ni * nj):
-        f = k / (n + 1)
-        cand = (min(ni - 1, int(ni * f)), min(nj - 1, int(nj * (1 - f))))
-        k += 1
-        if cand not in picks:
-            picks.append(cand)
-        if k > 4 * n + 4:
-            cand = next(t.index for t in tiling if t.index not in picks)
-            picks.append(cand)
+    total = ni * nj
+    n = max(1, min(n, total))
+    picks = []
+    for k in range(n):
+        flat = min(total - 1, int((k + 0.5) * total / n))
+        picks.append((flat // nj, flat % nj))
     return picks
 
 
@@ -336,11 +353,89 @@ def _dir_bytes(path: Path) -> int:
     return sum(p.stat().st_size for p in path.rglob("*") if p.is_file() and p.name != "zarr.json")
 
 
+def _moved_points(step: Step, store: TileStore, tasks: Sequence[TileTask]) -> Step:
+    """``step`` with its fit's sample points moved onto valid pixels of the probed tiles' cores (spread
+    evenly over them, in order), so that a fit which needs every sample finishes on those tiles."""
+    rk, ck = step.fit.points
+    rows, cols = np.asarray(step.static[rk]), np.asarray(step.static[ck])
+    if rows.size == 0:
+        return step
+    held = np.zeros(rows.size, dtype=bool)
+    for t in tasks:
+        held |= t.tile.core.contains(rows, cols)
+    if held.all():
+        return step
+    vr, vc = [], []
+    for t in tasks:
+        core = t.tile.core
+        rr, cc = np.nonzero(store.read_valid(core))
+        vr.append(rr + core.row)
+        vc.append(cc + core.col)
+    vr, vc = np.concatenate(vr), np.concatenate(vc)
+    if vr.size == 0:
+        raise LookupError("the probed tiles hold no valid pixel to gather the fit's samples on")
+    at = np.linspace(0, vr.size - 1, rows.size).round().astype(np.intp)
+    static = {**step.static, rk: vr[at].astype(rows.dtype), ck: vc[at].astype(cols.dtype)}
+    return dataclasses.replace(step, static=static)
+
+
+def _timed_tile(task: TileTask) -> tuple[float, float]:
+    """Seconds of one tile task (read, kernel, write), then of reading its inputs alone."""
+    t0 = time.perf_counter()
+    run_tile(task)
+    t1 = time.perf_counter()
+    read_block(task)
+    return t1 - t0, time.perf_counter() - t1
+
+
+def _timed_fit(task: TileTask) -> tuple[Any, float, float]:
+    """The accumulator of one fit tile and its seconds (read and accumulate), then of reading alone."""
+    t0 = time.perf_counter()
+    acc = run_accumulate(task)
+    t1 = time.perf_counter()
+    read_block(task)
+    return acc, t1 - t0, time.perf_counter() - t1
+
+
+def _import_modules(names: Sequence[str], _item: Any = None) -> None:
+    """Import the steps' modules on a worker before anything is timed there."""
+    import importlib
+
+    for n in names:
+        importlib.import_module(n)
+
+
+def _run_all(executor: Any, fn, items: Sequence) -> list:
+    """``fn`` over ``items`` on the executor (all at once, as a run's pass); results in the items' order."""
+    if executor is None:
+        return [fn(it) for it in items]
+    got: dict[int, Any] = {}
+    failed: list[BaseException] = []
+    keyed = list(enumerate(items))
+    executor.map(functools.partial(_keyed, fn), keyed, lambda item, res: got.__setitem__(item[0], res),
+                 lambda item, exc, tb: failed.append(exc))
+    if failed:
+        raise failed[0]
+    return [got[k] for k, _ in keyed]
+
+
+def _keyed(fn, item: tuple[int, Any]) -> Any:
+    return fn(item[1])
+
+
 def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayout,
-          sources: Mapping[str, Path] | None = None, n_tiles: int = 2) -> dict[str, ProbeResult]:
+          sources: Mapping[str, Path] | None = None, n_tiles: int = 4,
+          executor: Any = None) -> dict[str, ProbeResult]:
     """Run every step on ``n_tiles`` tiles in ``scratch`` (removed afterwards); see the module docstring.
 
-    A step whose fit cannot finish on so few tiles (or whose input was not probed) is reported with
+    ``executor``: the run's executor (e.g. its local Dask cluster): each step's probed tiles and fit
+    tiles run on its workers at once, as in a run, so the times include the workers' contention for
+    the cores and memory; without it they run one after another in this process.
+
+    Fits run on the same tiles (none when the fit's selection is empty, e.g. a library reference); a fit
+    that gathers sample points (``Fit.points``) has its points moved onto the probed tiles, which gives
+    a model of the run's shape (classes, bands) but not its values: it times the kernel and is never
+    kept. A step whose fit still cannot finish (or whose input was not probed) is reported with
     ``error`` and without times; the steps that read it are skipped the same way.
     """
     scratch = Path(scratch)
@@ -351,12 +446,16 @@ def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayou
     known: dict[str, TileStore] = {k: TileStore(Path(p)) for k, p in (sources or {}).items()}
     results: dict[str, ProbeResult] = {}
     picks: list[tuple[int, int]] | None = None
+    if executor is not None:  # imports on the workers before anything is timed there
+        mods = sorted({getattr(getattr(f, "func", f), "__module__", None) or "numpy"
+                       for st in steps for f in (st.kernel, st.reader) if f is not None})
+        _run_all(executor, functools.partial(_import_modules, mods), list(range(4 * max(1, n_tiles))))
     try:
         for step in steps:
             res = ProbeResult()
             results[step.name] = res
             try:
-                inputs, meta, g = {}, {}, step.grid
+                inputs, meta, g, first = {}, {}, step.grid, None
                 for alias, ref in step.inputs.items():
                     src, output = ref.split("/")
                     if src not in known:
@@ -365,22 +464,33 @@ def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayou
                     inputs[alias] = (str(st.path), output)
                     meta[alias] = InputMeta(ref, st.grid, st.specs[output])
                     g = st.grid
+                    first = first or st
                 if picks is None:
                     picks = probe_tiles(g, tile, n_tiles)
                 model_path = None
                 if step.fit is not None:
-                    ftasks = [TileTask(step, ix, g, tile, step.fit.halo, inputs) for ix in picks]
-                    accs, secs = [], []
-                    for t in ftasks:
-                        t0 = time.perf_counter()
-                        accs.append(run_accumulate(t))
-                        secs.append(time.perf_counter() - t0)
-                    acc = accs[0]
-                    for a in accs[1:]:
-                        acc = step.fit.merge(acc, a)
-                    res.fit_seconds = statistics.median(secs)
+                    fstep = step
+                    selected = list(_tiling(g, tile, step.fit.halo))
+                    if step.fit.select is not None:
+                        selected = list(step.fit.select(selected, step.params))
+                    ftasks = [TileTask(step, ix, g, tile, step.fit.halo, inputs) for ix in picks] if selected else []
+                    if ftasks and step.fit.points is not None and first is not None:
+                        fstep = _moved_points(step, first, ftasks)
+                        if fstep is not step:
+                            res.note = ("model fitted on the sample points moved into the probed tiles (the run's "
+                                        "shape, not its values)")
+                            ftasks = [TileTask(fstep, ix, g, tile, step.fit.halo, inputs) for ix in picks]
+                    timed = _run_all(executor, _timed_fit, ftasks)
+                    acc = None
+                    for a, _s, _r in timed:
+                        acc = a if acc is None else step.fit.merge(acc, a)
+                    res.fit_seconds = statistics.median([t[1] for t in timed]) if timed else 0.0
+                    res.fit_read_seconds = statistics.median([t[2] for t in timed]) if timed else 0.0
                     base = scratch / "models" / step.name
-                    save_model(step.fit.finalize(acc, step.params, meta), base)
+                    t0 = time.perf_counter()
+                    model = step.fit.finalize(acc, step.params, meta)
+                    res.finalize_seconds = time.perf_counter() - t0
+                    save_model(model, base)
                     model_path = str(base)
                 outputs = step.resolve_outputs(meta, load_model(model_path))
                 res.outputs = outputs
@@ -389,12 +499,9 @@ def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayou
                 empty = _dir_bytes(spath)
                 tasks = [TileTask(step, ix, g, tile, step.halo, inputs, str(spath), outputs, model_path)
                          for ix in picks]
-                secs = []
-                for t in tasks:
-                    t0 = time.perf_counter()
-                    run_tile(t)
-                    secs.append(time.perf_counter() - t0)
-                res.tile_seconds = statistics.median(secs)
+                timed = _run_all(executor, _timed_tile, tasks)
+                res.tile_seconds = statistics.median([t[0] for t in timed])
+                res.read_seconds = min(statistics.median([t[1] for t in timed]), res.tile_seconds)
                 res.tiles = len(tasks)
                 raw = sum(t.tile.core.rows * t.tile.core.cols for t in tasks) * (_spec_bytes(outputs) + 1)
                 res.ratio = max(_dir_bytes(spath) - empty, 0) / raw if raw else None

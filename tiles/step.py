@@ -137,6 +137,9 @@ class Fit:
     finalize(acc, params, meta) -> Model   on the client; a dict of arrays and JSON-able values
     select(tiles, params) -> tiles  optional: the subset of tiles to fit on (e.g. a seeded sample)
     halo: the halo the accumulator needs (e.g. 1 for neighbour differences)
+    points: optional (rows key, cols key) of the step's ``static``: the fit gathers its input at these
+            global pixels (sample points). The planner's probe uses it to fit on a few tiles: it moves
+            the points onto valid pixels of the probed tiles, for a model of the run's shape.
     """
 
     accumulate: Callable[[Block], Any]
@@ -144,6 +147,7 @@ class Fit:
     finalize: Callable[[Any, Mapping[str, Any], dict[str, InputMeta]], Model]
     select: Callable[[list[Tile], Mapping[str, Any]], list[Tile]] | None = None
     halo: int = 0
+    points: tuple[str, str] | None = None
 
 
 @dataclass(frozen=True)

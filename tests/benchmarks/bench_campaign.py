@@ -543,7 +543,9 @@ def main(argv: list[str] | None = None) -> int:
         plan = plan_probe(big_cfg)
         res["plan"] = {"seconds": plan["run"]["seconds"], "disk": plan["run"]["disk"],
                        "memory_per_worker": plan["run"].get("memory_per_worker"),
-                       "seconds_partial": plan["run"].get("seconds_partial"), "probe_wall_s": plan["probe_wall_s"]}
+                       "seconds_partial": plan["run"].get("seconds_partial"), "probe_wall_s": plan["probe_wall_s"],
+                       "steps": [{k: st.get(k) for k in ("step", "seconds", "disk", "products", "ratio", "note")}
+                                 for st in plan["steps"]]}
         say("plan", f"estimate: {plan['run']['seconds']} s of tile and fit tasks, {c.gb(plan['run']['disk'])} on disk "
                     f"(probe took {plan['probe_wall_s']:.1f} s)")
         say(f"run {lay.lines} lines", "started")

@@ -111,8 +111,12 @@ def _parser() -> argparse.ArgumentParser:
     pl.add_argument("config", type=Path, help="the run's YAML configuration file")
     pl.add_argument("--json", action="store_true", help="print the plan as JSON instead of a table")
     pl.add_argument("--probe", action="store_true",
-                    help="run two tiles of each step in a scratch folder inside the run directory (removed "
-                         "afterwards) to time them and measure compression and memory")
+                    help="run a few tiles of each step (--probe-tiles, spread over the grid) in a scratch folder "
+                         "inside the run directory (removed afterwards) to time them and measure compression "
+                         "and memory")
+    pl.add_argument("--probe-tiles", type=_at_least_one, default=4, metavar="N",
+                    help="tiles the probe runs of each step (default 4): more tiles, a slower probe and a "
+                         "closer estimate")
     pl.add_argument("--save", action="store_true",
                     help="keep the estimate in the run directory (estimate-plan.json): the report of the run "
                          "shows it beside the measured times and sizes")
@@ -146,6 +150,16 @@ def _parser() -> argparse.ArgumentParser:
                                     "run directory.")
     rp.add_argument("run_dir", type=Path, help="the run directory (the configuration's run_dir)")
     return p
+
+
+def _at_least_one(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number. Got {text!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1. Got {n}")
+    return n
 
 
 def _not_a_run(run_dir: Path) -> str | None:
@@ -183,6 +197,7 @@ def _command(args: argparse.Namespace) -> int:
         if args.command == "plan":
             from swathmill.workflows.app.pipeline import plan_config
             return plan_config(args.config, as_json=args.json, probe=args.probe, save=args.save,
+                               probe_tiles=args.probe_tiles,
                                executor=args.executor, workers=args.workers)
         if args.command == "status":
             return _status(args.run_dir, args.json)

@@ -6,6 +6,7 @@ them in order and runs them in the run directory the configuration names.
 from __future__ import annotations
 
 import json
+import shutil
 import sys
 import time
 from pathlib import Path
@@ -448,7 +449,7 @@ def _save_estimate(path: Path, est, probed: bool = False) -> None:
     path.write_text(json.dumps(d, indent=1, default=str))
 
 
-def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False, probe_tiles: int = 2,
+def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False, probe_tiles: int = 4,
                 save: bool = False, executor: str | None = None, workers: int | None = None, out=None) -> int:
     """``swathmill plan``: the estimate of a run, without running it (``probe``: time a few tiles of each
     step in a scratch folder inside the run directory, removed afterwards; ``save``: keep the estimate as
@@ -463,11 +464,20 @@ def plan_config(config_path: Path, *, as_json: bool = False, probe: bool = False
     if probe:
         scratch = run_dir / f"plan-probe-{time.time_ns()}"
         made = [d for d in (run_dir, *run_dir.parents) if not d.exists()]  # folders the probe creates
+        ex = None
         try:
-            probed = run_probe(plan.steps, scratch, tile=opts.tile, layout=opts.layout(), n_tiles=probe_tiles)
+            # on the run's own Dask workers (a local cluster or a given scheduler), so that the times include
+            # their contention for the machine; a batch-queue cluster is not started for a plan
+            if cfg.execution.executor == "dask":
+                ex = _executor(cfg.execution, scratch.with_name(scratch.name + "-workers"))
+            probed = run_probe(plan.steps, scratch, tile=opts.tile, layout=opts.layout(), n_tiles=probe_tiles,
+                               executor=ex)
         except (StepError, ValueError) as exc:
             raise InputError(str(exc)) from None
         finally:
+            if ex is not None:
+                ex.close()
+            shutil.rmtree(scratch.with_name(scratch.name + "-workers"), ignore_errors=True)
             for d in made:  # deepest first: leave no empty folder behind
                 if d.is_dir() and not any(d.iterdir()):
                     d.rmdir()

@@ -738,6 +738,7 @@ def band_selection_step(cfg: BandSelectionConfig, samples: SampleTable | None = 
                                      "separability needs at least 2")
         fit = Fit(accumulate=_accumulate_labelled, merge=merge_gathered,
                   select=functools.partial(select_tiles_holding, rows=table.row, cols=table.col),
+                  points=("samples.row", "samples.col"),
                   finalize=functools.partial(_finalize, table=table))
         static = table.to_static()
     else:

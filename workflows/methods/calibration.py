@@ -746,6 +746,7 @@ def build_steps(section: CalibrationConfig | Mapping[str, Any], samples: Calibra
     if cfg.cv.grouped and samples.groups is None:
         raise CalibrationError(f"calibration {cfg.name!r}: cv.grouped is set but the samples carry no groups")
     static = samples.to_static()
-    fit = Fit(accumulate=_accumulate, merge=_merge, finalize=partial(_finalize, static=static))
+    fit = Fit(accumulate=_accumulate, merge=_merge, finalize=partial(_finalize, static=static),
+              points=("sample_rows", "sample_cols"))
     return [Step(name=cfg.name, kernel=calibration_kernel, outputs=_outputs, inputs={_ALIAS: cfg.input},
                  params=cfg, fit=fit, static=static)]

@@ -99,6 +99,7 @@ class ReferenceSet:
         assert self.table is not None
         return Fit(accumulate=accumulate, merge=merge_gathered,
                    select=functools.partial(select_tiles_holding, rows=self.table.row, cols=self.table.col),
+                   points=("samples.row", "samples.col"),
                    finalize=functools.partial(finalize, library=None, table=self.table))
 
 

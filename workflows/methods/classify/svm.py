@@ -325,6 +325,7 @@ def svm_step(name: str, input_ref: str, *, samples: SampleTable, colors: Sequenc
     compare = compare_inputs(name, input_ref, cfg)
     fit = Fit(accumulate=accumulate_compare if compare else accumulate_samples, merge=merge_gathered,
               select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
+              points=("samples.row", "samples.col"),
               finalize=functools.partial(_finalize_svm, table=samples))
     return Step(name=name, kernel=_svm_kernel, outputs=_svm_outputs, inputs={"x": input_ref, **compare},
                 params=params, fit=fit, static=samples.to_static(), version="2")

@@ -448,6 +448,7 @@ def unmix_step(name: str, input_ref: str, *, settings: UnmixSettings | None = No
         static.update(samples.to_static())
         fit = Fit(accumulate=_accumulate_samples, merge=merge_gathered,
                   select=functools.partial(select_tiles_holding, rows=samples.row, cols=samples.col),
+                  points=("samples.row", "samples.col"),
                   finalize=functools.partial(_finalize, table=samples))
     elif source == "image":
         assert image is not None
