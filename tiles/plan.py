@@ -473,13 +473,18 @@ def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayou
                     selected = list(_tiling(g, tile, step.fit.halo))
                     if step.fit.select is not None:
                         selected = list(step.fit.select(selected, step.params))
-                    ftasks = [TileTask(step, ix, g, tile, step.fit.halo, inputs) for ix in picks] if selected else []
+                    # the probed tiles (the only ones holding the inputs made in the scratch folder); a step
+                    # that reads outside files fits on a spread of its own selection (e.g. the overlaps)
+                    fpicks = picks if step.reader is None else [
+                        selected[min(len(selected) - 1, int((k + 0.5) * len(selected) / len(picks)))].index
+                        for k in range(min(len(picks), len(selected)))]
+                    ftasks = [TileTask(step, ix, g, tile, step.fit.halo, inputs) for ix in fpicks] if selected else []
                     if ftasks and step.fit.points is not None and first is not None:
                         fstep = _moved_points(step, first, ftasks)
                         if fstep is not step:
                             res.note = ("model fitted on the sample points moved into the probed tiles (the run's "
                                         "shape, not its values)")
-                            ftasks = [TileTask(fstep, ix, g, tile, step.fit.halo, inputs) for ix in picks]
+                            ftasks = [TileTask(fstep, ix, g, tile, step.fit.halo, inputs) for ix in fpicks]
                     timed = _run_all(executor, _timed_fit, ftasks)
                     acc = None
                     for a, _s, _r in timed:
