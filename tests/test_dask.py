@@ -188,3 +188,79 @@ def test_local_cluster_workers_get_the_allocator_settings(dask_executor) -> None
     seen = dask_executor.client.run(lambda: {k: os.environ.get(k) for k in WORKER_MALLOC_ENV})
     assert len(seen) == 2
     assert all(env == WORKER_MALLOC_ENV for env in seen.values()), seen
+
+
+def _slow_square(x: int) -> int:
+    time.sleep(0.3 if x == 0 else 0.0)
+    if x == 3:
+        raise ValueError("three is refused")
+    return x * x
+
+
+def test_background_tasks_are_collected_as_they_land(dask_executor: DaskExecutor) -> None:
+    bg = dask_executor.submit(_slow_square, [0, 1, 2, 3])
+    assert bg.pending == 4  # submit returns at once
+    done, failed = [], []
+    bg.collect(lambda item, res: done.append((item, res)), lambda item, exc, tb: failed.append((item, str(exc))),
+               wait=True)
+    assert bg.pending == 0
+    assert done == [(0, 0), (1, 1), (2, 4)] and failed == [(3, "three is refused")]
+
+
+def test_products_on_dask_are_written_while_the_run_goes_on_and_match_the_local_run(tmp_path: Path,
+                                                                                     dask_executor) -> None:
+    """On Dask the products are written in the background; when the run returns every one has landed,
+    is recorded in the ledger with its export time, and is the same raster as the local run's."""
+    import rasterio
+
+    from swathmill.tiles.ledger import Ledger
+
+    local = es.run_pipeline(tmp_path / "local", LocalExecutor())
+    dask = es.run_pipeline(tmp_path / "dask", dask_executor)
+    assert local.ok and dask.ok
+    for a, b in zip(local.steps, dask.steps):
+        assert sorted(Path(p).name for p in a.products) == sorted(Path(p).name for p in b.products) != []
+        for pa in a.products:
+            pb = tmp_path / "dask" / "products" / Path(pa).name
+            with rasterio.open(pa) as ra, rasterio.open(pb) as rb:
+                assert ra.read().tobytes() == rb.read().tobytes()
+    led = Ledger(tmp_path / "dask" / "ledger.sqlite")
+    try:
+        for s in dask.steps:
+            for p in s.products:
+                name = Path(p).stem.split("__", 1)[1]
+                assert led.product(s.name, name)[0] == s.key
+        phases = {(n, ph) for n, ph, _s in led.db.execute("SELECT name, phase, seconds FROM timings")}
+    finally:
+        led.close()
+    assert {(s.name, "export") for s in dask.steps} <= phases
+    assert not list((tmp_path / "dask" / "products").glob(".*part*"))  # no partial file left
+
+
+def test_a_failed_background_export_fails_the_run_and_keeps_the_other_products(tmp_path: Path,
+                                                                                monkeypatch) -> None:
+    import swathmill.tiles.run as run_mod
+
+    real = run_mod.export_product
+
+    def export(task):
+        if task.label.startswith("centred"):
+            raise OSError("disk full (simulated)")
+        return real(task)
+
+    monkeypatch.setattr(run_mod, "export_product", export)
+    ex = DaskExecutor(n_workers=1, threads_per_worker=2, processes=False, retries=0)
+    try:
+        with pytest.raises(RuntimeError, match=r"step 'centred', product centred__output.tif: disk full"):
+            es.run_pipeline(tmp_path / "run", ex)
+    finally:
+        ex.close()
+    from swathmill.tiles.ledger import Ledger
+
+    led = Ledger(tmp_path / "run" / "ledger.sqlite")
+    try:
+        assert led.product("centred", "output") is None
+        assert led.product("scaled", "output") is not None  # the step before it kept its product
+    finally:
+        led.close()
+    assert (tmp_path / "run" / "products" / "scaled__output.tif").is_file()

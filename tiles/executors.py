@@ -39,6 +39,37 @@ class Executor(Protocol):
 
     def close(self) -> None: ...
 
+    # optional: executors that can run tasks in the background while the caller goes on have
+    # ``submit(fn, items) -> Background`` (see DaskExecutor.submit); the others run them in ``map``.
+
+
+class Background:
+    """Tasks submitted to run while the caller goes on (``DaskExecutor.submit``)."""
+
+    def __init__(self, futures: list[tuple[Any, Any]]):
+        self._futures = list(futures)  # (item, future)
+
+    @property
+    def pending(self) -> int:
+        return len(self._futures)
+
+    def collect(self, on_done: Callable[[Any, Any], None], on_error: Callable[[Any, BaseException, str], None],
+                wait: bool = False) -> None:
+        """Report the finished tasks (all of them, waiting for each, with ``wait``), in submission order."""
+        left = []
+        for item, fut in self._futures:
+            if not wait and not fut.done():
+                left.append((item, fut))
+                continue
+            try:
+                res = fut.result()
+            except Exception as exc:  # noqa: BLE001 - reported per item
+                on_error(item, exc, "".join(traceback.format_exception(exc)))
+            else:
+                on_done(item, res)
+            fut.release()
+        self._futures = left
+
 
 def merge_tree(values: list, merge: Callable) -> Any:
     """Merge ``values`` pairwise in a fixed tree: (0,1), (2,3), ... then the pairs' results, and so on.
@@ -171,6 +202,15 @@ class DaskExecutor:
                 on_done(item, res)
             fut.release()
             submit_next()
+
+    def submit(self, fn, items) -> Background:
+        """Start ``fn`` on every item on the workers and return at once; the caller collects the
+        results later (:meth:`Background.collect`). Long tasks that nothing later in a run reads (the
+        export of products) then share the workers with the tiles of the next steps."""
+        items = list(items)
+        return Background([(item, self.client.submit(fn, item, pure=False, retries=self.retries,
+                                                      key=f"{getattr(item, 'label', 'task')}-{os.urandom(4).hex()}"))
+                           for item in items])
 
     def reduce(self, fn, items, merge):
         """Accumulate on the workers, then merge in the same fixed pairwise tree as :func:`merge_tree`.

@@ -513,10 +513,8 @@ def run_step_incremental(run: "Run", step: Step, executor: "Executor", layout, k
         known[step.name] = (run.store_path(step.name), stable, store)
         _incr_keys(run)[step.name] = {(origin[0] + i, origin[1] + j): k for (i, j), k in tkeys.items()}
     if report.complete and run.options.export:
-        t0 = time.perf_counter()
         product_key = _sha("products", stable, sorted((list(k), v) for k, v in tkeys.items()))
         report.products = run._export(step, product_key, store, outputs, sp.in_keys, fitted.hash, executor, result)
-        run.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
     report.seconds = time.perf_counter() - t_step
     return report
 

@@ -160,6 +160,7 @@ class Run:
         self.invocation = time.strftime("%Y%m%dT%H%M%S") + f"-{time.time_ns() % 10**6:06d}"
         self.known: dict[str, tuple[Path, str, TileStore]] = {}  # finished steps: (store path, key, store)
         self._upcoming: list[Step] = []  # steps of later groups of the current execute() (fits may ride ahead)
+        self._exports: list[tuple] = []  # products being written in the background (see _export)
         self._prefit: dict[str, tuple[str, str]] = {}  # step -> (model base, how it was fitted ahead of its turn)
 
     # paths -----------------------------------------------------------------------------------------
@@ -222,9 +223,27 @@ class Run:
             raise PlanError(f"step names must be unique; repeated: {sorted(dup)}")
         incremental = self.options.incremental
         if incremental:  # per-tile keys step by step (fused passes are not combined with it yet)
-            from .incremental import run_step_incremental, start_invocation
+            from .incremental import start_invocation
             start_invocation(self)
         groups = fusion_groups(steps) if self.options.fuse and not incremental else [[s] for s in steps]
+        try:
+            self._execute_groups(groups, names, executor, layout, known, result, incremental)
+        except Exception:
+            try:  # the products already being written are kept (and recorded) before the error goes up
+                self._collect_exports(wait=True)
+            except Exception as exc:  # noqa: BLE001 - the first error is the one raised
+                log.error("while stopping after an error: %s", exc)
+            raise
+        self._collect_exports(wait=True)
+        if self.options.incremental:
+            from .incremental import fit_notes
+            self.ledger.finish_invocation({"complete": result.ok, "fits": fit_notes(self)})
+        return result
+
+    def _execute_groups(self, groups: list[list[Step]], names: list[str], executor: Executor,
+                        layout: StoreLayout, known, result: RunResult, incremental: str | None) -> None:
+        if incremental:
+            from .incremental import run_step_incremental
         started: set[str] = set()
         for gi, group in enumerate(groups):
             self._upcoming = [s for g in groups[gi + 1:] for s in g]
@@ -237,6 +256,7 @@ class Run:
                 reports = self._run_group(group, executor, layout, known, result)
             result.steps.extend(reports)
             started.update(s.name for s in group)
+            self._collect_exports(wait=False)
             bad = next((r for r in reports if not r.complete), None)
             if bad is not None:
                 result.stopped_at = bad.name
@@ -244,10 +264,6 @@ class Run:
                 if later:
                     self._say(result, f"step {bad.name!r} did not finish; not started: {', '.join(later)}")
                 break
-        if self.options.incremental:
-            from .incremental import fit_notes
-            self.ledger.finish_invocation({"complete": result.ok, "fits": fit_notes(self)})
-        return result
 
     def _inputs(self, step: Step, known) -> tuple[dict[str, tuple[str, str]], dict[str, InputMeta], Grid, dict]:
         inputs, meta, keys, grid = {}, {}, {}, None
@@ -281,9 +297,7 @@ class Run:
         if report.complete:
             known[step.name] = (self.store_path(step.name), key, store)
         if report.complete and self.options.export:
-            t0 = time.perf_counter()
             report.products = self._export(step, key, store, outputs, sp.in_keys, fitted.hash, executor, result)
-            self.ledger.add_timing(step.name, "export", time.perf_counter() - t0)
         report.seconds = time.perf_counter() - t_step
         return report
 
@@ -446,10 +460,8 @@ class Run:
             if m.report.complete:
                 known[m.step.name] = (self.store_path(m.step.name), m.key, m.store)
             if m.report.complete and self.options.export:
-                t0 = time.perf_counter()
                 m.report.products = self._export(m.step, m.key, m.store, m.outputs, m.sp.in_keys, m.fitted.hash,
                                                  executor, result)
-                self.ledger.add_timing(m.step.name, "export", time.perf_counter() - t0)
             m.report.seconds += prep_s / len(preps)
             reports.append(m.report)
         return reports
@@ -642,6 +654,11 @@ class Run:
 
     def _export(self, step: Step, key: str, store: TileStore, outputs: dict[str, OutputSpec], in_keys: dict,
                 model_hash: str | None, executor: Executor, result: RunResult) -> list[str]:
+        """Write the step's products (those missing or made from another key). On an executor that can
+        run tasks in the background (Dask) they are started and the run goes on with the next steps while
+        they are written (nothing later in a run reads a product); each is recorded in the ledger as it
+        lands, and :meth:`_collect_exports` waits for the last ones before the run returns. The returned
+        list fills as they land. The ledger's "export" time is the seconds spent writing them."""
         todo, made = [], []
         prov = self.provenance(step, key, in_keys, model_hash)
         for name, spec in outputs.items():
@@ -654,21 +671,54 @@ class Run:
                 continue
             todo.append(ExportTask(str(store.path), name, str(path), prov, f"{step.name}-{name}"))
         errors: list[str] = []
+        spent, left = [0.0], [len(todo)]
 
-        def on_done(task: "ExportTask", _res) -> None:
-            self.ledger.set_product(step.name, key, task.output, task.path)
-            made.append(task.path)
+        def landed() -> None:
+            left[0] -= 1
+            if left[0] == 0 and spent[0]:
+                self.ledger.add_timing(step.name, "export", spent[0])
+
+        def on_done(task: "ExportTask", res) -> None:
+            path, seconds = res
+            self.ledger.set_product(step.name, key, task.output, path)
+            made.append(path)
+            spent[0] += seconds
+            landed()
 
         def on_error(task: "ExportTask", exc, tb) -> None:
-            errors.append(f"product {Path(task.path).name}: {exc}")
+            errors.append(f"step {step.name!r}, product {Path(task.path).name}: {exc}")
             log.error("%s\n%s", exc, tb)
+            landed()
 
-        executor.map(export_product, todo, on_done, on_error)
+        if not todo:
+            return made
+        submit = getattr(executor, "submit", None)
+        if submit is not None:
+            self._exports.append((submit(timed_export, todo), on_done, on_error, errors, result))
+            return made
+        executor.map(timed_export, todo, on_done, on_error)
+        self._raise_export_errors(errors, result)
+        return made
+
+    def _raise_export_errors(self, errors: list[str], result: RunResult) -> None:
         for e in errors:
             self._say(result, e)
         if errors:
             raise RuntimeError("; ".join(errors))
-        return made
+
+    def _collect_exports(self, wait: bool) -> None:
+        """Record the background exports that have landed (every one, waiting, with ``wait``); raise on
+        the first step whose products failed, once every export has been waited for."""
+        keep, failed = [], []
+        for bg, on_done, on_error, errors, result in self._exports:
+            bg.collect(on_done, on_error, wait=wait)
+            if bg.pending:
+                keep.append((bg, on_done, on_error, errors, result))
+            elif errors:
+                failed.append((errors, result))
+        self._exports = keep
+        for errors, result in failed:
+            self._raise_export_errors(errors, result)
 
 
 @dataclass
@@ -692,6 +742,13 @@ class ExportTask:
     path: str
     provenance: dict
     label: str
+
+
+def timed_export(task: ExportTask) -> tuple[str, float]:
+    """:func:`export_product` and the seconds it took (runs on a worker)."""
+    t0 = time.perf_counter()
+    path = export_product(task)
+    return path, time.perf_counter() - t0
 
 
 def export_product(task: ExportTask) -> str:
