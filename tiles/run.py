@@ -69,6 +69,7 @@ class RunOptions:
     sharding: bool = True
     zstd_level: int = 1
     export: bool = True
+    export_background: bool = True  # on executors that can (Dask): products written while the next steps run
     software: str = "swathmill"
     software_version: str = ENGINE_VERSION
     config_hash: str = ""
@@ -692,7 +693,7 @@ class Run:
 
         if not todo:
             return made
-        submit = getattr(executor, "submit", None)
+        submit = getattr(executor, "submit", None) if self.options.export_background else None
         if submit is not None:
             self._exports.append((submit(timed_export, todo), on_done, on_error, errors, result))
             return made

@@ -73,6 +73,8 @@ class EngineConfig(Section):
     chunk: int | None = Field(None, ge=8, description="inner chunk size in pixels (divides tile)")
     zstd_level: int = Field(1, ge=0, le=22)
     export: bool = Field(True, description="write COG products and STAC items")
+    export_background: bool = Field(True, description="on Dask, write a step's products while the next steps run "
+                                                      "(false: before the next step starts)")
     fuse: bool = Field(True, description="steps reading the same input share one read per tile (fused passes)")
     incremental: Literal["off", "frozen", "refit"] = Field(
         "off", description="frozen: a growing campaign recomputes only the tiles its new or re-flown lines "

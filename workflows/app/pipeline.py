@@ -357,7 +357,8 @@ def _run_options(cfg: RunConfig, config_path: Path, chash: str = "") -> RunOptio
     """The engine options of a run: tile layout, fusion and the memory one running task may hold."""
     workers, threads, limit = _slots(cfg.execution)
     opts = RunOptions(tile=cfg.engine.tile, chunk=cfg.engine.chunk, zstd_level=cfg.engine.zstd_level,
-                      export=cfg.engine.export, software_version=ENGINE_VERSION, config_hash=chash,
+                      export=cfg.engine.export, export_background=cfg.engine.export_background,
+                      software_version=ENGINE_VERSION, config_hash=chash,
                       fuse=cfg.engine.fuse, task_memory=(limit // threads) if limit else None,
                       incremental=None if cfg.engine.incremental == "off" else cfg.engine.incremental)
     try:
