@@ -40,6 +40,7 @@ from ..errors import SwathmillError
 
 __all__ = [
     "ExportError",
+    "COG_BLOCK",
     "write_cog",
     "overview_factors",
     "default_class_colors",
@@ -52,6 +53,7 @@ __all__ = [
 _NODATA_RGBA = (0, 0, 0, 0)
 _UNCLASSIFIED_RGBA = (*UNCLASSIFIED_RGB, 255)
 _CLASS_TAG = "class_names"
+COG_BLOCK = 512  # internal tile size of the products (px)
 _TMP_RE = r"^\.{name}\.[0-9]+-[0-9a-f]{{12}}\.part\.(tif|cog)$"
 
 
@@ -90,7 +92,7 @@ def write_cog(
     grid: Grid,
     spec: OutputSpec,
     tags: Mapping[str, str],
-    block: int = 512,
+    block: int = COG_BLOCK,
     workdir: Path | None = None,
     *,
     compress: str = "DEFLATE",

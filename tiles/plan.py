@@ -57,6 +57,7 @@ class ProbeResult:
     fit_read_seconds: float | None = None  # median seconds of reading one fit tile's inputs
     finalize_seconds: float | None = None  # seconds of making the model from the merged accumulators
     ratio: float | None = None  # compressed bytes on disk / raw bytes written
+    product_ratio: float | None = None  # the same for the products, compressed as the COG export does
     peak_bytes: int | None = None  # peak of memory allocated while one tile ran (tracemalloc)
     outputs: dict[str, OutputSpec] | None = None
     error: str | None = None
@@ -302,7 +303,8 @@ def estimate(steps: Sequence[Step], *, tile: int, layout: StoreLayout, grid: Gri
         prod = 0
         if export:
             prod_raw = core_px * sum(len(s.bands) * np.dtype(s.dtype).itemsize for s in outputs.values() if s.product)
-            prod = int(prod_raw * ratio * OVERVIEW_FACTOR)
+            pratio = pr.product_ratio if pr is not None and pr.product_ratio is not None else ratio
+            prod = int(prod_raw * pratio * OVERVIEW_FACTOR)
         pad = (min(tile + 2 * step.halo, g.rows), min(tile + 2 * step.halo, g.cols))
         if pr is not None and pr.peak_bytes is not None:
             mem, msrc = pr.peak_bytes, "probe"
@@ -377,6 +379,33 @@ def _moved_points(step: Step, store: TileStore, tasks: Sequence[TileTask]) -> St
     at = np.linspace(0, vr.size - 1, rows.size).round().astype(np.intp)
     static = {**step.static, rk: vr[at].astype(rows.dtype), ck: vc[at].astype(cols.dtype)}
     return dataclasses.replace(step, static=static)
+
+
+def product_ratio(store: TileStore, outputs: Mapping[str, OutputSpec], tasks: Sequence[TileTask]) -> float | None:
+    """Compressed / raw bytes of the products' pixels on the probed tiles, each tile written to an
+    in-memory GeoTIFF with the COG export's compression (DEFLATE with the horizontal or floating-point
+    predictor, tiles of COG_BLOCK px, bands interleaved by band); None without products."""
+    from rasterio.io import MemoryFile
+
+    from .cog import COG_BLOCK
+
+    raw = packed = 0
+    for name, spec in outputs.items():
+        if not spec.product:
+            continue
+        dt = np.dtype(spec.dtype)
+        for t in tasks:
+            core = t.tile.core
+            a = store.read(name, core)
+            blk = min(COG_BLOCK, -(-max(core.rows, core.cols) // 16) * 16)  # a tile smaller than a block: its size
+            with MemoryFile() as mf:
+                with mf.open(driver="GTiff", width=core.cols, height=core.rows, count=a.shape[0], dtype=dt.name,
+                             crs=store.grid.crs, transform=store.grid.transform, tiled=True, blockxsize=blk, blockysize=blk, compress="DEFLATE",
+                             predictor=3 if dt.kind == "f" else 2, interleave="band") as ds:
+                    ds.write(a)
+                packed += mf.getbuffer().nbytes
+            raw += a.nbytes
+    return packed / raw if raw else None
 
 
 def _timed_tile(task: TileTask) -> tuple[float, float]:
@@ -510,6 +539,7 @@ def probe(steps: Sequence[Step], scratch: Path, *, tile: int, layout: StoreLayou
                 res.tiles = len(tasks)
                 raw = sum(t.tile.core.rows * t.tile.core.cols for t in tasks) * (_spec_bytes(outputs) + 1)
                 res.ratio = max(_dir_bytes(spath) - empty, 0) / raw if raw else None
+                res.product_ratio = product_ratio(store, outputs, tasks)
                 tracemalloc.start()
                 try:
                     run_tile(tasks[0])
