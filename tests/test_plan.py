@@ -13,7 +13,6 @@ import pytest
 import test_cli as tc
 from swathmill.tiles.grid import Tiling
 from swathmill.tiles.plan import probe_tiles
-from swathmill.tiles.store import TileStore
 from swathmill.workflows.app.cli import main
 
 __all__: list[str] = []
