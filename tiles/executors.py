@@ -61,14 +61,20 @@ class Background:
             if not wait and not fut.done():
                 left.append((item, fut))
                 continue
-            try:
-                res = fut.result()
-            except Exception as exc:  # noqa: BLE001 - reported per item
-                on_error(item, exc, "".join(traceback.format_exception(exc)))
-            else:
-                on_done(item, res)
-            fut.release()
+            _report(item, fut, on_done, on_error)
         self._futures = left
+
+
+def _report(item: Any, fut: Any, on_done: Callable[[Any, Any], None],
+            on_error: Callable[[Any, BaseException, str], None]) -> None:
+    """Hand a finished future's result (or its error, with the traceback) to the callbacks; release it."""
+    try:
+        res = fut.result()
+    except Exception as exc:  # noqa: BLE001 - reported per item
+        on_error(item, exc, "".join(traceback.format_exception(exc)))
+    else:
+        on_done(item, res)
+    fut.release()
 
 
 def merge_tree(values: list, merge: Callable) -> Any:
@@ -193,14 +199,7 @@ class DaskExecutor:
             if not submit_next():
                 break
         for fut in ac:
-            item = pending.pop(fut.key)
-            try:
-                res = fut.result()
-            except Exception as exc:  # noqa: BLE001 - reported per tile
-                on_error(item, exc, "".join(traceback.format_exception(exc)))
-            else:
-                on_done(item, res)
-            fut.release()
+            _report(pending.pop(fut.key), fut, on_done, on_error)
             submit_next()
 
     def submit(self, fn, items) -> Background:

@@ -64,7 +64,7 @@ sys.path.insert(0, str(HERE))
 import _common as c  # noqa: E402
 from bench_engine import _done as ledger_done  # noqa: E402  (tiles recorded done in a run's ledger)
 
-__all__ = ["main", "write_line", "hash_store_window", "hash_file", "hash_cog"]
+__all__ = ["main", "write_line", "write_lines", "hash_store_window", "hash_file", "hash_cog"]
 
 PIXEL_M = 5.0
 ORIGIN = (512_000.0, 4_310_000.0)
@@ -206,6 +206,21 @@ def write_line(task: tuple) -> dict:
             ds.write(out, window=RWindow(0, r0, lay.cols, n))
     return {"line": k + 1, "path": str(path), "valid_pixels": valid_px, "bytes": Path(path).stat().st_size,
             "gain_mean": float(gain.mean()), "offset_mean": float(offset.mean())}
+
+
+def write_lines(root: Path, lay: "Layout", workers: int) -> tuple[list[Path], list[dict]]:
+    """Every flight line of ``lay`` in ``root/lines``, one line per task on a local Dask cluster of
+    ``workers`` workers; their paths and facts (sorted by line)."""
+    from swathmill.tiles.executors import DaskExecutor
+
+    (root / "lines").mkdir(parents=True)
+    paths = [root / "lines" / f"line{k + 1:02d}.tif" for k in range(lay.lines)]
+    ex = DaskExecutor(n_workers=workers, threads_per_worker=1, retries=0)
+    try:
+        facts = c._map(ex, write_line, [(str(p), k, lay.__dict__) for k, p in enumerate(paths)])
+    finally:
+        ex.close()
+    return paths, sorted(facts, key=lambda f: f["line"])
 
 
 def write_library(path: Path, bands: int) -> None:
@@ -502,15 +517,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         # 1. data ------------------------------------------------------------------------------------
         root = work / "campaign"
-        (root / "lines").mkdir(parents=True)
-        paths = [root / "lines" / f"line{k + 1:02d}.tif" for k in range(lay.lines)]
-        ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1, retries=0)
-        try:
-            t0 = time.perf_counter()
-            facts = sorted(c._map(ex, write_line, [(str(p), k, lay.__dict__) for k, p in enumerate(paths)]),
-                           key=lambda f: f["line"])
-        finally:
-            ex.close()
+        t0 = time.perf_counter()
+        paths, facts = write_lines(root, lay, a.workers)
         res["generate_s"] = time.perf_counter() - t0
         res["line_files_bytes"] = sum(f["bytes"] for f in facts)
         say("data", f"{lay.lines} lines written in {res['generate_s']:.1f} s ({c.gb(res['line_files_bytes'])} on disk)")

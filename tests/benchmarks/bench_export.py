@@ -56,13 +56,7 @@ def main(argv: list[str] | None = None) -> int:
                  "runs": []}
     try:
         root = work / "campaign"
-        (root / "lines").mkdir(parents=True)
-        paths = [root / "lines" / f"line{k + 1:02d}.tif" for k in range(lay.lines)]
-        ex = DaskExecutor(n_workers=a.workers, threads_per_worker=1, retries=0)
-        try:
-            c._map(ex, bc.write_line, [(str(p), k, lay.__dict__) for k, p in enumerate(paths)])
-        finally:
-            ex.close()
+        paths, _facts = bc.write_lines(root, lay, a.workers)
         bc.write_library(root / "library.csv", lay.bands)
         ref = root / "reference.geojson"
         bc.write_reference(ref, lay, lay.lines, 40)
